@@ -1,0 +1,1 @@
+"""equitheta scoring service (FastAPI); see DESIGN.md. Imports calibration, never the reverse."""
