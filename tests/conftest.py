@@ -44,3 +44,22 @@ def simulate_responses(
     star = np.where(np.isnan(z), 0.0, 1.0 / (1.0 + np.exp(-np.nan_to_num(z))))
     u = rng.random((theta.shape[0], slopes.shape[0], 1))
     return np.sum(u < star, axis=2).astype(np.float64)
+
+
+@pytest.fixture(scope="session")
+def lsat6_bundle(lsat6: dict):  # type: ignore[no-untyped-def]
+    """An unpublished bundle calibrated on LSAT-6 (open data), built once per session."""
+    from calibration.io import ResponseData
+    from calibration.pipeline import calibrate_data
+
+    x = lsat6["responses"]
+    data = ResponseData(
+        ids=tuple(f"r{i}" for i in range(x.shape[0])),
+        item_ids=("L1", "L2", "L3", "L4", "L5"),
+        responses=x,
+        n_categories=np.full(5, 2),
+        models=("2pl",) * 5,
+        source="lsat6",
+        source_sha256="0" * 64,
+    )
+    return calibrate_data(data, name="lsat6").bundle

@@ -169,8 +169,8 @@ def test_summed_score_eap_matches_brute_force_integration(items: ItemParameters)
         return sum(np.exp(sum(log_p[j, k] for j, k in enumerate(p))) for p in patterns_by_score[s])
 
     for s in (0, 4, 8):
-        m0 = integrate.quad(lambda t: p_score(t, s) * stats.norm.pdf(t), -10, 10, epsabs=1e-13)[0]
-        m1 = integrate.quad(lambda t: t * p_score(t, s) * stats.norm.pdf(t), -10, 10, epsabs=1e-13)[0]
+        m0 = integrate.quad(lambda t, s=s: p_score(t, s) * stats.norm.pdf(t), -10, 10, epsabs=1e-13)[0]
+        m1 = integrate.quad(lambda t, s=s: t * p_score(t, s) * stats.norm.pdf(t), -10, 10, epsabs=1e-13)[0]
         assert table.theta[s] == pytest.approx(m1 / m0, abs=1e-6)
         assert table.probability[s] == pytest.approx(m0, abs=1e-7)
     assert table.probability.sum() == pytest.approx(1.0, abs=1e-10)

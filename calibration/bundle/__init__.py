@@ -1,0 +1,31 @@
+"""Calibration bundles: schema, canonical form and hash, verification, stores, scoring."""
+
+from calibration.bundle.canonical import BundleError, BundleIntegrityError, from_bytes, seal, to_bytes
+from calibration.bundle.schema import Bundle
+from calibration.bundle.store import (
+    BundleNotFound,
+    BundleStore,
+    DirectoryStore,
+    InvalidReference,
+    VersionConflict,
+    open_store,
+    parse_reference,
+    resolve,
+)
+
+__all__ = [
+    "Bundle",
+    "BundleError",
+    "BundleIntegrityError",
+    "BundleNotFound",
+    "BundleStore",
+    "DirectoryStore",
+    "InvalidReference",
+    "VersionConflict",
+    "from_bytes",
+    "open_store",
+    "parse_reference",
+    "resolve",
+    "seal",
+    "to_bytes",
+]

@@ -1,0 +1,90 @@
+"""Canonical bytes, content hash and verification of bundles.
+
+Canonical form: UTF-8 JSON with sorted keys, no insignificant white space, floats
+in Python's shortest round-trip notation (``repr``), no NaN or infinity. The hash
+is the SHA-256 of the canonical bytes of the bundle *without* its ``hash`` field;
+the stored file is the canonical bytes *with* it, so the file can be re-verified.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from typing import Any
+
+from pydantic import ValidationError
+
+from calibration.bundle.schema import Bundle
+
+
+class BundleError(Exception):
+    """Base class of bundle and store errors."""
+
+
+class BundleIntegrityError(BundleError):
+    """A bundle file is damaged, truncated, tampered with or not a bundle."""
+
+
+def canonical_bytes(document: dict[str, Any]) -> bytes:
+    return json.dumps(
+        document, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
+    ).encode("utf-8")
+
+
+def content_hash(document: dict[str, Any]) -> str:
+    body = {k: v for k, v in document.items() if k != "hash"}
+    return hashlib.sha256(canonical_bytes(body)).hexdigest()
+
+
+def seal(bundle: Bundle, *, version: int | None = None) -> Bundle:
+    """Return the bundle with ``version`` set (if given) and its hash computed."""
+    document = bundle.model_dump(mode="json")
+    if version is not None:
+        document["version"] = version
+    document["hash"] = content_hash(document)
+    return Bundle.model_validate(document)
+
+
+def to_bytes(bundle: Bundle) -> bytes:
+    """The stored form: canonical JSON including the hash."""
+    return canonical_bytes(bundle.model_dump(mode="json"))
+
+
+def from_bytes(data: bytes, *, source: str) -> Bundle:
+    """Parse, verify the hash and validate; any failure is a :class:`BundleIntegrityError`."""
+    try:
+        document = json.loads(data.decode("utf-8"))
+    except UnicodeDecodeError as exc:
+        raise BundleIntegrityError(f"{source}: not UTF-8 text ({exc.reason} at byte {exc.start})") from exc
+    except json.JSONDecodeError as exc:
+        raise BundleIntegrityError(
+            f"{source}: not valid JSON at line {exc.lineno} column {exc.colno} "
+            f"(the file is {len(data)} bytes; truncated or damaged?)"
+        ) from exc
+    return from_document(document, source=source)
+
+
+def from_document(document: Any, *, source: str) -> Bundle:
+    """Verify and validate an already-parsed bundle document."""
+    if not isinstance(document, dict):
+        raise BundleIntegrityError(f"{source}: a bundle is a JSON object, got {type(document).__name__}")
+    stated = document.get("hash")
+    if not isinstance(stated, str) or not stated:
+        raise BundleIntegrityError(f"{source}: the bundle has no hash; it was never published")
+    try:
+        actual = content_hash(document)
+    except (TypeError, ValueError) as exc:
+        raise BundleIntegrityError(f"{source}: content cannot be put in canonical form: {exc}") from exc
+    if actual != stated:
+        raise BundleIntegrityError(
+            f"{source}: content hash mismatch (stated {stated[:12]}..., computed {actual[:12]}...); "
+            "the file was changed after publication and is refused"
+        )
+    try:
+        return Bundle.model_validate(document)
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        where = ".".join(str(p) for p in first["loc"])
+        raise BundleIntegrityError(
+            f"{source}: not a valid bundle: {where}: {first['msg']} ({exc.error_count()} problem(s))"
+        ) from exc

@@ -1,0 +1,231 @@
+"""The calibration bundle: the contract between calibration, the stores and the service.
+
+A bundle is one JSON document. Its identity is (name, version); its content is
+fixed by a SHA-256 over its canonical bytes (see :mod:`calibration.bundle.canonical`).
+Missing statistics are ``null`` (JSON has no NaN).
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+
+SCHEMA_VERSION = "1"
+NAME_PATTERN = r"^[a-z0-9][a-z0-9._-]{0,63}$"
+ALIAS_PATTERN = r"^[a-z][a-z0-9_-]{0,31}$"
+
+PolicyStatus = Literal["invariant", "group_specific", "excluded"]
+
+
+class _Frozen(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class Provenance(_Frozen):
+    data_sha256: str = Field(description="SHA-256 of the calibration data file's bytes")
+    data_source: str = Field(description="File name of the calibration data (no directory)")
+    n_respondents: int = Field(ge=0)
+    n_respondents_by_group: dict[str, int]
+    settings: dict[str, str | int | float | bool | None] = Field(
+        description="Settings used for the calibration, as given on the command line or API"
+    )
+    notes: list[str] = Field(default_factory=list, description="Handling decisions made while reading the data")
+
+
+class GroupMetric(_Frozen):
+    name: str
+    n_respondents: int = Field(ge=0)
+    latent_mean: float
+    latent_sd: float = Field(gt=0)
+    latent_mean_se: float | None = None
+    latent_sd_se: float | None = None
+
+
+class Metric(_Frozen):
+    parameterisation: Literal["slope-intercept"] = "slope-intercept"
+    logistic_scale: float = Field(1.0, description="D in logistic(D * (a * theta + c)); always 1 here")
+    reference_group: str
+    groups: list[GroupMetric]
+
+    @model_validator(mode="after")
+    def _reference_present(self) -> Metric:
+        names = [g.name for g in self.groups]
+        if self.reference_group not in names:
+            raise ValueError(f"reference group {self.reference_group!r} is not among the groups {names}")
+        if len(set(names)) != len(names):
+            raise ValueError("group names must be unique")
+        return self
+
+
+class PolicyEvidence(_Frozen):
+    """The statistics behind a policy decision (empty for a single-group calibration)."""
+
+    statistic: str | None = None
+    value: float | None = None
+    p_value: float | None = None
+    p_adjusted: float | None = None
+    effect_size: float | None = None
+    category: str | None = None
+    note: str = ""
+
+
+class GroupPolicy(_Frozen):
+    status: PolicyStatus
+    reason: str
+    evidence: PolicyEvidence = Field(default_factory=PolicyEvidence)
+    slope: float | None = Field(None, description="Group-specific slope when status is group_specific")
+    intercepts: list[float] | None = Field(None, description="Group-specific intercepts when group_specific")
+
+
+class ItemEntry(_Frozen):
+    id: str = Field(min_length=1)
+    model: Literal["2pl", "1pl", "grm"]
+    n_categories: int = Field(ge=2)
+    slope: float
+    intercepts: list[float] = Field(description="c_1 > c_2 > ... (slope-intercept form)")
+    thresholds: list[float] = Field(description="b_k = -c_k / slope (slope-threshold form, derived)")
+    slope_se: float | None = None
+    intercept_se: list[float | None]
+    threshold_se: list[float | None]
+    n_responses: int = Field(ge=0)
+    mean_score: float | None = None
+    item_rest_correlation: float | None = None
+    policy: dict[str, GroupPolicy] = Field(description="Policy for this item in each group")
+
+    @model_validator(mode="after")
+    def _shapes(self) -> ItemEntry:
+        k = self.n_categories - 1
+        if not (len(self.intercepts) == len(self.thresholds) == len(self.intercept_se) == len(self.threshold_se) == k):
+            raise ValueError(f"item {self.id!r}: {self.n_categories} categories need {k} intercepts and thresholds")
+        if any(later >= earlier for earlier, later in zip(self.intercepts, self.intercepts[1:], strict=False)):
+            raise ValueError(f"item {self.id!r}: intercepts must be strictly decreasing")
+        if self.model in ("2pl", "1pl") and self.n_categories != 2:
+            raise ValueError(f"item {self.id!r}: model {self.model} has exactly 2 categories")
+        return self
+
+
+class ExcludedItem(_Frozen):
+    id: str
+    reason: str
+
+
+class Anchors(_Frozen):
+    items: list[str] = Field(default_factory=list)
+    method: str = Field(description="How the anchor items were chosen")
+
+
+class QuadratureSettings(_Frozen):
+    n_points: int = Field(ge=5)
+    lower: float
+    upper: float
+
+
+class ReportingScaleSettings(_Frozen):
+    location: float = 500.0
+    scale: float = Field(100.0, gt=0)
+    decimals: int = Field(0, ge=0, le=6)
+    minimum: float | None = 100.0
+    maximum: float | None = 900.0
+
+
+class ScoringSettings(_Frozen):
+    method: Literal["eap", "map", "ml"] = "eap"
+    quadrature: QuadratureSettings
+    prior_mean: float = 0.0
+    prior_sd: float = Field(1.0, gt=0)
+    ml_bound: float = Field(4.0, gt=0)
+    min_items_answered: int = Field(1, ge=1)
+    reporting_scale: ReportingScaleSettings
+
+
+class FitSummary(_Frozen):
+    log_likelihood: float
+    n_parameters: int
+    n_persons: int
+    aic: float
+    bic: float
+    converged: bool
+    n_iter: int
+    estimation: str = Field(description="Estimator, quadrature and SE method, in words")
+
+
+class InformationTable(_Frozen):
+    theta: list[float]
+    information: list[float]
+    se: list[float]
+
+
+class SummedScoreRow(_Frozen):
+    summed_score: int
+    theta: float
+    se: float
+    probability: float
+
+
+class GroupQuality(_Frozen):
+    n_respondents: int
+    alpha: float | None
+    alpha_if_deleted: dict[str, float | None]
+    marginal_reliability: float | None
+    summed_score_table: list[SummedScoreRow]
+
+
+class Quality(_Frozen):
+    by_group: dict[str, GroupQuality]
+    test_information: InformationTable
+    warnings: list[str] = Field(default_factory=list)
+
+
+class Bundle(_Frozen):
+    """A calibration bundle. ``version`` 0 and empty ``hash`` mean "not yet published"."""
+
+    schema_version: Literal["1"] = SCHEMA_VERSION
+    name: str = Field(pattern=NAME_PATTERN)
+    version: int = Field(ge=0)
+    created_at: str = Field(description="UTC time of the calibration, ISO 8601")
+    software_version: str
+    hash: str = Field("", description="SHA-256 of the canonical JSON without this field")
+    provenance: Provenance
+    metric: Metric
+    items: list[ItemEntry]
+    excluded_items: list[ExcludedItem] = Field(default_factory=list)
+    anchors: Anchors
+    scoring: ScoringSettings
+    fit: FitSummary
+    quality: Quality
+
+    @field_validator("items")
+    @classmethod
+    def _unique_items(cls, items: list[ItemEntry]) -> list[ItemEntry]:
+        ids = [i.id for i in items]
+        dup = sorted({i for i in ids if ids.count(i) > 1})
+        if dup:
+            raise ValueError(f"item ids must be unique; repeated: {', '.join(dup)}")
+        if not items:
+            raise ValueError("a bundle needs at least one item")
+        return items
+
+    @model_validator(mode="after")
+    def _policies_cover_groups(self) -> Bundle:
+        groups = {g.name for g in self.metric.groups}
+        for item in self.items:
+            if set(item.policy) != groups:
+                raise ValueError(f"item {item.id!r}: policy must name every group {sorted(groups)}")
+            ref = item.policy[self.metric.reference_group]
+            if ref.status == "excluded":
+                raise ValueError(f"item {item.id!r}: the reference group keeps every item")
+        return self
+
+    @property
+    def label(self) -> str:
+        return f"{self.name}@{self.version}"
+
+
+def valid_name(name: str) -> bool:
+    return re.fullmatch(NAME_PATTERN, name) is not None
+
+
+def valid_alias(alias: str) -> bool:
+    return re.fullmatch(ALIAS_PATTERN, alias) is not None

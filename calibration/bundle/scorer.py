@@ -1,0 +1,184 @@
+"""Scoring response vectors from a bundle: the one path the CLI and the service share.
+
+Each group scores with its own item set and parameters: items whose policy for
+the group is ``excluded`` are left out, ``group_specific`` items use the group's
+parameters, every other item the shared ones. Every group uses the same prior
+(the reference metric, N(prior_mean, prior_sd)), so the same answers to the same
+items give the same score whatever the group: group membership changes which
+items count, never how an answer is weighed beyond what the bundle records.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from calibration.bundle.canonical import BundleError
+from calibration.bundle.schema import Bundle
+from calibration.irt.likelihood import QuadratureGrid
+from calibration.irt.models import FloatArray, IntArray, ItemParameters
+from calibration.irt.scoring import METHODS, NormalPrior, ReportingScale, score
+
+FLAG_NO_ANSWERS = "no_answers"
+FLAG_FEW_ITEMS = "few_items"
+FLAG_EXTREME = "extreme_pattern"
+
+
+class UnknownGroup(BundleError):
+    """A respondent's group is not a group of the bundle."""
+
+
+@dataclass(frozen=True)
+class GroupScoringPlan:
+    """The items and parameters one group scores with."""
+
+    group: str
+    columns: IntArray  # positions in the bundle's item list
+    params: ItemParameters
+    excluded: tuple[tuple[str, str], ...]  # (item id, reason)
+
+
+@dataclass(frozen=True)
+class ScoredBatch:
+    """Scores for a batch; arrays have shape (n_persons,)."""
+
+    theta: FloatArray
+    se: FloatArray
+    scale_score: FloatArray
+    scale_se: FloatArray
+    n_answered: IntArray
+    groups: tuple[str, ...]
+    flags: tuple[tuple[str, ...], ...]
+    method: str
+
+
+def _shared_parameters(bundle: Bundle) -> ItemParameters:
+    k_max = max(item.n_categories for item in bundle.items)
+    intercepts = np.full((len(bundle.items), k_max - 1), np.nan)
+    for j, item in enumerate(bundle.items):
+        intercepts[j, : item.n_categories - 1] = item.intercepts
+    return ItemParameters(
+        slopes=np.array([item.slope for item in bundle.items]),
+        intercepts=intercepts,
+        n_categories=np.array([item.n_categories for item in bundle.items]),
+        models=tuple(item.model for item in bundle.items),
+    )
+
+
+class BundleScorer:
+    """Holds a bundle's per-group parameters, built once (the service keeps one per bundle)."""
+
+    def __init__(self, bundle: Bundle) -> None:
+        self.bundle = bundle
+        self.item_ids: tuple[str, ...] = tuple(item.id for item in bundle.items)
+        self.item_categories: dict[str, int] = {item.id: item.n_categories for item in bundle.items}
+        settings = bundle.scoring
+        self.grid = QuadratureGrid(settings.quadrature.n_points, settings.quadrature.lower, settings.quadrature.upper)
+        self.prior = NormalPrior(settings.prior_mean, settings.prior_sd)
+        scale = settings.reporting_scale
+        self.reporting_scale = ReportingScale(scale.location, scale.scale, scale.decimals, scale.minimum, scale.maximum)
+        shared = _shared_parameters(bundle)
+        self.plans: dict[str, GroupScoringPlan] = {}
+        for group in bundle.metric.groups:
+            keep: list[int] = []
+            excluded: list[tuple[str, str]] = []
+            slopes = shared.slopes.copy()
+            intercepts = shared.intercepts.copy()
+            for j, item in enumerate(bundle.items):
+                policy = item.policy[group.name]
+                if policy.status == "excluded":
+                    excluded.append((item.id, policy.reason))
+                    continue
+                if policy.status == "group_specific" and policy.slope is not None and policy.intercepts:
+                    slopes[j] = policy.slope
+                    intercepts[j, : item.n_categories - 1] = policy.intercepts
+                keep.append(j)
+            columns = np.array(keep, dtype=np.int64)
+            params = ItemParameters(slopes=slopes, intercepts=intercepts, n_categories=shared.n_categories,
+                                    models=shared.models).subset(columns)
+            self.plans[group.name] = GroupScoringPlan(group.name, columns, params, tuple(excluded))
+
+    @property
+    def default_group(self) -> str | None:
+        """The group used when a respondent names none: the only group, if there is one."""
+        groups = self.bundle.metric.groups
+        return groups[0].name if len(groups) == 1 else None
+
+    def resolve_groups(
+        self, groups: Sequence[str | None] | None, n_persons: int, *, unknown_to_reference: bool = False
+    ) -> tuple[str, ...]:
+        """Check every respondent's group; raise :class:`UnknownGroup` naming the first bad one."""
+        known = set(self.plans)
+        reference = self.bundle.metric.reference_group
+        if groups is None:
+            groups = [None] * n_persons
+        resolved: list[str] = []
+        for i, g in enumerate(groups):
+            if g is None or g == "":
+                if self.default_group is None:
+                    raise UnknownGroup(
+                        f"respondent {i + 1}: no group given and the bundle has several groups "
+                        f"({', '.join(sorted(known))})"
+                    )
+                resolved.append(self.default_group)
+            elif g in known:
+                resolved.append(g)
+            elif unknown_to_reference:
+                resolved.append(reference)
+            else:
+                raise UnknownGroup(
+                    f"respondent {i + 1}: group {g!r} is not in bundle {self.bundle.label} "
+                    f"(groups: {', '.join(sorted(known))})"
+                )
+        return tuple(resolved)
+
+    def score(
+        self,
+        responses: FloatArray,
+        groups: Sequence[str],
+        *,
+        method: str | None = None,
+    ) -> ScoredBatch:
+        """Score rows aligned to the bundle's items (NaN = not administered).
+
+        ``groups`` must already be resolved (see :meth:`resolve_groups`).
+        """
+        method = method or self.bundle.scoring.method
+        if method not in METHODS:
+            raise ValueError(f"unknown scoring method {method!r}; use one of {', '.join(METHODS)}")
+        x = np.asarray(responses, dtype=np.float64)
+        n = x.shape[0]
+        theta = np.empty(n)
+        se = np.empty(n)
+        n_answered = np.zeros(n, dtype=np.int64)
+        extreme = np.zeros(n, dtype=bool)
+        group_array = np.asarray(groups, dtype=object)
+        for name, plan in self.plans.items():
+            rows = np.flatnonzero(group_array == name)
+            if rows.size == 0:
+                continue
+            result = score(plan.params, x[np.ix_(rows, plan.columns)], method=method, grid=self.grid,
+                           prior=self.prior, ml_bound=self.bundle.scoring.ml_bound)
+            theta[rows], se[rows] = result.theta, result.se
+            n_answered[rows], extreme[rows] = result.n_answered, result.extreme
+        scale_score, scale_se = self.reporting_scale.transform(theta, se)
+        minimum = self.bundle.scoring.min_items_answered
+        flags = []
+        for i in range(n):
+            f: list[str] = []
+            if n_answered[i] == 0:
+                f.append(FLAG_NO_ANSWERS)
+            elif n_answered[i] < minimum:
+                f.append(FLAG_FEW_ITEMS)
+            if extreme[i]:
+                f.append(FLAG_EXTREME)
+            flags.append(tuple(f))
+        return ScoredBatch(
+            theta=theta, se=se, scale_score=scale_score, scale_se=scale_se, n_answered=n_answered,
+            groups=tuple(groups), flags=tuple(flags), method=method,
+        )
+
+    def excluded_for(self, group: str) -> tuple[tuple[str, str], ...]:
+        return self.plans[group].excluded

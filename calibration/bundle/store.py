@@ -1,0 +1,304 @@
+"""Bundle stores: one contract, a directory implementation (the default, embedded).
+
+Contract
+--------
+- ``publish(bundle)`` gives the bundle the next integer version of its name and
+  stores it; ``put_version(bundle)`` stores a bundle at the version it carries
+  (same content again is accepted, other content is a :class:`VersionConflict`).
+- A stored version never changes and is never half-visible.
+- Aliases (e.g. ``production``) point at versions, can be moved, and keep their
+  history so they can be moved back.
+
+Directory layout::
+
+    STORE/NAME/v000001.json     canonical bytes, one file per version
+    STORE/NAME/aliases.json     {"alias": {"version": 3, "history": [...]}}
+    STORE/NAME/.lock            flock target serialising alias updates
+"""
+
+from __future__ import annotations
+
+import contextlib
+import fcntl
+import json
+import os
+import tempfile
+from collections.abc import Iterator
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Protocol
+
+from calibration.bundle.canonical import BundleError, BundleIntegrityError, from_bytes, seal, to_bytes
+from calibration.bundle.schema import Bundle, valid_alias, valid_name
+
+DEFAULT_ALIAS = "production"
+
+
+class BundleNotFound(BundleError):
+    """No bundle (or no such version or alias) under that name."""
+
+
+class VersionConflict(BundleError):
+    """That version already exists with other content."""
+
+
+class InvalidReference(BundleError):
+    """A bundle name, version or alias is malformed."""
+
+
+@dataclass(frozen=True)
+class AliasRecord:
+    alias: str
+    version: int
+    history: tuple[tuple[int, str], ...]  # (version, moved_at) oldest first, current last
+
+
+class BundleStore(Protocol):
+    def names(self) -> list[str]: ...
+    def versions(self, name: str) -> list[int]: ...
+    def get(self, name: str, version: int) -> Bundle: ...
+    def publish(self, bundle: Bundle) -> Bundle: ...
+    def put_version(self, bundle: Bundle) -> Bundle: ...
+    def aliases(self, name: str) -> dict[str, AliasRecord]: ...
+    def set_alias(self, name: str, alias: str, version: int) -> AliasRecord: ...
+    def alias_back(self, name: str, alias: str) -> AliasRecord: ...
+
+
+def parse_reference(reference: str) -> tuple[str, int | str | None]:
+    """``NAME``, ``NAME@VERSION`` or ``NAME@ALIAS`` -> (name, version or alias or None)."""
+    name, _, ref = reference.partition("@")
+    if not valid_name(name):
+        raise InvalidReference(
+            f"bundle name {name!r} is not valid: lower-case letters, digits, '.', '_' or '-', up to 64"
+        )
+    if not ref:
+        return name, None
+    if ref.isdigit():
+        return name, int(ref)
+    if not valid_alias(ref):
+        raise InvalidReference(f"{ref!r} is neither a version number nor a valid alias")
+    return name, ref
+
+
+def resolve(store: BundleStore, reference: str) -> Bundle:
+    """The bundle a reference names; a bare name means the ``production`` alias, else the newest."""
+    name, ref = parse_reference(reference)
+    if isinstance(ref, int):
+        return store.get(name, ref)
+    aliases = store.aliases(name)
+    if isinstance(ref, str):
+        if ref not in aliases:
+            known = ", ".join(sorted(aliases)) or "none"
+            raise BundleNotFound(f"bundle {name!r} has no alias {ref!r} (aliases: {known})")
+        return store.get(name, aliases[ref].version)
+    if DEFAULT_ALIAS in aliases:
+        return store.get(name, aliases[DEFAULT_ALIAS].version)
+    versions = store.versions(name)
+    if not versions:
+        raise BundleNotFound(f"no bundle named {name!r}")
+    return store.get(name, versions[-1])
+
+
+def _now() -> str:
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+class DirectoryStore:
+    """Bundles as files under a directory (see the module docstring for the layout)."""
+
+    def __init__(self, root: Path | str) -> None:
+        self.root = Path(root)
+
+    def __repr__(self) -> str:
+        return f"DirectoryStore({str(self.root)!r})"
+
+    def _dir(self, name: str) -> Path:
+        if not valid_name(name):
+            raise InvalidReference(f"bundle name {name!r} is not valid")
+        return self.root / name
+
+    @staticmethod
+    def _file(directory: Path, version: int) -> Path:
+        return directory / f"v{version:06d}.json"
+
+    def names(self) -> list[str]:
+        if not self.root.is_dir():
+            return []
+        return sorted(
+            p.name for p in self.root.iterdir() if p.is_dir() and valid_name(p.name) and self.versions(p.name)
+        )
+
+    def versions(self, name: str) -> list[int]:
+        directory = self._dir(name)
+        if not directory.is_dir():
+            return []
+        found = []
+        for p in directory.glob("v*.json"):
+            stem = p.stem[1:]
+            if stem.isdigit():
+                found.append(int(stem))
+        return sorted(found)
+
+    def get(self, name: str, version: int) -> Bundle:
+        path = self._file(self._dir(name), version)
+        try:
+            data = path.read_bytes()
+        except FileNotFoundError:
+            have = self.versions(name)
+            if not have:
+                raise BundleNotFound(f"no bundle named {name!r}") from None
+            raise BundleNotFound(
+                f"bundle {name!r} has no version {version} (versions: {', '.join(map(str, have))})"
+            ) from None
+        bundle = from_bytes(data, source=f"{name}@{version} ({path})")
+        if bundle.name != name or bundle.version != version:
+            raise BundleIntegrityError(
+                f"{path}: holds {bundle.name}@{bundle.version}, not {name}@{version}; the file was moved"
+            )
+        return bundle
+
+    def publish(self, bundle: Bundle) -> Bundle:
+        directory = self._dir(bundle.name)
+        directory.mkdir(parents=True, exist_ok=True)
+        # Retry if another writer takes the version we chose between listing and linking.
+        for _ in range(100):
+            versions = self.versions(bundle.name)
+            sealed = seal(bundle, version=(versions[-1] + 1) if versions else 1)
+            try:
+                self._write_new(directory, sealed)
+                return sealed
+            except FileExistsError:
+                continue
+        raise BundleError(f"could not find a free version for {bundle.name!r} after 100 attempts")
+
+    def put_version(self, bundle: Bundle) -> Bundle:
+        if bundle.version < 1:
+            raise InvalidReference("a published version number starts at 1")
+        directory = self._dir(bundle.name)
+        directory.mkdir(parents=True, exist_ok=True)
+        sealed = seal(bundle)
+        if bundle.hash and bundle.hash != sealed.hash:
+            raise BundleIntegrityError(
+                f"{bundle.label}: the stated hash does not match the content; refused"
+            )
+        try:
+            self._write_new(directory, sealed)
+        except FileExistsError:
+            existing = self.get(bundle.name, bundle.version)
+            if existing.hash != sealed.hash:
+                raise VersionConflict(
+                    f"{bundle.label} is already published with other content (hash {existing.hash[:12]}...); "
+                    "a published version never changes: publish a new version instead"
+                ) from None
+            return existing
+        return sealed
+
+    @staticmethod
+    def _write_new(directory: Path, bundle: Bundle) -> None:
+        """Write to a temporary file, fsync, then hard-link into place: never overwrites."""
+        target = DirectoryStore._file(directory, bundle.version)
+        fd, tmp = tempfile.mkstemp(prefix=".incoming-", suffix=".json", dir=directory)
+        try:
+            with os.fdopen(fd, "wb") as handle:
+                handle.write(to_bytes(bundle))
+                handle.flush()
+                os.fsync(handle.fileno())
+            os.link(tmp, target)  # fails with FileExistsError if the version exists
+            os.chmod(target, 0o444)
+        finally:
+            os.unlink(tmp)
+        _fsync_dir(directory)
+
+    @contextlib.contextmanager
+    def _locked(self, name: str) -> Iterator[Path]:
+        directory = self._dir(name)
+        directory.mkdir(parents=True, exist_ok=True)
+        with open(directory / ".lock", "a+") as lock:
+            fcntl.flock(lock, fcntl.LOCK_EX)
+            try:
+                yield directory
+            finally:
+                fcntl.flock(lock, fcntl.LOCK_UN)
+
+    def _read_aliases(self, directory: Path) -> dict[str, dict[str, object]]:
+        path = directory / "aliases.json"
+        if not path.exists():
+            return {}
+        try:
+            data = json.loads(path.read_text(encoding="utf-8"))
+        except json.JSONDecodeError as exc:
+            raise BundleIntegrityError(f"{path}: damaged alias file ({exc})") from exc
+        if not isinstance(data, dict):
+            raise BundleIntegrityError(f"{path}: damaged alias file (not an object)")
+        return data
+
+    def aliases(self, name: str) -> dict[str, AliasRecord]:
+        directory = self._dir(name)
+        return {
+            alias: AliasRecord(
+                alias=alias,
+                version=int(entry["version"]),  # type: ignore[call-overload]
+                history=tuple((int(v), str(t)) for v, t in entry.get("history", [])),  # type: ignore[union-attr]
+            )
+            for alias, entry in self._read_aliases(directory).items()
+        }
+
+    def set_alias(self, name: str, alias: str, version: int) -> AliasRecord:
+        if not valid_alias(alias):
+            raise InvalidReference(f"alias {alias!r} is not valid: a lower-case letter, then letters, digits, _ or -")
+        self.get(name, version)  # the target must exist and verify
+        with self._locked(name) as directory:
+            data = self._read_aliases(directory)
+            entry = data.get(alias, {"version": version, "history": []})
+            history = list(entry.get("history", []))  # type: ignore[call-overload]
+            history.append([version, _now()])
+            data[alias] = {"version": version, "history": history}
+            self._write_aliases(directory, data)
+        return self.aliases(name)[alias]
+
+    def alias_back(self, name: str, alias: str) -> AliasRecord:
+        """Point the alias at the version it pointed to before its last move."""
+        with self._locked(name) as directory:
+            data = self._read_aliases(directory)
+            if alias not in data:
+                raise BundleNotFound(f"bundle {name!r} has no alias {alias!r}")
+            history = list(data[alias].get("history", []))  # type: ignore[union-attr]
+            if len(history) < 2:
+                raise BundleError(f"alias {alias!r} of {name!r} has no earlier version to move back to")
+            previous = int(history[-2][0])
+            history.append([previous, _now()])
+            data[alias] = {"version": previous, "history": history}
+            self._write_aliases(directory, data)
+        return self.aliases(name)[alias]
+
+    @staticmethod
+    def _write_aliases(directory: Path, data: dict[str, dict[str, object]]) -> None:
+        fd, tmp = tempfile.mkstemp(prefix=".aliases-", suffix=".json", dir=directory)
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8") as handle:
+                json.dump(data, handle, sort_keys=True, indent=1)
+                handle.flush()
+                os.fsync(handle.fileno())
+            os.replace(tmp, directory / "aliases.json")
+        except BaseException:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+            raise
+        _fsync_dir(directory)
+
+
+def _fsync_dir(directory: Path) -> None:
+    fd = os.open(directory, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def open_store(location: str | Path) -> BundleStore:
+    """A store from a ``--store`` value: a directory path (``redis://`` URLs come with the service)."""
+    text = str(location)
+    if text.startswith(("redis://", "rediss://")):
+        raise BundleError("a Redis store needs the service extras; this build has only the directory store")
+    return DirectoryStore(text)

@@ -1,0 +1,43 @@
+"""An invented data set for the demo: a fictional workforce-skills assessment.
+
+"Tidewater Regional Skills Check" (fictional) assesses adults in a workforce
+programme with 16 right/wrong tasks (practical numeracy NUM, workplace documents
+DOC) and 8 four-category rated tasks on digital work (DIG: 0 not done .. 3 done
+independently). Some respondents took a short form, so about 8% of answers are
+missing by design. Everything here is simulated; no real person's data.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+
+def demo_item_parameters() -> tuple[list[str], np.ndarray, np.ndarray]:
+    """Invented generating parameters: item ids, slopes, thresholds (NaN-padded, 3 columns)."""
+    ids = [f"NUM{i:02d}" for i in range(1, 9)] + [f"DOC{i:02d}" for i in range(1, 9)]
+    ids += [f"DIG{i:02d}" for i in range(1, 9)]
+    slopes = np.array([1.4, 1.1, 0.9, 1.7, 1.2, 0.8, 1.5, 1.0,
+                       1.3, 0.9, 1.6, 1.1, 0.7, 1.2, 1.4, 1.0,
+                       1.8, 1.5, 1.2, 2.0, 1.6, 1.3, 1.1, 1.7])
+    b = np.full((24, 3), np.nan)
+    b[:16, 0] = [-1.6, -1.0, -0.6, -0.2, 0.1, 0.4, 0.9, 1.5, -1.3, -0.8, -0.3, 0.0, 0.3, 0.7, 1.1, 1.8]
+    b[16:, :] = [[-1.8, -0.6, 0.5], [-1.5, -0.4, 0.8], [-1.2, 0.0, 1.1], [-2.0, -0.9, 0.2],
+                 [-1.0, 0.2, 1.3], [-1.4, -0.3, 0.9], [-0.8, 0.4, 1.6], [-1.6, -0.5, 0.6]]
+    return ids, slopes, b
+
+
+def make_demo_responses(n_respondents: int = 3000, *, seed: int = 20261201) -> pd.DataFrame:
+    """Simulated responses with ids ``TW-000001`` ...; empty cells mark short-form omissions."""
+    rng = np.random.default_rng(seed)
+    ids, slopes, b = demo_item_parameters()
+    theta = rng.normal(0.0, 1.0, n_respondents)
+    z = slopes[None, :, None] * (theta[:, None, None] - b[None, :, :])
+    star = np.where(np.isnan(z), 0.0, 1.0 / (1.0 + np.exp(-np.nan_to_num(z))))
+    codes = np.sum(rng.random((n_respondents, len(ids), 1)) < star, axis=2).astype(float)
+    short_form = rng.random(n_respondents) < 0.25
+    dropped = rng.random((n_respondents, len(ids))) < 0.32
+    codes[short_form[:, None] & dropped] = np.nan
+    frame = pd.DataFrame(codes, columns=ids).astype("Int64")
+    frame.insert(0, "id", [f"TW-{i:06d}" for i in range(1, n_respondents + 1)])
+    return frame

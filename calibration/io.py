@@ -1,0 +1,448 @@
+"""Reading and writing files: the only module that touches the file system for data.
+
+``read_responses`` turns a CSV or Parquet table (one row per respondent, an id
+column, every other column an item, empty cell = not administered) into one
+validated :class:`ResponseData`. Every problem is reported with its row, column
+and value; up to ``MAX_PROBLEMS`` are listed at once so a user can fix a file in
+one pass.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import os
+import tempfile
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from calibration.irt.models import MODEL_1PL, MODEL_2PL, MODEL_GRM, MODELS, FloatArray, IntArray
+
+MAX_PROBLEMS = 12
+
+
+class InputError(ValueError):
+    """A data or spec file cannot be used; ``problems`` lists each finding."""
+
+    def __init__(self, source: str, problems: Sequence[str], *, total: int | None = None) -> None:
+        self.source = source
+        self.problems = list(problems)
+        self.total = total if total is not None else len(self.problems)
+        more = f"\n  ... and {self.total - len(self.problems)} more" if self.total > len(self.problems) else ""
+        listing = "\n".join(f"  - {p}" for p in self.problems)
+        super().__init__(f"{source}: {self.total} problem(s)\n{listing}{more}")
+
+
+@dataclass(frozen=True)
+class ItemSpec:
+    """What a user declares about an item (all optional beyond the id)."""
+
+    item: str
+    model: str | None = None
+    n_categories: int | None = None
+    include: bool = True
+    label: str = ""
+
+
+@dataclass(frozen=True)
+class ResponseData:
+    """A validated response table.
+
+    Attributes
+    ----------
+    ids : tuple of str, length n_persons
+    item_ids : tuple of str, length n_items
+    responses : float array of shape (n_persons, n_items)
+        Category codes 0 .. K_j - 1, NaN for not administered.
+    n_categories : int array of shape (n_items,)
+    models : tuple of str, one per item
+    groups : tuple of str or None
+        The group of each respondent when a group column was read.
+    source : str
+        The file name (no directory) or a description.
+    source_sha256 : str
+        SHA-256 of the file's bytes.
+    notes : tuple of str
+        Handling decisions a user should see (ignored columns and the like).
+    """
+
+    ids: tuple[str, ...]
+    item_ids: tuple[str, ...]
+    responses: FloatArray
+    n_categories: IntArray
+    models: tuple[str, ...]
+    groups: tuple[str, ...] | None = None
+    source: str = ""
+    source_sha256: str = ""
+    notes: tuple[str, ...] = field(default=())
+
+    @property
+    def n_persons(self) -> int:
+        return int(self.responses.shape[0])
+
+    @property
+    def n_items(self) -> int:
+        return int(self.responses.shape[1])
+
+
+def file_sha256(path: Path) -> str:
+    digest = hashlib.sha256()
+    with path.open("rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
+    """Read a CSV or Parquet file with every cell as text; returns the table and the header offset."""
+    if not path.exists():
+        raise InputError(str(path), ["file not found"])
+    if path.stat().st_size == 0:
+        raise InputError(path.name, ["the file is empty (no header, no respondents)"])
+    suffix = path.suffix.lower()
+    try:
+        if suffix in (".parquet", ".pq"):
+            frame = pd.read_parquet(path)
+            frame = frame.astype(object).where(frame.notna(), "")
+            frame = frame.map(_cell_text)
+            return frame, 0
+        frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[], skipinitialspace=False)
+    except (pd.errors.ParserError, UnicodeDecodeError, OSError, ValueError) as exc:
+        kind = "Parquet" if suffix in (".parquet", ".pq") else "CSV"
+        raise InputError(path.name, [f"cannot be read as {kind}: {exc}"]) from exc
+    except pd.errors.EmptyDataError as exc:
+        raise InputError(path.name, ["the file is empty (no header, no respondents)"]) from exc
+    return frame, 1
+
+
+def _cell_text(value: object) -> str:
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return str(value)
+
+
+def _row_label(index: int, header_lines: int) -> str:
+    """1-based data row, and the file line for text files."""
+    if header_lines:
+        return f"row {index + 1} (line {index + 1 + header_lines})"
+    return f"row {index + 1}"
+
+
+def read_item_spec(path: Path) -> list[ItemSpec]:
+    """Read an item spec CSV: columns ``item`` (required), ``model``, ``categories``, ``include``, ``label``."""
+    frame, header = _read_table(path)
+    columns = [c.strip() for c in frame.columns]
+    frame.columns = columns
+    if "item" not in columns:
+        raise InputError(path.name, [f"the item spec needs an 'item' column; found {', '.join(columns)}"])
+    known = {"item", "model", "categories", "include", "label"}
+    problems = [f"unknown column {c!r} (known: {', '.join(sorted(known))})" for c in columns if c not in known]
+    specs: list[ItemSpec] = []
+    seen: set[str] = set()
+    for i, row in frame.iterrows():
+        where = _row_label(int(i), header)  # type: ignore[arg-type]
+        item = str(row["item"]).strip()
+        if not item:
+            problems.append(f"{where}: empty item id")
+            continue
+        if item in seen:
+            problems.append(f"{where}: item {item!r} is listed twice")
+        seen.add(item)
+        model = str(row.get("model", "")).strip().lower() or None
+        if model is not None and model not in MODELS:
+            problems.append(f"{where}, column 'model': {model!r} is not one of {', '.join(MODELS)}")
+        raw_k = str(row.get("categories", "")).strip()
+        n_categories = None
+        if raw_k:
+            if not raw_k.isdigit() or int(raw_k) < 2:
+                problems.append(f"{where}, column 'categories': {raw_k!r} is not a whole number >= 2")
+            else:
+                n_categories = int(raw_k)
+        if model in (MODEL_2PL, MODEL_1PL) and n_categories not in (None, 2):
+            problems.append(f"{where}: model {model} needs 2 categories, the spec says {n_categories}")
+        include_raw = str(row.get("include", "")).strip().lower()
+        if include_raw not in ("", "yes", "no", "true", "false", "1", "0"):
+            problems.append(f"{where}, column 'include': {include_raw!r} is not yes/no")
+        include = include_raw not in ("no", "false", "0")
+        specs.append(ItemSpec(item, model, n_categories, include, str(row.get("label", "")).strip()))
+    if problems:
+        raise InputError(path.name, problems[:MAX_PROBLEMS], total=len(problems))
+    return specs
+
+
+def read_responses(
+    path: Path | str,
+    *,
+    id_column: str = "id",
+    group_column: str | None = None,
+    item_spec: Sequence[ItemSpec] | None = None,
+    dichotomous_model: str = MODEL_2PL,
+) -> ResponseData:
+    """Read and validate a response table for calibration.
+
+    Without a spec every column other than the id (and group) column is an item,
+    with categories ``0 .. max code``; each of those categories must occur (an
+    unobserved category cannot be estimated). With a spec, only included items are
+    read, codes must lie within the declared categories, and other columns are
+    ignored with a note.
+    """
+    path = Path(path)
+    frame, header = _read_table(path)
+    source = path.name
+    frame.columns = [str(c).strip() for c in frame.columns]
+    problems: list[str] = []
+    columns = list(frame.columns)
+    duplicated_columns = sorted({c for c in columns if columns.count(c) > 1})
+    if duplicated_columns:
+        raise InputError(source, [f"column {c!r} appears more than once in the header" for c in duplicated_columns])
+    if id_column not in columns:
+        raise InputError(source, [f"no id column {id_column!r}; the columns are: {', '.join(columns)} "
+                                  "(choose one with --id-column)"])
+    if group_column is not None and group_column not in columns:
+        raise InputError(source, [f"no group column {group_column!r}; the columns are: {', '.join(columns)}"])
+    if len(frame) == 0:
+        raise InputError(source, ["the file has a header but no respondents"])
+
+    reserved = {id_column} | ({group_column} if group_column else set())
+    notes: list[str] = []
+    if item_spec is None:
+        item_ids = [c for c in columns if c not in reserved]
+        declared: dict[str, ItemSpec] = {c: ItemSpec(c) for c in item_ids}
+    else:
+        declared = {s.item: s for s in item_spec if s.include}
+        excluded = [s.item for s in item_spec if not s.include]
+        missing = [s for s in declared if s not in columns]
+        if missing:
+            problems.extend(f"item {m!r} from the item spec has no column in the file" for m in missing)
+        item_ids = [c for c in columns if c in declared]
+        ignored = [c for c in columns if c not in reserved and c not in declared]
+        if ignored:
+            notes.append(f"columns not in the item spec were ignored: {', '.join(ignored)}")
+        if excluded:
+            notes.append(f"items excluded by the item spec: {', '.join(excluded)}")
+    if not item_ids:
+        problems.append("no item columns: every column other than the id column is read as an item")
+    if problems:
+        raise InputError(source, problems)
+
+    ids, problems = _respondent_ids(frame, id_column, header)
+    responses, code_problems = parse_codes(frame[item_ids], header)
+    problems.extend(code_problems)
+    if problems:
+        raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
+
+    n_categories, models, category_problems = _categories_and_models(
+        responses, item_ids, declared, header, dichotomous_model
+    )
+    if category_problems:
+        raise InputError(source, category_problems[:MAX_PROBLEMS], total=len(category_problems))
+
+    groups = _group_labels(frame, group_column, header, source)
+    return ResponseData(
+        ids=tuple(ids),
+        item_ids=tuple(item_ids),
+        responses=responses,
+        n_categories=n_categories,
+        models=models,
+        groups=groups,
+        source=source,
+        source_sha256=file_sha256(path),
+        notes=tuple(notes),
+    )
+
+
+def _respondent_ids(frame: pd.DataFrame, id_column: str, header: int) -> tuple[list[str], list[str]]:
+    """Ids as text; empty and duplicate ids are problems naming their rows."""
+    problems: list[str] = []
+    ids = [str(v).strip() for v in frame[id_column].tolist()]
+    first_row: dict[str, int] = {}
+    for i, value in enumerate(ids):
+        if not value:
+            problems.append(f"{_row_label(i, header)}, column {id_column!r}: empty respondent id")
+        elif value in first_row:
+            problems.append(
+                f"{_row_label(i, header)}, column {id_column!r}: duplicate id {value!r} "
+                f"(first seen at {_row_label(first_row[value], header)})"
+            )
+        first_row.setdefault(value, i)
+    return ids, problems
+
+
+def _group_labels(frame: pd.DataFrame, group_column: str | None, header: int, source: str) -> tuple[str, ...] | None:
+    if group_column is None:
+        return None
+    groups = tuple(str(v).strip() for v in frame[group_column].tolist())
+    empty = [i for i, g in enumerate(groups) if not g]
+    if empty:
+        raise InputError(
+            source,
+            [f"{_row_label(i, header)}, column {group_column!r}: empty group" for i in empty[:MAX_PROBLEMS]],
+            total=len(empty),
+        )
+    return groups
+
+
+def read_for_scoring(
+    path: Path | str,
+    *,
+    item_categories: dict[str, int],
+    id_column: str = "id",
+    group_column: str | None = None,
+    ignore_columns: Sequence[str] = (),
+) -> ResponseData:
+    """Read a response table to score against known items.
+
+    Item columns must be items of the bundle (``item_categories`` maps each to its
+    number of categories) and codes must lie within those categories. A column
+    that is neither an item, the id, the group nor listed in ``ignore_columns`` is
+    an error (a misspelt item would otherwise be silently unscored). Bundle items
+    without a column count as not administered, with a note.
+    """
+    path = Path(path)
+    frame, header = _read_table(path)
+    source = path.name
+    frame.columns = [str(c).strip() for c in frame.columns]
+    columns = list(frame.columns)
+    if id_column not in columns:
+        raise InputError(source, [f"no id column {id_column!r}; the columns are: {', '.join(columns)} "
+                                  "(choose one with --id-column)"])
+    if group_column is not None and group_column not in columns:
+        raise InputError(source, [f"no group column {group_column!r}; the columns are: {', '.join(columns)}"])
+    if len(frame) == 0:
+        raise InputError(source, ["the file has a header but no respondents"])
+    reserved = {id_column, *ignore_columns} | ({group_column} if group_column else set())
+    unknown = [c for c in columns if c not in reserved and c not in item_categories]
+    problems = [
+        f"column {c!r} is not an item of the bundle (known items: {', '.join(list(item_categories)[:8])}"
+        f"{', ...' if len(item_categories) > 8 else ''}); pass --ignore-columns {c} to skip it"
+        for c in unknown
+    ]
+    if problems:
+        raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
+    present = [c for c in columns if c in item_categories]
+    if not present:
+        raise InputError(source, ["no column matches an item of the bundle"])
+    ids, problems = _respondent_ids(frame, id_column, header)
+    parsed, code_problems = parse_codes(frame[present], header)
+    problems.extend(code_problems)
+    for j, item in enumerate(present):
+        k = item_categories[item]
+        over = np.flatnonzero(parsed[:, j] >= k)
+        for row in over[: max(0, MAX_PROBLEMS - len(problems))]:
+            problems.append(
+                f"{_row_label(int(row), header)}, column {item!r}: category code {int(parsed[row, j])} is outside "
+                f"the item's categories 0..{k - 1}"
+            )
+    if problems:
+        raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
+    order = list(item_categories)
+    responses = np.full((len(frame), len(order)), np.nan)
+    for j, item in enumerate(present):
+        responses[:, order.index(item)] = parsed[:, j]
+    absent = [c for c in order if c not in present]
+    notes = [f"bundle items with no column, scored as not administered: {', '.join(absent)}"] if absent else []
+    return ResponseData(
+        ids=tuple(ids),
+        item_ids=tuple(order),
+        responses=responses,
+        n_categories=np.array([item_categories[c] for c in order], dtype=np.int64),
+        models=tuple(MODEL_GRM if item_categories[c] > 2 else MODEL_2PL for c in order),
+        groups=_group_labels(frame, group_column, header, source),
+        source=source,
+        source_sha256=file_sha256(path),
+        notes=tuple(notes),
+    )
+
+
+def parse_codes(frame: pd.DataFrame, header_lines: int) -> tuple[FloatArray, list[str]]:
+    """Text cells to float codes: empty = NaN, otherwise a whole number >= 0."""
+    values = frame.to_numpy(dtype=object)
+    stripped = np.char.strip(values.astype(str))
+    empty = stripped == ""
+    out = np.full(stripped.shape, np.nan)
+    problems: list[str] = []
+    numeric = pd.to_numeric(pd.Series(stripped[~empty]), errors="coerce").to_numpy(dtype=np.float64)
+    out[~empty] = numeric
+    bad = ~empty & ~(np.isfinite(out) & (out >= 0) & (np.floor(out) == out))
+    columns = list(frame.columns)
+    for i, j in zip(*np.nonzero(bad), strict=True):
+        problems.append(
+            f"{_row_label(int(i), header_lines)}, column {columns[j]!r}: value {values[i, j]!r} is not a "
+            "category code (a whole number >= 0, or empty for not administered)"
+        )
+        if len(problems) >= MAX_PROBLEMS:
+            break
+    total = int(bad.sum())
+    if total > len(problems):
+        problems.append(f"... {total - len(problems)} more cells like these")
+    out[bad] = np.nan
+    return out, problems
+
+
+def _categories_and_models(
+    responses: FloatArray,
+    item_ids: list[str],
+    declared: dict[str, ItemSpec],
+    header_lines: int,
+    dichotomous_model: str,
+) -> tuple[IntArray, tuple[str, ...], list[str]]:
+    problems: list[str] = []
+    n_categories = np.zeros(len(item_ids), dtype=np.int64)
+    models: list[str] = []
+    for j, item in enumerate(item_ids):
+        column = responses[:, j]
+        answered = column[~np.isnan(column)]
+        spec = declared[item]
+        if answered.size == 0:
+            problems.append(f"item {item!r}: no respondent answered it")
+            models.append(MODEL_2PL)
+            continue
+        top = int(answered.max())
+        k = spec.n_categories if spec.n_categories is not None else max(top + 1, 2)
+        if spec.n_categories is not None and top >= spec.n_categories:
+            row = int(np.flatnonzero(column >= spec.n_categories)[0])
+            problems.append(
+                f"{_row_label(row, header_lines)}, column {item!r}: category code {int(column[row])} is outside "
+                f"the item's categories 0..{spec.n_categories - 1} (item spec)"
+            )
+        else:
+            counts = np.bincount(answered.astype(np.int64), minlength=k)
+            unseen = [c for c in range(k) if counts[c] == 0]
+            # An item with a single observed category has no variance: the pipeline reports and
+            # leaves it out. An unobserved category inside the range cannot be estimated.
+            if unseen and np.count_nonzero(counts) > 1:
+                seen = ", ".join(str(c) for c in range(k) if counts[c] > 0)
+                problems.append(
+                    f"item {item!r}: category {', '.join(map(str, unseen))} has no responses (codes seen: {seen}); "
+                    "recode the item so its categories are 0..K-1 with every category used"
+                )
+        n_categories[j] = k
+        model = spec.model or (dichotomous_model if k == 2 else MODEL_GRM)
+        if model in (MODEL_2PL, MODEL_1PL) and k != 2:
+            problems.append(f"item {item!r}: model {model} needs 2 categories, the data have {k}")
+        models.append(model)
+    return n_categories, tuple(models), problems
+
+
+def write_csv_atomic(frame: pd.DataFrame, path: Path) -> None:
+    """Write a table next to its destination and rename it into place (no half-written output)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", newline="", encoding="utf-8") as handle:
+            frame.to_csv(handle, index=False, float_format="%.6f")
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def finite_or_none(value: float) -> float | None:
+    """JSON has no NaN: missing statistics are written as null."""
+    return None if value is None or not math.isfinite(value) else float(value)

@@ -1,0 +1,1 @@
+"""Classical and model-based quality checks."""

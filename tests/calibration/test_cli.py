@@ -1,0 +1,109 @@
+"""The command line end to end: calibrate, score, bundle, demo; errors and exit codes."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from calibration.bundle import DirectoryStore
+from calibration.bundle.scorer import BundleScorer
+from calibration.cli import main
+from calibration.demo import make_demo_responses
+from calibration.irt.likelihood import QuadratureGrid
+from calibration.irt.scoring import NormalPrior, eap_scores
+
+
+@pytest.fixture(scope="module")
+def published(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
+    root = tmp_path_factory.mktemp("cli")
+    data = root / "responses.csv"
+    make_demo_responses(800, seed=5).to_csv(data, index=False)
+    assert main(["calibrate", str(data), "--name", "skills", "--store", str(root / "store")]) == 0
+    return data, root / "store"
+
+
+def test_calibrate_publishes_version_one(published: tuple[Path, Path]) -> None:
+    _, store_dir = published
+    bundle = DirectoryStore(store_dir).get("skills", 1)
+    assert len(bundle.items) == 24
+    assert bundle.fit.converged
+    assert bundle.provenance.n_respondents == 800
+
+
+def test_score_output_matches_the_library(published: tuple[Path, Path], tmp_path: Path) -> None:
+    data, store_dir = published
+    out = tmp_path / "scores.csv"
+    assert main(["score", str(data), "--bundle", "skills@1", "--store", str(store_dir), "--out", str(out)]) == 0
+    frame = pd.read_csv(out, keep_default_na=False)
+    for column in ("id", "theta", "se", "scale_score", "scale_se", "items_answered", "flags"):
+        assert column in frame.columns
+    bundle = DirectoryStore(store_dir).get("skills", 1)
+    scorer = BundleScorer(bundle)
+    raw = pd.read_csv(data)
+    x = raw[list(scorer.item_ids)].to_numpy(dtype=float)
+    direct = eap_scores(scorer.plans["all"].params, x, grid=QuadratureGrid(), prior=NormalPrior())
+    # The CSV keeps 6 decimals.
+    np.testing.assert_allclose(frame["theta"], direct.theta, atol=5e-7)
+    np.testing.assert_allclose(frame["se"], direct.se, atol=5e-7)
+    assert (frame["items_answered"] == (~np.isnan(x)).sum(axis=1)).all()
+
+
+def test_bad_cell_exits_2_names_the_cell_and_publishes_nothing(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    data = tmp_path / "bad.csv"
+    frame = make_demo_responses(100, seed=1).astype(str)
+    frame.loc[41, "DOC03"] = "yes"
+    frame.to_csv(data, index=False)
+    store_dir = tmp_path / "store"
+    assert main(["calibrate", str(data), "--name", "skills", "--store", str(store_dir)]) == 2
+    err = capsys.readouterr().err
+    assert "row 42 (line 43), column 'DOC03': value 'yes'" in err
+    assert DirectoryStore(store_dir).names() == []
+
+
+def test_too_few_respondents_is_a_clear_error(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    data = tmp_path / "small.csv"
+    make_demo_responses(30, seed=2).to_csv(data, index=False)
+    assert main(["calibrate", str(data), "--name", "s", "--store", str(tmp_path / "st")]) == 2
+    assert "30 respondents; a calibration needs at least 50" in capsys.readouterr().err
+
+
+def test_item_without_variance_is_left_out_and_reported(tmp_path: Path) -> None:
+    data = tmp_path / "flat.csv"
+    frame = make_demo_responses(600, seed=3)
+    frame["NUM01"] = 1
+    frame.to_csv(data, index=False)
+    assert main(["calibrate", str(data), "--name", "flat", "--store", str(tmp_path / "st")]) == 0
+    bundle = DirectoryStore(tmp_path / "st").get("flat", 1)
+    assert [e.id for e in bundle.excluded_items] == ["NUM01"]
+    assert "no variance: all 600 respondents who answered gave category 1" in bundle.excluded_items[0].reason
+    assert any("NUM01" in w for w in bundle.quality.warnings)
+
+
+def test_unknown_bundle_exits_3(published: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    data, store_dir = published
+    code = main(["score", str(data), "--bundle", "skills@7", "--store", str(store_dir), "--out", str(tmp_path / "o")])
+    assert code == 3
+    assert "bundle 'skills' has no version 7" in capsys.readouterr().err
+    assert not (tmp_path / "o").exists()
+
+
+def test_bundle_list_show_alias(published: tuple[Path, Path], capsys: pytest.CaptureFixture) -> None:
+    _, store_dir = published
+    assert main(["bundle", "alias", "skills@1", "production", "--store", str(store_dir)]) == 0
+    assert main(["bundle", "list", "--store", str(store_dir)]) == 0
+    listing = capsys.readouterr().out
+    assert "skills" in listing and "production -> 1" in listing
+    assert main(["bundle", "show", "skills@production", "--store", str(store_dir)]) == 0
+    assert "NUM01" in capsys.readouterr().out
+    assert main(["bundle", "alias", "skills", "production", "--store", str(store_dir)]) == 2
+
+
+def test_demo_runs_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    assert main(["demo", "--out", str(tmp_path), "--respondents", "600"]) == 0
+    scores = pd.read_csv(tmp_path / "tidewater_skills_scores.csv")
+    assert len(scores) == 600
+    assert DirectoryStore(tmp_path / "store").aliases("tidewater-skills")["production"].version == 1
+    assert "measurement error" in capsys.readouterr().out

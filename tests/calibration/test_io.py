@@ -1,0 +1,107 @@
+"""Bad input gets a clear error naming row, column and value; good input reads exactly."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from calibration.io import InputError, read_for_scoring, read_item_spec, read_responses
+
+
+def write(tmp_path: Path, text: str, name: str = "responses.csv") -> Path:
+    path = tmp_path / name
+    path.write_text(text)
+    return path
+
+
+def test_reads_codes_and_missing(tmp_path: Path) -> None:
+    path = write(tmp_path, "id,Q1,Q2,Q3\na,1,0,2\nb,0,,1\nc,1,1,0\n")
+    data = read_responses(path)
+    assert data.item_ids == ("Q1", "Q2", "Q3")
+    np.testing.assert_array_equal(data.n_categories, [2, 2, 3])
+    assert data.models == ("2pl", "2pl", "grm")
+    assert np.isnan(data.responses[1, 1])
+    assert len(data.source_sha256) == 64
+
+
+def test_non_numeric_cell_names_row_line_column_and_value(tmp_path: Path) -> None:
+    path = write(tmp_path, "id,Q1,Q2\na,1,0\nb,x,1\n")
+    with pytest.raises(InputError) as err:
+        read_responses(path)
+    assert "row 2 (line 3), column 'Q1': value 'x' is not a category code" in str(err.value)
+
+
+@pytest.mark.parametrize("value", ["-1", "1.5", "inf"])
+def test_negative_fractional_or_infinite_codes_are_refused(tmp_path: Path, value: str) -> None:
+    path = write(tmp_path, f"id,Q1,Q2\na,1,0\nb,{value},1\nc,0,1\n")
+    with pytest.raises(InputError, match=rf"column 'Q1': value '{value}'"):
+        read_responses(path)
+
+
+def test_empty_file_and_header_only(tmp_path: Path) -> None:
+    with pytest.raises(InputError, match="the file is empty"):
+        read_responses(write(tmp_path, ""))
+    with pytest.raises(InputError, match="header but no respondents"):
+        read_responses(write(tmp_path, "id,Q1,Q2\n"))
+
+
+def test_duplicate_ids_name_both_rows(tmp_path: Path) -> None:
+    path = write(tmp_path, "id,Q1,Q2\na,1,0\nb,0,1\na,1,1\n")
+    with pytest.raises(InputError, match=r"row 3 \(line 4\), column 'id': duplicate id 'a' \(first seen at row 1"):
+        read_responses(path)
+
+
+def test_missing_id_column_lists_the_columns(tmp_path: Path) -> None:
+    with pytest.raises(InputError, match="no id column 'id'; the columns are: person, Q1"):
+        read_responses(write(tmp_path, "person,Q1\na,1\n"))
+
+
+def test_unobserved_middle_category_is_an_error(tmp_path: Path) -> None:
+    path = write(tmp_path, "id,Q1,Q2\na,0,0\nb,3,1\nc,1,1\n")
+    with pytest.raises(InputError, match=r"item 'Q1': category 2 has no responses \(codes seen: 0, 1, 3\)"):
+        read_responses(path)
+
+
+def test_item_spec_declares_categories_and_rejects_codes_outside(tmp_path: Path) -> None:
+    spec = read_item_spec(write(tmp_path, "item,model,categories\nQ1,grm,3\nQ2,2pl,\n", "spec.csv"))
+    path = write(tmp_path, "id,Q1,Q2,age\na,0,0,40\nb,3,1,30\nc,1,1,22\n")
+    with pytest.raises(InputError, match=r"row 2 \(line 3\), column 'Q1': category code 3 is outside .* 0..2"):
+        read_responses(path, item_spec=spec)
+    ok = write(tmp_path, "id,Q1,Q2,age\na,0,0,40\nb,2,1,30\nc,1,1,22\n", "ok.csv")
+    data = read_responses(ok, item_spec=spec)
+    assert data.item_ids == ("Q1", "Q2")
+    assert any("age" in n for n in data.notes)
+
+
+def test_item_spec_problems_are_listed(tmp_path: Path) -> None:
+    with pytest.raises(InputError) as err:
+        read_item_spec(write(tmp_path, "item,model,categories\nQ1,3pl,\nQ1,2pl,4\n", "spec.csv"))
+    text = str(err.value)
+    assert "'3pl' is not one of" in text
+    assert "item 'Q1' is listed twice" in text
+    assert "model 2pl needs 2 categories, the spec says 4" in text
+
+
+def test_parquet_reads_like_csv(tmp_path: Path) -> None:
+    frame = pd.DataFrame({"id": ["a", "b", "c"], "Q1": [1.0, np.nan, 0.0], "Q2": [0, 1, 1]})
+    path = tmp_path / "r.parquet"
+    frame.to_parquet(path)
+    data = read_responses(path)
+    assert np.isnan(data.responses[1, 0])
+    np.testing.assert_array_equal(data.responses[:, 1], [0, 1, 1])
+
+
+def test_scoring_input_refuses_unknown_columns_and_out_of_range_codes(tmp_path: Path) -> None:
+    categories = {"Q1": 2, "Q2": 3}
+    with pytest.raises(InputError, match="column 'Q9' is not an item of the bundle.*--ignore-columns Q9"):
+        read_for_scoring(write(tmp_path, "id,Q1,Q9\na,1,0\n"), item_categories=categories)
+    with pytest.raises(InputError, match=r"row 1 \(line 2\), column 'Q2': category code 3 is outside .* 0..2"):
+        read_for_scoring(write(tmp_path, "id,Q1,Q2\na,1,3\n"), item_categories=categories)
+    data = read_for_scoring(write(tmp_path, "id,Q2,site\na,2,x\n"), item_categories=categories,
+                            ignore_columns=["site"])
+    assert data.item_ids == ("Q1", "Q2")
+    assert np.isnan(data.responses[0, 0]) and data.responses[0, 1] == 2
+    assert any("Q1" in n for n in data.notes)
