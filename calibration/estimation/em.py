@@ -30,12 +30,14 @@ from typing import Any
 import numpy as np
 
 from calibration.irt.likelihood import (
+    DEFAULT_CHUNK,
     QuadratureGrid,
     ResponseDesign,
     build_design,
     log_likelihood_grid,
     normal_log_weights,
-    normalised_posterior,
+    run_blocks,
+    split_log_table,
 )
 from calibration.irt.models import (
     MODEL_1PL,
@@ -187,19 +189,36 @@ def expected_counts(
     weights : array of shape (n_persons,)
         Frequency weight of each row (pattern counts after compression).
     """
-    loglik = log_likelihood_grid(params, points, design)
-    posterior, log_marginal = normalised_posterior(loglik, log_prior)
-    posterior *= weights[:, None]
+    base, contrast = split_log_table(params, points, design)
+    row = log_prior + (base.sum(axis=0) if design.administered is None else 0.0)
+
+    def block(rows: slice) -> tuple[FloatArray, FloatArray, float]:
+        # Posterior of the rows in this block, folded straight into partial sums.
+        joint = design.indicators[rows] @ contrast
+        if design.administered is not None:
+            joint += design.administered[rows] @ base
+        joint += row
+        peak = joint.max(axis=1)
+        joint -= peak[:, None]
+        np.exp(joint, out=joint)
+        total = joint.sum(axis=1)
+        w = weights[rows]
+        joint *= (w / total)[:, None]
+        log_lik = float(w @ (np.log(total) + peak))
+        by_category = design.indicators[rows].T @ joint
+        if design.administered is None:
+            answered = np.broadcast_to(joint.sum(axis=0), (params.n_items, points.shape[0]))
+        else:
+            answered = design.administered[rows].T @ joint
+        return by_category, answered, log_lik
+
+    parts = run_blocks(block, design.n_persons, DEFAULT_CHUNK, workers=None)
     k_max = params.max_categories
     counts = np.zeros((params.n_items, k_max, points.shape[0]))
-    counts[design.column_item, design.column_category, :] = design.indicators.T @ posterior
-    if design.administered is None:
-        total = np.broadcast_to(posterior.sum(axis=0), (params.n_items, points.shape[0]))
-    else:
-        total = design.administered.T @ posterior
-    counts[:, 0, :] = total - counts[:, 1:, :].sum(axis=1)
+    counts[design.column_item, design.column_category, :] = sum(p[0] for p in parts)
+    counts[:, 0, :] = sum(p[1] for p in parts) - counts[:, 1:, :].sum(axis=1)
     np.maximum(counts, 0.0, out=counts)  # rounding can leave -1e-13 in category 0
-    return ExpectedCounts(counts=counts, log_likelihood=float(weights @ log_marginal))
+    return ExpectedCounts(counts=counts, log_likelihood=float(sum(p[2] for p in parts)))
 
 
 def _item_blocks(
@@ -443,9 +462,17 @@ def starting_values(
     return ItemParameters(slopes=slopes, intercepts=intercepts, n_categories=k, models=models)
 
 
-def compress_patterns(responses: FloatArray) -> tuple[FloatArray, FloatArray, IntArray]:
-    """Unique response rows, their frequencies and the map back (NaN kept as missing)."""
+def compress_patterns(responses: FloatArray) -> tuple[FloatArray, FloatArray, IntArray] | None:
+    """Unique response rows, their frequencies and the map back (NaN kept as missing).
+
+    Returns None when compression would save less than 20% of the rows; a cheap
+    1-D key (a fixed random projection of each row) decides that before the exact,
+    costlier row-wise ``np.unique``.
+    """
     coded = np.where(np.isnan(responses), -1.0, responses)
+    keys = coded @ np.random.default_rng(0).random(coded.shape[1])
+    if np.unique(keys).size > 0.8 * coded.shape[0]:
+        return None
     unique, inverse, counts = np.unique(coded, axis=0, return_inverse=True, return_counts=True)
     unique = np.where(unique < 0, np.nan, unique)
     return unique, counts.astype(np.float64), inverse.reshape(-1)
@@ -505,10 +532,9 @@ def calibrate_single_group(
     models = models or tuple("2pl" if kk == 2 else "grm" for kk in k)
     if start is None:
         start = starting_values(x, k, models)
-    if settings.compress_patterns:
-        rows, weights, _ = compress_patterns(x)
-        if rows.shape[0] > 0.8 * n_persons:
-            rows, weights = x, np.ones(n_persons)
+    compressed = compress_patterns(x) if settings.compress_patterns else None
+    if compressed is not None:
+        rows, weights, _ = compressed
     else:
         rows, weights = x, np.ones(n_persons)
     design = build_design(rows, k)

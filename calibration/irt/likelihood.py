@@ -15,11 +15,40 @@ the first product is a constant row, so the work is one (N x J) by (J x Q) produ
 
 from __future__ import annotations
 
+import os
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from typing import TypeVar
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from calibration.irt.models import FloatArray, IntArray, ItemParameters, log_category_probabilities
+
+# Rows per block: small enough that the (rows x points) work arrays stay in cache.
+DEFAULT_CHUNK = 4_096
+
+T = TypeVar("T")
+
+
+def chunks(n: int, size: int) -> list[slice]:
+    """Consecutive row slices of at most ``size`` rows (one empty slice for n = 0)."""
+    return [slice(i, min(i + size, n)) for i in range(0, n, size)] or [slice(0, 0)]
+
+
+def run_blocks(block: Callable[[slice], T], n_rows: int, chunk_size: int, *, workers: int | None) -> list[T]:
+    """Call ``block`` on every row slice (several threads for large inputs); results in order.
+
+    numpy releases the GIL in its kernels, so threads scale; BLAS is held to one
+    thread meanwhile so the two levels of parallelism do not oversubscribe the cores.
+    """
+    slices = chunks(n_rows, chunk_size)
+    n_workers = min(workers or min(os.cpu_count() or 1, 4), len(slices))
+    if n_workers <= 1:
+        return [block(rows) for rows in slices]
+    with threadpool_limits(1), ThreadPoolExecutor(n_workers) as pool:
+        return list(pool.map(block, slices))
 
 
 @dataclass(frozen=True)
@@ -168,25 +197,3 @@ def log_likelihood_grid(
         loglik += design.administered @ base
     loglik += row[None, :]
     return loglik
-
-
-def normalised_posterior(loglik: FloatArray, log_prior: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """Posterior weights over the grid and the log marginal likelihood of each row.
-
-    Parameters
-    ----------
-    loglik : array of shape (n_persons, n_points)
-    log_prior : array of shape (n_points,) or (n_persons, n_points)
-
-    Returns
-    -------
-    posterior : array of shape (n_persons, n_points), rows sum to 1
-    log_marginal : array of shape (n_persons,)
-    """
-    joint = loglik + log_prior
-    peak = joint.max(axis=1, keepdims=True)
-    np.subtract(joint, peak, out=joint)
-    np.exp(joint, out=joint)
-    total = joint.sum(axis=1, keepdims=True)
-    joint /= total
-    return joint, (np.log(total) + peak)[:, 0]

@@ -8,20 +8,18 @@ chunks of rows so memory stays bounded. Responses are validated category codes
 from __future__ import annotations
 
 import math
-import os
-from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
 from calibration.irt.likelihood import (
+    DEFAULT_CHUNK,
     QuadratureGrid,
     ResponseDesign,
     build_design,
     log_likelihood_grid,
     normal_log_weights,
+    run_blocks,
     split_log_table,
 )
 from calibration.irt.models import (
@@ -37,8 +35,6 @@ METHOD_MAP = "map"
 METHOD_ML = "ml"
 METHODS = (METHOD_EAP, METHOD_MAP, METHOD_ML)
 
-# Rows per block: small enough that the (rows x points) work arrays stay in cache.
-DEFAULT_CHUNK = 4_096
 
 
 @dataclass(frozen=True)
@@ -63,27 +59,6 @@ class ThetaScores:
     n_answered: IntArray
     extreme: np.ndarray
     method: str
-
-
-def _chunks(n: int, size: int) -> list[slice]:
-    return [slice(i, min(i + size, n)) for i in range(0, n, size)] or [slice(0, 0)]
-
-
-def run_blocks(block: Callable[[slice], None], n_rows: int, chunk_size: int, *, workers: int | None) -> None:
-    """Call ``block`` on every row slice, on several threads when the input is large.
-
-    numpy releases the GIL in its kernels, so threads scale; BLAS is held to one
-    thread meanwhile so the two levels of parallelism do not oversubscribe the cores.
-    """
-    slices = _chunks(n_rows, chunk_size)
-    n_workers = min(workers or min(os.cpu_count() or 1, 4), len(slices))
-    if n_workers <= 1:
-        for rows in slices:
-            block(rows)
-        return
-    with threadpool_limits(1), ThreadPoolExecutor(n_workers) as pool:
-        for _ in pool.map(block, slices):
-            pass
 
 
 def _extreme_low_high(design: ResponseDesign) -> tuple[np.ndarray, np.ndarray]:
@@ -226,8 +201,11 @@ def map_scores(
     eap = eap_scores(params, x, grid=grid, prior=prior, chunk_size=chunk_size)
     theta = np.empty(x.shape[0])
     se = np.empty(x.shape[0])
-    for rows in _chunks(x.shape[0], chunk_size):
+
+    def block(rows: slice) -> None:
         theta[rows], se[rows] = _newton_theta(params, x[rows], eap.theta[rows], prior=prior, bound=10.0)
+
+    run_blocks(block, x.shape[0], chunk_size, workers=None)
     return ThetaScores(theta=theta, se=se, n_answered=eap.n_answered, extreme=eap.extreme, method=METHOD_MAP)
 
 
@@ -258,9 +236,11 @@ def ml_scores(
     # Start from the proportion of the maximum score, stretched to the theta range.
     fraction = design.summed_score / np.maximum(design.max_score, 1.0)
     start = np.clip((fraction - 0.5) * 4.0, -bound, bound)
-    for rows in _chunks(x.shape[0], chunk_size):
-        t, s = _newton_theta(params, x[rows], start[rows], prior=None, bound=bound)
-        theta[rows], se[rows] = t, s
+
+    def block(rows: slice) -> None:
+        theta[rows], se[rows] = _newton_theta(params, x[rows], start[rows], prior=None, bound=bound)
+
+    run_blocks(block, x.shape[0], chunk_size, workers=None)
     theta[extreme] = np.where(low[extreme], -bound, bound)
     if extreme.any():
         ext_rows = np.flatnonzero(extreme)
