@@ -4,11 +4,11 @@ from __future__ import annotations
 
 import sys
 
-from benchmarks import bench_calibration, bench_scoring
+from benchmarks import bench_calibration, bench_recovery, bench_scoring
 
 
 def main() -> int:
-    for module in (bench_calibration, bench_scoring):
+    for module in (bench_calibration, bench_scoring, bench_recovery):
         print(f"\n=== {module.__name__} ===")
         module.main()
     return 0

@@ -190,3 +190,13 @@ def test_starting_values_are_deterministic(lsat6: dict) -> None:
         one = calibrate_single_group(lsat6["responses"], TWO)
         two = calibrate_single_group(lsat6["responses"], TWO)
     np.testing.assert_array_equal(one.params.slopes, two.params.slopes)
+
+
+@pytest.mark.slow
+def test_large_recovery_study() -> None:
+    # Seeded simulation, large: the benchmark's recovery design; SD/SE near 1 means honest SEs.
+    from benchmarks.bench_recovery import run
+
+    r = run(replications=10, n=5000)
+    assert abs(r["slope_bias"]) < 0.02 and abs(r["threshold_bias"]) < 0.02
+    assert 0.8 < r["slope_sd_over_se"] < 1.25
