@@ -440,7 +440,7 @@ class LatentSpec:
         return int(self.free_mean.sum() + self.free_sd.sum())
 
 
-def _latent_update(mass: FloatArray, points: FloatArray, mean: float, sd: float, free_mean: bool, free_sd: bool
+def latent_update(mass: FloatArray, points: FloatArray, mean: float, sd: float, free_mean: bool, free_sd: bool
                    ) -> tuple[float, float]:
     """Normal latent density from the posterior mass on the grid (Bock & Zimowski 1997 moments)."""
     total = mass.sum()
@@ -535,6 +535,48 @@ class MultiGroupFit:
         return -2.0 * self.log_likelihood + self.n_parameters * math.log(max(self.n_persons, 1))
 
 
+def run_em(
+    vec: FloatArray,
+    em_map: Callable[[FloatArray], tuple[FloatArray, float]],
+    settings: EMSettings,
+    *,
+    progress: Callable[[int, float], None] | None = None,
+) -> tuple[FloatArray, bool, int, tuple[float, ...]]:
+    """Iterate an EM map (SQUAREM-accelerated) to the convergence criterion.
+
+    ``em_map(vec)`` returns the updated vector and the log-likelihood at ``vec``.
+    Warns with :class:`ConvergenceWarning` when ``max_iter`` is reached.
+    """
+    history: list[float] = []
+    converged = False
+    n_iter = 0
+    log_lik = -np.inf
+    while n_iter < settings.max_iter:
+        if settings.accelerate and n_iter >= 2:
+            new_vec, new_ll, calls = _squarem_step(vec, em_map, log_lik)
+        else:
+            new_vec, new_ll = em_map(vec)
+            calls = 1
+        n_iter += calls
+        change = float(np.max(np.abs(new_vec - vec))) if vec.size else 0.0
+        vec, log_lik = new_vec, new_ll
+        history.append(log_lik)
+        if progress is not None:
+            progress(n_iter, log_lik)
+        if change < settings.tolerance:
+            converged = True
+            break
+    if not converged:
+        warnings.warn(
+            f"EM did not converge in {settings.max_iter} iterations "
+            f"(last largest parameter change above {settings.tolerance:g}); "
+            "estimates may be unstable: check for items with near-zero variance or raise max_iter",
+            ConvergenceWarning,
+            stacklevel=3,
+        )
+    return vec, converged, n_iter, tuple(history)
+
+
 def calibrate_groups(
     responses: FloatArray,
     n_categories: IntArray,
@@ -607,40 +649,14 @@ def calibrate_groups(
         tabs, mean, sd, counts, results = e_step(vec)
         tabs = m_step(tabs, template, counts, points, layout, prior=prior, n_iter=settings.m_step_iter)
         for g, r in enumerate(results):
-            mean[g], sd[g] = _latent_update(r.point_mass, points, mean[g], sd[g],
+            mean[g], sd[g] = latent_update(r.point_mass, points, mean[g], sd[g],
                                             bool(latent.free_mean[g]), bool(latent.free_sd[g]))
         return pack(tabs, mean, sd), float(sum(r.log_likelihood for r in results))
 
-    vec = pack(tables, latent.mean, latent.sd)
-    history: list[float] = []
-    converged = False
-    n_iter = 0
-    log_lik = -np.inf
-    while n_iter < settings.max_iter:
-        if settings.accelerate and n_iter >= 2:
-            new_vec, new_ll, calls = _squarem_step(vec, em_map, log_lik)
-        else:
-            new_vec, new_ll = em_map(vec)
-            calls = 1
-        n_iter += calls
-        change = float(np.max(np.abs(new_vec - vec))) if vec.size else 0.0
-        vec, log_lik = new_vec, new_ll
-        history.append(log_lik)
-        if progress is not None:
-            progress(n_iter, log_lik)
-        if change < settings.tolerance:
-            converged = True
-            break
+    vec, converged, n_iter, history = run_em(pack(tables, latent.mean, latent.sd), em_map, settings,
+                                             progress=progress)
     tabs, mean, sd, _, results = e_step(vec)
     group_ll = np.array([r.log_likelihood for r in results])
-    if not converged:
-        warnings.warn(
-            f"EM did not converge in {settings.max_iter} iterations "
-            f"(last largest parameter change above {settings.tolerance:g}); "
-            "estimates may be unstable: check for items with near-zero variance or raise max_iter",
-            ConvergenceWarning,
-            stacklevel=2,
-        )
 
     def score(v: FloatArray) -> FloatArray:
         t, m, s_, counts, res = e_step(v)
@@ -683,7 +699,7 @@ def calibrate_groups(
         layout=layout,
         latent=latent,
         settings=settings,
-        history=tuple(history),
+        history=history,
     )
 
 

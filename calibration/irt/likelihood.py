@@ -16,13 +16,14 @@ the first product is a constant row, so the work is one (N x J) by (J x Q) produ
 from __future__ import annotations
 
 import os
+import threading
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import TypeVar
 
 import numpy as np
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 from calibration.irt.models import FloatArray, IntArray, ItemParameters, log_category_probabilities
 
@@ -37,17 +38,34 @@ def chunks(n: int, size: int) -> list[slice]:
     return [slice(i, min(i + size, n)) for i in range(0, n, size)] or [slice(0, 0)]
 
 
+_POOL: ThreadPoolExecutor | None = None
+_BLAS: ThreadpoolController | None = None
+_POOL_LOCK = threading.Lock()
+
+
+def _pool_and_blas() -> tuple[ThreadPoolExecutor, ThreadpoolController]:
+    """One process-wide worker pool and BLAS controller (creating them costs milliseconds)."""
+    global _POOL, _BLAS
+    with _POOL_LOCK:
+        if _POOL is None or _BLAS is None:
+            _POOL = ThreadPoolExecutor(max_workers=min(os.cpu_count() or 1, 4), thread_name_prefix="equitheta")
+            _BLAS = ThreadpoolController()
+        return _POOL, _BLAS
+
+
 def run_blocks(block: Callable[[slice], T], n_rows: int, chunk_size: int, *, workers: int | None) -> list[T]:
     """Call ``block`` on every row slice (several threads for large inputs); results in order.
 
     numpy releases the GIL in its kernels, so threads scale; BLAS is held to one
     thread meanwhile so the two levels of parallelism do not oversubscribe the cores.
+    Calls from inside a worker run serially (no nested pools).
     """
     slices = chunks(n_rows, chunk_size)
     n_workers = min(workers or min(os.cpu_count() or 1, 4), len(slices))
-    if n_workers <= 1:
+    if n_workers <= 1 or threading.current_thread().name.startswith("equitheta"):
         return [block(rows) for rows in slices]
-    with threadpool_limits(1), ThreadPoolExecutor(n_workers) as pool:
+    pool, blas = _pool_and_blas()
+    with blas.limit(limits=1, user_api="blas"):
         return list(pool.map(block, slices))
 
 
