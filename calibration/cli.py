@@ -22,12 +22,21 @@ from rich.table import Table
 from calibration import __version__
 from calibration.bundle import Bundle, BundleError, open_store, resolve
 from calibration.bundle.schema import ReportingScaleSettings
-from calibration.bundle.scorer import BundleScorer
+from calibration.bundle.scorer import BundleScorer, UnknownGroup
 from calibration.bundle.store import parse_reference
+from calibration.dif.irt import DifSettings
 from calibration.estimation import ConvergenceWarning, EMSettings, SlopePrior
-from calibration.io import InputError, read_for_scoring, read_item_spec, read_responses, write_csv_atomic
+from calibration.io import (
+    InputError,
+    ResponseData,
+    read_for_scoring,
+    read_item_spec,
+    read_policy_overrides,
+    read_responses,
+    write_csv_atomic,
+)
 from calibration.irt.scoring import METHODS
-from calibration.pipeline import CalibrationInputError, PipelineSettings, calibrate_data
+from calibration.pipeline import CalibrationInputError, PipelineSettings, PolicyOverride, calibrate_data
 
 CAUTION = (
     "Every score carries measurement error: report the SE with it. Scores with low reliability or few "
@@ -71,6 +80,18 @@ def _build_parser() -> argparse.ArgumentParser:
     cal.add_argument("--tolerance", type=_positive_float, default=1e-5,
                      help="largest parameter change that counts as converged")
     cal.add_argument("--alias", help="also point this alias (e.g. production) at the new version")
+    cal.add_argument("--group-column", help="column naming each respondent's group: turns on DIF screening, "
+                     "anchors and per-group policies")
+    cal.add_argument("--reference-group", help="the group whose scale is N(0,1) (default: the largest group)")
+    cal.add_argument("--dif-action", choices=["exclude", "free"], default="exclude",
+                     help="what a DIF flag does for that group: leave the item out (default) or give it "
+                          "group-specific parameters")
+    cal.add_argument("--anchors", default="", help="comma-separated anchor items (default: chosen by screening)")
+    cal.add_argument("--fdr", type=_positive_float, default=0.05, help="false discovery rate for DIF flags")
+    cal.add_argument("--mh-z", type=_positive_float, default=1.645,
+                     help="critical z of the 'greater than 1' test in the MH A/B/C rule (1.645 or 1.96)")
+    cal.add_argument("--policy-overrides", type=Path,
+                     help="CSV (item, group, status, note): reviewer decisions that override the proposed policy")
     _add_scale_options(cal)
 
     sc = sub.add_parser("score", help="score a response file with a published bundle")
@@ -81,6 +102,9 @@ def _build_parser() -> argparse.ArgumentParser:
     sc.add_argument("--id-column", default="id")
     sc.add_argument("--method", choices=METHODS, help="default: the bundle's scoring method")
     sc.add_argument("--ignore-columns", default="", help="comma-separated columns that are not items")
+    sc.add_argument("--group-column", help="column naming each respondent's group (bundles with groups)")
+    sc.add_argument("--unknown-group", choices=["error", "reference"], default="error",
+                    help="a group the bundle does not know: an error (default) or score with the reference group")
 
     bun = sub.add_parser("bundle", help="list, show and manage published bundles")
     bsub = bun.add_subparsers(dest="bundle_command", required=True)
@@ -102,7 +126,7 @@ def _build_parser() -> argparse.ArgumentParser:
 
     demo = sub.add_parser("demo", help="invent a workforce-skills data set, calibrate, score and summarise it")
     demo.add_argument("--out", type=Path, default=Path("demo-output"))
-    demo.add_argument("--respondents", type=int, default=3000)
+    demo.add_argument("--respondents", type=int, default=4500)
     demo.add_argument("--seed", type=int, default=20261201)
     return parser
 
@@ -129,6 +153,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (InputError, CalibrationInputError, UsageError) as exc:
         console.print(f"[bold red]error:[/] {exc}", highlight=False)
         return 2
+    except UnknownGroup as exc:
+        console.print(f"[bold red]error:[/] {exc} (or pass --unknown-group reference)", highlight=False)
+        return 2
     except BundleError as exc:
         console.print(f"[bold red]bundle error:[/] {exc}", highlight=False)
         return 3
@@ -137,8 +164,15 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _calibrate(args: argparse.Namespace) -> int:
     spec = read_item_spec(args.items) if args.items else None
-    data = read_responses(args.responses, id_column=args.id_column, item_spec=spec, dichotomous_model=args.model)
+    data = read_responses(args.responses, id_column=args.id_column, item_spec=spec, dichotomous_model=args.model,
+                          group_column=args.group_column)
+    overrides = [PolicyOverride(*row) for row in read_policy_overrides(args.policy_overrides)] \
+        if args.policy_overrides else []
+    anchors = tuple(a.strip() for a in args.anchors.split(",") if a.strip())
     settings = PipelineSettings(
+        dif=DifSettings(alpha=args.fdr, anchors=anchors),
+        dif_action=args.dif_action,
+        mh_greater_than_one_z=args.mh_z,
         em=EMSettings(
             max_iter=args.max_iter,
             tolerance=args.tolerance,
@@ -151,7 +185,7 @@ def _calibrate(args: argparse.Namespace) -> int:
     )
     store = open_store(args.store)
     parse_reference(args.name)  # a bad name fails before the work, not after
-    bundle = _run_calibration(data, args.name, settings)
+    bundle = _run_calibration(data, args.name, settings, args.reference_group, overrides)
     published = store.publish(bundle)
     if args.alias:
         store.set_alias(published.name, args.alias, published.version)
@@ -161,19 +195,35 @@ def _calibrate(args: argparse.Namespace) -> int:
     return 0
 
 
-def _run_calibration(data, name: str, settings: PipelineSettings) -> Bundle:  # type: ignore[no-untyped-def]
+STAGES = {
+    "screen": "observed-score and all-other-anchor DIF screening",
+    "scalar": "scalar model (all items equal across groups)",
+    "test": "anchored DIF tests and the invariance ladder",
+    "final": "final calibration under the item policy",
+    "quality": "quality checks and conversion tables",
+}
+
+
+def _run_calibration(
+    data: ResponseData, name: str, settings: PipelineSettings, reference_group: str | None,
+    overrides: list[PolicyOverride],
+) -> Bundle:
     with Progress(SpinnerColumn(), TextColumn("{task.description}"), TimeElapsedColumn(), console=console,
                   transient=True) as progress:
         task = progress.add_task(f"calibrating {data.n_items} items, {data.n_persons} respondents", total=None)
 
-        def report(stage: str, iteration: int, log_lik: float) -> None:
-            text = f"EM iteration {iteration}, log-likelihood {log_lik:,.3f}" if stage == "calibrate" else \
-                "quality checks and conversion tables"
-            progress.update(task, description=text)
+        def report(stage: str, step: int, value: float) -> None:
+            label = STAGES.get(stage, stage)
+            if stage in ("scalar", "final") and step:
+                label += f": EM iteration {step}, log-likelihood {value:,.3f}"
+            elif stage in ("screen", "test") and step:
+                label += f": {step} of {int(value)} item x group tests"
+            progress.update(task, description=label)
 
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ConvergenceWarning)  # reported in the bundle's warnings instead
-            outcome = calibrate_data(data, name=name, settings=settings, progress=report)
+            outcome = calibrate_data(data, name=name, settings=settings, reference_group=reference_group,
+                                     overrides=overrides, progress=report)
     return outcome.bundle
 
 
@@ -201,8 +251,48 @@ def _print_calibration_summary(bundle: Bundle) -> None:
     out.print(table)
     for item in bundle.excluded_items:
         out.print(f"  [yellow]left out[/] {item.id}: {item.reason}", highlight=False)
+    if len(bundle.metric.groups) > 1:
+        _print_group_summary(bundle)
     for warning in bundle.quality.warnings:
         out.print(f"  [yellow]warning:[/] {warning}", highlight=False)
+
+
+def _print_group_summary(bundle: Bundle) -> None:
+    groups = Table(title=f"groups (reference: {bundle.metric.reference_group})")
+    for col in ("group", "n", "latent mean (SE)", "latent SD (SE)", "alpha", "marginal reliability", "items left out"):
+        groups.add_column(col, justify="right" if col != "group" else "left")
+    for g in bundle.metric.groups:
+        q = bundle.quality.by_group[g.name]
+        left_out = sum(1 for item in bundle.items if item.policy[g.name].status == "excluded")
+        groups.add_row(
+            g.name, str(g.n_respondents),
+            f"{g.latent_mean:.3f}" + ("" if g.latent_mean_se is None else f" ({g.latent_mean_se:.3f})"),
+            f"{g.latent_sd:.3f}" + ("" if g.latent_sd_se is None else f" ({g.latent_sd_se:.3f})"),
+            "n/a" if q.alpha is None else f"{q.alpha:.3f}",
+            "n/a" if q.marginal_reliability is None else f"{q.marginal_reliability:.3f}", str(left_out),
+        )
+    out.print(groups)
+    out.print(f"  anchors: {', '.join(bundle.anchors.items)} ({bundle.anchors.method})", highlight=False)
+    cells = Table(title="item policy where it is not invariant (proposals: content experts review them)")
+    for col in ("item", "group", "status", "reason"):
+        cells.add_column(col)
+    for item in bundle.items:
+        for group, policy in item.policy.items():
+            if policy.status != "invariant":
+                cells.add_row(item.id, group, policy.status, policy.reason)
+    if cells.row_count:
+        out.print(cells)
+    else:
+        out.print("  no item was flagged for DIF in any group")
+    ladder = Table(title="invariance ladder")
+    for col in ("model", "log-likelihood", "parameters", "AIC", "BIC", "LR test"):
+        ladder.add_column(col, justify="right" if col != "model" else "left")
+    for row in bundle.invariance:
+        test = "" if row.lr_statistic is None else \
+            f"vs {row.compared_with}: {row.lr_statistic:.1f} on {row.df} df, p = {row.p_value:.3g}"
+        ladder.add_row(row.model, f"{row.log_likelihood:,.1f}", str(row.n_parameters), f"{row.aic:,.1f}",
+                       f"{row.bic:,.1f}", test)
+    out.print(ladder)
 
 
 def _score(args: argparse.Namespace) -> int:
@@ -211,8 +301,13 @@ def _score(args: argparse.Namespace) -> int:
     scorer = BundleScorer(bundle)
     ignore = [c.strip() for c in args.ignore_columns.split(",") if c.strip()]
     data = read_for_scoring(args.responses, item_categories=scorer.item_categories, id_column=args.id_column,
-                            ignore_columns=ignore)
-    frame = score_frame(scorer, data.responses, list(data.ids), None, method=args.method)
+                            group_column=args.group_column, ignore_columns=ignore)
+    if data.groups is None and scorer.default_group is None:
+        raise UsageError(f"bundle {bundle.label} has groups ({', '.join(scorer.plans)}); "
+                         "name the group column with --group-column")
+    groups = None if data.groups is None else list(data.groups)
+    frame = score_frame(scorer, data.responses, list(data.ids), groups, method=args.method,
+                        unknown_to_reference=args.unknown_group == "reference")
     write_csv_atomic(frame, args.out)
     for note in data.notes:
         console.print(f"note: {note}", highlight=False)
@@ -221,14 +316,17 @@ def _score(args: argparse.Namespace) -> int:
 
 
 def score_frame(
-    scorer: BundleScorer, responses: np.ndarray, ids: list[str], groups: list[str] | None, *, method: str | None
+    scorer: BundleScorer, responses: np.ndarray, ids: list[str], groups: list[str] | None, *, method: str | None,
+    unknown_to_reference: bool = False,
 ) -> pd.DataFrame:
     """The scored output table (the column names are an interface: keep them)."""
-    resolved = scorer.resolve_groups(groups, len(ids))
+    resolved = scorer.resolve_groups(groups, len(ids), unknown_to_reference=unknown_to_reference)
     result = scorer.score(responses, resolved, method=method)
+    excluded = {g: ";".join(item for item, _ in scorer.excluded_for(g)) for g in scorer.plans}
     return pd.DataFrame(
         {
             "id": ids,
+            "group": resolved,
             "theta": result.theta,
             "se": result.se,
             "scale_score": result.scale_score,
@@ -236,6 +334,7 @@ def score_frame(
             "items_answered": result.n_answered,
             "method": result.method,
             "flags": [";".join(f) for f in result.flags],
+            "excluded_items": [excluded[g] for g in resolved],
             "bundle": scorer.bundle.label,
         }
     )
@@ -303,10 +402,13 @@ def _demo(args: argparse.Namespace) -> int:
     data_path = root / "tidewater_skills_responses.csv"
     write_csv_atomic(make_demo_responses(args.respondents, seed=args.seed), data_path)
     out.rule("[bold]equitheta demo: Tidewater Regional Skills Check (invented data)")
-    out.print(f"1. invented {args.respondents} respondents x 24 items -> {data_path}", highlight=False)
+    out.print(f"1. invented {args.respondents} respondents at three sites x 24 items -> {data_path}",
+              highlight=False)
     store_dir = root / "store"
-    out.print(f"2. calibrating and publishing to the directory store {store_dir}", highlight=False)
+    out.print(f"2. calibrating by site (DIF screening, anchors, item policy) and publishing to {store_dir}",
+              highlight=False)
     code = main(["calibrate", str(data_path), "--name", "tidewater-skills", "--store", str(store_dir),
+                 "--group-column", "site", "--reference-group", "port-ellery",
                  "--alias", "production", "--scale-location", "250", "--scale-unit", "50",
                  "--scale-min", "0", "--scale-max", "500"])
     if code != 0:
@@ -314,17 +416,17 @@ def _demo(args: argparse.Namespace) -> int:
     scores_path = root / "tidewater_skills_scores.csv"
     out.print("3. scoring every respondent with tidewater-skills@production", highlight=False)
     code = main(["score", str(data_path), "--bundle", "tidewater-skills@production", "--store", str(store_dir),
-                 "--out", str(scores_path)])
+                 "--group-column", "site", "--out", str(scores_path)])
     if code != 0:
         return code
     preview = pd.read_csv(scores_path).head(5)
     table = Table(title="first rows of the score file")
-    for col in ("id", "theta", "se", "scale_score", "scale_se", "items_answered", "flags"):
+    for col in ("id", "group", "theta", "se", "scale_score", "scale_se", "items_answered", "excluded_items"):
         table.add_column(col)
     for _, row in preview.iterrows():
-        table.add_row(str(row["id"]), f"{row['theta']:.3f}", f"{row['se']:.3f}", f"{row['scale_score']:.0f}",
-                      f"{row['scale_se']:.1f}", str(row["items_answered"]),
-                      "" if pd.isna(row["flags"]) else str(row["flags"]))
+        table.add_row(str(row["id"]), str(row["group"]), f"{row['theta']:.3f}", f"{row['se']:.3f}",
+                      f"{row['scale_score']:.0f}", f"{row['scale_se']:.1f}", str(row["items_answered"]),
+                      "" if pd.isna(row["excluded_items"]) else str(row["excluded_items"]))
     out.print(table)
     out.print(f"done. Try: equitheta bundle list --store {store_dir}", highlight=False)
     return 0

@@ -3,8 +3,13 @@
 "Tidewater Regional Skills Check" (fictional) assesses adults in a workforce
 programme with 16 right/wrong tasks (practical numeracy NUM, workplace documents
 DOC) and 8 four-category rated tasks on digital work (DIG: 0 not done .. 3 done
-independently). Some respondents took a short form, so about 8% of answers are
-missing by design. Everything here is simulated; no real person's data.
+independently). It runs at three sites of the programme (port-ellery, the
+reference; marsh-creek; ridgeview). Some respondents took a short form, so about
+8% of answers are missing by design. Two items are built to behave differently
+by site: NUM06 (a task about a local unit of measure) is harder at marsh-creek
+(uniform DIF), and DIG07 (a rated task on a piece of software one site does not
+use) discriminates less at ridgeview (non-uniform DIF). Everything here is
+simulated; no real person's data.
 """
 
 from __future__ import annotations
@@ -27,12 +32,23 @@ def demo_item_parameters() -> tuple[list[str], np.ndarray, np.ndarray]:
     return ids, slopes, b
 
 
-def make_demo_responses(n_respondents: int = 3000, *, seed: int = 20261201) -> pd.DataFrame:
-    """Simulated responses with ids ``TW-000001`` ...; empty cells mark short-form omissions."""
+SITES = ("port-ellery", "marsh-creek", "ridgeview")
+SITE_MEANS = (0.0, -0.25, 0.2)
+SITE_SDS = (1.0, 1.1, 0.9)
+
+
+def make_demo_responses(n_respondents: int = 3000, *, seed: int = 20261201, with_sites: bool = True) -> pd.DataFrame:
+    """Simulated responses with ids ``TW-000001`` ... and a ``site`` column; empty cells mark omissions."""
     rng = np.random.default_rng(seed)
     ids, slopes, b = demo_item_parameters()
-    theta = rng.normal(0.0, 1.0, n_respondents)
-    z = slopes[None, :, None] * (theta[:, None, None] - b[None, :, :])
+    site = rng.integers(0, len(SITES), n_respondents) if with_sites else np.zeros(n_respondents, dtype=int)
+    theta = rng.normal(np.take(SITE_MEANS, site), np.take(SITE_SDS, site))
+    slope = np.broadcast_to(slopes, (n_respondents, len(ids))).copy()
+    location = np.broadcast_to(b, (n_respondents,) + b.shape).copy()
+    if with_sites:
+        location[site == 1, ids.index("NUM06"), 0] += 0.8  # harder at marsh-creek
+        slope[site == 2, ids.index("DIG07")] *= 0.45  # weaker at ridgeview
+    z = slope[:, :, None] * (theta[:, None, None] - location)
     star = np.where(np.isnan(z), 0.0, 1.0 / (1.0 + np.exp(-np.nan_to_num(z))))
     codes = np.sum(rng.random((n_respondents, len(ids), 1)) < star, axis=2).astype(float)
     short_form = rng.random(n_respondents) < 0.25
@@ -40,4 +56,6 @@ def make_demo_responses(n_respondents: int = 3000, *, seed: int = 20261201) -> p
     codes[short_form[:, None] & dropped] = np.nan
     frame = pd.DataFrame(codes, columns=ids).astype("Int64")
     frame.insert(0, "id", [f"TW-{i:06d}" for i in range(1, n_respondents + 1)])
+    if with_sites:
+        frame.insert(1, "site", [SITES[s] for s in site])
     return frame

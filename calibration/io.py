@@ -174,6 +174,32 @@ def read_item_spec(path: Path) -> list[ItemSpec]:
     return specs
 
 
+def read_policy_overrides(path: Path) -> list[tuple[str, str, str, str]]:
+    """Reviewer decisions: CSV columns ``item``, ``group``, ``status`` and ``note`` (all required).
+
+    Returns (item, group, status, note) tuples; statuses and names are checked
+    against the calibration by the pipeline, which knows the items and groups.
+    """
+    frame, header = _read_table(path)
+    frame.columns = [c.strip() for c in frame.columns]
+    needed = ["item", "group", "status", "note"]
+    missing = [c for c in needed if c not in frame.columns]
+    if missing:
+        raise InputError(path.name, [f"the policy override file needs columns {', '.join(needed)}; "
+                                     f"missing: {', '.join(missing)}"])
+    out, problems = [], []
+    for i, row in frame.iterrows():
+        values = [str(row[c]).strip() for c in needed]
+        empty = [c for c, v in zip(needed, values, strict=True) if not v]
+        if empty:
+            problems.append(f"{_row_label(int(i), header)}: empty {', '.join(empty)}")  # type: ignore[arg-type]
+            continue
+        out.append((values[0], values[1], values[2].lower(), values[3]))
+    if problems:
+        raise InputError(path.name, problems[:MAX_PROBLEMS], total=len(problems))
+    return out
+
+
 def read_responses(
     path: Path | str,
     *,
@@ -443,6 +469,6 @@ def write_csv_atomic(frame: pd.DataFrame, path: Path) -> None:
         raise
 
 
-def finite_or_none(value: float) -> float | None:
+def finite_or_none(value: float | None) -> float | None:
     """JSON has no NaN: missing statistics are written as null."""
     return None if value is None or not math.isfinite(value) else float(value)

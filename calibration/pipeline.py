@@ -1,29 +1,51 @@
-"""Orchestration: validated data -> checks -> calibration -> quality -> an unpublished bundle.
+"""Orchestration: validated data -> checks -> DIF -> calibration -> quality -> an unpublished bundle.
 
-No numerics live here; each step is a function of its own module.
+No numerics live here; each step is a function of its own module. With one group
+the flow is: checks, single-group EM, quality. With several groups (a group
+column) it is:
+
+1. checks per group (minimum size, items without variance in a group);
+2. observed-score screening (purified MH / Mantel / SMD, logistic regression);
+3. the scalar model (every item shared, focal means and SDs free);
+4. anchors and anchored LR tests of every other item (calibration.dif.irt);
+5. the policy per item x group: invariant, group-specific or excluded
+   (flagged = significant after FDR and at least a moderate effect), then any
+   reviewer overrides;
+6. the invariance ladder (configural, metric, scalar, partial);
+7. the final calibration under the policy, with SEs;
+8. quality by group.
 """
 
 from __future__ import annotations
 
-import math
-from collections.abc import Callable
-from dataclasses import dataclass, field
+import warnings
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 
 import numpy as np
+from scipy import stats
 
 from calibration import __version__
 from calibration.bundle.schema import (
     Anchors,
     Bundle,
+    DifReport,
+    DifSettingsRecord,
+    Dimensionality,
     ExcludedItem,
     FitSummary,
     GroupMetric,
     GroupPolicy,
     GroupQuality,
     InformationTable,
+    IrtDifRow,
     ItemEntry,
+    ItemQuality,
+    LadderRow,
     Metric,
+    ObservedDifRow,
+    PolicyEvidence,
     Provenance,
     QuadratureSettings,
     Quality,
@@ -31,9 +53,20 @@ from calibration.bundle.schema import (
     ScoringSettings,
     SummedScoreRow,
 )
-from calibration.estimation import CalibrationFit, EMSettings, calibrate_single_group
+from calibration.dif.irt import DifOutcome, DifSettings, ItemGroupTest, run_irt_dif
+from calibration.dif.logistic import logistic_dif
+from calibration.dif.observed import ObservedScreening, matching_scores, screen_observed
+from calibration.estimation.em import (
+    ConvergenceWarning,
+    EMSettings,
+    LatentSpec,
+    MultiGroupFit,
+    calibrate_groups,
+    threshold_se,
+)
 from calibration.io import ResponseData, finite_or_none
 from calibration.irt.likelihood import QuadratureGrid
+from calibration.irt.models import ItemParameters
 from calibration.irt.scoring import (
     NormalPrior,
     eap_scores,
@@ -47,16 +80,32 @@ from calibration.quality.classical import (
     ITEM_REST_MINIMUM,
     classical_statistics,
 )
+from calibration.quality.model_fit import dimensionality, item_fit
 
 SINGLE_GROUP = "all"
 # About 500 respondents per group is a common floor for 2PL/GRM calibration
-# (Jiang, Wang & Weiss 2016, published for the GRM).
+# (Jiang, Wang & Weiss 2016, published for the GRM); below 50 (one group) or 100
+# (per group in a multiple-group calibration) equitheta refuses to calibrate.
 RECOMMENDED_MIN_RESPONDENTS = 500
 HARD_MIN_RESPONDENTS = 50
+HARD_MIN_PER_GROUP = 100
+
+DIF_ACTIONS = ("exclude", "free")
+POLICY_STATUSES = ("invariant", "group_specific", "excluded")
 
 
 class CalibrationInputError(ValueError):
-    """The data cannot support a calibration (too few respondents or items)."""
+    """The data cannot support a calibration (too few respondents or items, unknown group)."""
+
+
+@dataclass(frozen=True)
+class PolicyOverride:
+    """A reviewer's decision for one item in one group; ``note`` is required."""
+
+    item: str
+    group: str
+    status: str
+    note: str
 
 
 @dataclass(frozen=True)
@@ -66,6 +115,9 @@ class PipelineSettings:
     reporting_scale: ReportingScaleSettings = field(default_factory=ReportingScaleSettings)
     scoring_method: str = "eap"
     min_items_answered: int | None = None  # default: min(5, number of items)
+    dif: DifSettings = field(default_factory=DifSettings)
+    dif_action: str = "exclude"
+    mh_greater_than_one_z: float = 1.645
 
     def describe(self) -> dict[str, str | int | float | bool | None]:
         prior = self.em.slope_prior
@@ -76,29 +128,48 @@ class PipelineSettings:
             "calibration_quadrature_range": f"{self.em.quadrature.lower:g}..{self.em.quadrature.upper:g}",
             "slope_prior": "none" if prior is None else f"lognormal(mean={prior.mean:g}, sd={prior.sd:g})",
             "acceleration": "squarem" if self.em.accelerate else "none",
+            "dif_action": self.dif_action,
+            "dif_fdr_alpha": self.dif.alpha,
+            "dif_anchors": ",".join(self.dif.anchors) or "automatic",
         }
 
 
 @dataclass(frozen=True)
 class CalibrationOutcome:
     bundle: Bundle
-    fit: CalibrationFit
+    fit: MultiGroupFit
     warnings: tuple[str, ...]
+    dif: DifOutcome | None = None
 
 
 def _now() -> str:
     return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-def _no_variance_items(data: ResponseData) -> list[tuple[int, str]]:
-    found = []
-    for j in range(data.n_items):
-        answered = data.responses[~np.isnan(data.responses[:, j]), j]
-        values = np.unique(answered)
-        if values.size == 1:
-            reason = f"no variance: all {answered.size} respondents who answered gave category {int(values[0])}"
-            found.append((j, reason))
-    return found
+def _quiet_fit(*args, **kwargs) -> MultiGroupFit:  # type: ignore[no-untyped-def]
+    """A fit whose non-convergence is reported in the bundle's warnings, not as a Python warning."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        return calibrate_groups(*args, **kwargs)
+
+
+def _group_setup(data: ResponseData, reference_group: str | None) -> tuple[list[str], np.ndarray]:
+    """Group names with the reference first, and each row's group index."""
+    if data.groups is None:
+        return [SINGLE_GROUP], np.zeros(data.n_persons, dtype=np.int64)
+    labels = np.asarray(data.groups, dtype=object)
+    names, counts = np.unique(labels, return_counts=True)
+    names = [str(n) for n in names]
+    if reference_group is None:
+        # Default reference: the largest group (ties: alphabetical).
+        reference_group = names[int(np.argmax(counts))]
+    if reference_group not in names:
+        raise CalibrationInputError(
+            f"reference group {reference_group!r} is not in the data (groups: {', '.join(names)})"
+        )
+    ordered = [reference_group] + [n for n in names if n != reference_group]
+    lookup = {n: i for i, n in enumerate(ordered)}
+    return ordered, np.array([lookup[str(g)] for g in labels], dtype=np.int64)
 
 
 def calibrate_data(
@@ -106,154 +177,491 @@ def calibrate_data(
     *,
     name: str,
     settings: PipelineSettings | None = None,
+    reference_group: str | None = None,
+    overrides: Sequence[PolicyOverride] = (),
     progress: Callable[[str, int, float], None] | None = None,
 ) -> CalibrationOutcome:
-    """Calibrate a single-group response table and build the (unpublished) bundle."""
+    """Calibrate a response table (one or several groups) and build the unpublished bundle."""
     settings = settings or PipelineSettings()
-    warnings: list[str] = []
+    if settings.dif_action not in DIF_ACTIONS:
+        raise CalibrationInputError(f"dif action {settings.dif_action!r} is not one of {', '.join(DIF_ACTIONS)}")
+    group_names, group_index = _group_setup(data, reference_group)
+    n_groups = len(group_names)
+    notes: list[str] = []
     if data.n_persons < HARD_MIN_RESPONDENTS:
         raise CalibrationInputError(
             f"{data.source}: {data.n_persons} respondents; a calibration needs at least {HARD_MIN_RESPONDENTS} "
-            f"(about {RECOMMENDED_MIN_RESPONDENTS} is a common floor for 2PL and graded items)"
+            f"(about {RECOMMENDED_MIN_RESPONDENTS} per group is a common floor for 2PL and graded items)"
         )
-    if data.n_persons < RECOMMENDED_MIN_RESPONDENTS:
-        warnings.append(
-            f"{data.n_persons} respondents is below the common floor of about {RECOMMENDED_MIN_RESPONDENTS} "
-            "for 2PL/graded calibration (Jiang, Wang & Weiss 2016); parameter SEs will be large"
-        )
-    dropped = _no_variance_items(data)
-    keep = [j for j in range(data.n_items) if j not in {d[0] for d in dropped}]
-    excluded = [ExcludedItem(id=data.item_ids[j], reason=reason) for j, reason in dropped]
-    for item in excluded:
-        warnings.append(f"item {item.id!r} left out of the calibration: {item.reason}")
+    sizes = np.bincount(group_index, minlength=n_groups)
+    if n_groups > 1:
+        small = [f"{group_names[g]} ({sizes[g]})" for g in range(n_groups) if sizes[g] < HARD_MIN_PER_GROUP]
+        if small:
+            raise CalibrationInputError(
+                f"{data.source}: groups with fewer than {HARD_MIN_PER_GROUP} respondents cannot be calibrated "
+                f"or screened for DIF: {', '.join(small)}; merge or drop them"
+            )
+    for g in range(n_groups):
+        if sizes[g] < RECOMMENDED_MIN_RESPONDENTS:
+            notes.append(
+                f"group {group_names[g]!r}: {sizes[g]} respondents is below the common floor of about "
+                f"{RECOMMENDED_MIN_RESPONDENTS} for 2PL/graded calibration (Jiang, Wang & Weiss 2016); "
+                "SEs will be large and DIF power low"
+            )
+
+    # Items without variance: out of the calibration if so in the reference group, else out for that group.
+    x_all = data.responses
+    excluded_items: list[ExcludedItem] = []
+    no_variance_cells: dict[tuple[int, int], str] = {}
+    keep: list[int] = []
+    for j, item in enumerate(data.item_ids):
+        ref_values = np.unique(x_all[(group_index == 0) & ~np.isnan(x_all[:, j]), j])
+        all_values = np.unique(x_all[~np.isnan(x_all[:, j]), j])
+        if all_values.size <= 1 or ref_values.size <= 1:
+            where = "" if n_groups == 1 else f" in the reference group {group_names[0]!r}"
+            answered = int(np.sum(~np.isnan(x_all[group_index == 0, j]) if n_groups > 1 else ~np.isnan(x_all[:, j])))
+            value = int(ref_values[0]) if ref_values.size else None
+            reason = f"no variance{where}: all {answered} respondents who answered gave category {value}"
+            excluded_items.append(ExcludedItem(id=item, reason=reason))
+            notes.append(f"item {item!r} left out of the calibration: {reason}")
+            continue
+        keep.append(j)
+        for g in range(1, n_groups):
+            values = np.unique(x_all[(group_index == g) & ~np.isnan(x_all[:, j]), j])
+            if values.size <= 1:
+                no_variance_cells[(len(keep) - 1, g)] = (
+                    f"no variance in group {group_names[g]!r}: every answer was category "
+                    f"{int(values[0]) if values.size else 'none'}"
+                )
     if len(keep) < 2:
         raise CalibrationInputError(f"{data.source}: fewer than two items with variance; nothing to calibrate")
-    x = data.responses[:, keep]
-    item_ids = [data.item_ids[j] for j in keep]
+    x = x_all[:, keep]
+    item_ids = tuple(data.item_ids[j] for j in keep)
     k = data.n_categories[keep]
     models = tuple(data.models[j] for j in keep)
+    n_items = len(item_ids)
 
-    def em_progress(iteration: int, log_lik: float) -> None:
+    def em_progress(stage: str) -> Callable[[int, float], None]:
+        return lambda it, ll: progress(stage, it, ll) if progress is not None else None
+
+    observed_rows: list[ObservedDifRow] = []
+    irt_rows: list[IrtDifRow] = []
+    ladder: list[LadderRow] = []
+    dif_outcome: DifOutcome | None = None
+    status = {(j, g): "invariant" for j in range(n_items) for g in range(n_groups)}
+    reasons: dict[tuple[int, int], str] = {
+        (j, g): ("single-group calibration" if n_groups == 1 else "no DIF flag") for j in range(n_items)
+        for g in range(n_groups)
+    }
+    evidence: dict[tuple[int, int], PolicyEvidence] = {}
+    anchors_record = Anchors(items=[], method="none: single-group calibration (the scale is fixed by N(0,1))")
+    em_no_se = replace(settings.em, standard_errors=False)
+
+    if n_groups > 1:
         if progress is not None:
-            progress("calibrate", iteration, log_lik)
+            progress("screen", 0, 0.0)
+        screening = screen_observed(x, k, group_index, n_groups, greater_than_one_z=settings.mh_greater_than_one_z)
+        observed_rows = _observed_rows(x, k, group_index, screening, item_ids, group_names)
+        scalar = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em_no_se,
+                            progress=em_progress("scalar"))
+        dif_outcome = run_irt_dif(
+            x, k, group_index, n_groups, scalar, item_ids=item_ids, models=models, settings=settings.dif,
+            em_settings=settings.em,
+            progress=(lambda stage, done, total: progress(stage, done, float(total))) if progress else None,
+        )
+        anchors_record = Anchors(items=[item_ids[j] for j in dif_outcome.anchors], method=dif_outcome.anchor_method)
+        for j in dif_outcome.anchors:
+            for g in range(1, n_groups):
+                reasons[(j, g)] = "anchor item (constrained equal across groups)"
+                test = dif_outcome.screening.get((j, g))
+                if test is not None:
+                    evidence[(j, g)] = _evidence(test, settings.dif, "screening with all other items as anchors")
+        irt_rows = [_irt_row(t, "screening", item_ids, group_names, settings.dif)
+                    for t in dif_outcome.screening.values()]
+        irt_rows += [_irt_row(t, "test", item_ids, group_names, settings.dif) for t in dif_outcome.tests.values()]
+        action = "excluded" if settings.dif_action == "exclude" else "group_specific"
+        for (j, g), test in dif_outcome.tests.items():
+            evidence[(j, g)] = _evidence(test, settings.dif, "anchored LR test against the anchor set")
+            if test.flagged(settings.dif):
+                status[(j, g)] = action
+                reasons[(j, g)] = (
+                    f"DIF flag: omnibus G2 = {test.g2_omnibus:.1f} (df {test.df_omnibus}), FDR-adjusted "
+                    f"p = {test.p_adjusted:.2g}, {test.level(settings.dif)} effect {test.effect_theta:.2f} theta units"
+                )
+        for (j, g), why in no_variance_cells.items():
+            status[(j, g)] = "excluded"
+            reasons[(j, g)] = why
+        _apply_overrides(overrides, status, reasons, item_ids, group_names)
+        ladder = _ladder(x, k, group_index, n_groups, models, em_no_se, scalar, status, dif_outcome)
 
-    fit = calibrate_single_group(x, k, models=models, settings=settings.em, progress=em_progress)
+    # Final calibration under the policy: excluded cells are not administered for that group.
+    k_max = int(k.max())
+    group_free = np.zeros((n_groups, n_items, k_max), dtype=bool)
+    x_final = x.copy()
+    for (j, g), st in status.items():
+        if st == "group_specific":
+            group_free[g, j, :] = True
+        elif st == "excluded":
+            x_final[group_index == g, j] = np.nan
+    if progress is not None:
+        progress("final", 0, 0.0)
+    start = dif_outcome.anchor_fit.tables if dif_outcome is not None else None
+    fit = _quiet_fit(x_final, k, group_index, n_groups, models=models, settings=settings.em,
+                     group_free=group_free, start=start, progress=em_progress("final"))
     if not fit.converged:
-        warnings.append(f"EM did not converge in {settings.em.max_iter} iterations; estimates may be unstable")
-    params = fit.params
+        notes.append(f"EM did not converge in {settings.em.max_iter} iterations; estimates may be unstable")
+    grid = settings.em.quadrature
+    for g, group in enumerate(group_names):
+        low, high = fit.latent_mean[g] - 4 * fit.latent_sd[g], fit.latent_mean[g] + 4 * fit.latent_sd[g]
+        if low < grid.lower or high > grid.upper:
+            notes.append(
+                f"group {group!r}: latent N({fit.latent_mean[g]:.2f}, {fit.latent_sd[g]:.2f}^2) reaches beyond the "
+                f"quadrature grid {grid.lower:g}..{grid.upper:g} at 4 SD; widen the grid for accurate estimates"
+            )
+
+    # Quality by group.
     if progress is not None:
         progress("quality", 0, fit.log_likelihood)
-
-    classical = classical_statistics(x)
     prior = NormalPrior(0.0, 1.0)
+    by_group: dict[str, GroupQuality] = {}
+    for g, group in enumerate(group_names):
+        rows = group_index == g
+        kept = [j for j in range(n_items) if status[(j, g)] != "excluded"]
+        params = fit.group_params(g).subset(kept)
+        xg = x[np.ix_(rows, kept)]
+        quality = _group_quality(xg, params, [item_ids[j] for j in kept], prior, settings,
+                                 float(fit.latent_mean[g]), float(fit.latent_sd[g]))
+        by_group[group] = quality
+        notes.extend(_quality_warnings(quality, group if n_groups > 1 else None))
+    flagged_cells = [(item_ids[j], group_names[g]) for (j, g), st in status.items() if st != "invariant" and g > 0]
+    if flagged_cells:
+        notes.append(
+            "items with a group policy other than invariant (content experts must review these): "
+            + ", ".join(f"{i} in {g}" for i, g in flagged_cells)
+        )
+    reference_params = fit.group_params(0)
+    for j, item in enumerate(item_ids):
+        if reference_params.slopes[j] <= 0:
+            notes.append(f"item {item!r}: slope {reference_params.slopes[j]:.3f} is not positive (miskeyed?)")
+        elif reference_params.slopes[j] > 4:
+            notes.append(f"item {item!r}: slope {reference_params.slopes[j]:.2f} is very large (near-Heywood?)")
+
+    bundle = _assemble(
+        data=data, name=name, settings=settings, fit=fit, x=x, item_ids=item_ids, models=models, k=k,
+        group_names=group_names, group_index=group_index, status=status, reasons=reasons, evidence=evidence,
+        excluded_items=excluded_items, anchors=anchors_record, by_group=by_group, notes=notes,
+        dif=(DifReport(
+            settings=DifSettingsRecord(
+                fdr_alpha=settings.dif.alpha, effect_moderate=settings.dif.effect_moderate,
+                effect_large=settings.dif.effect_large, action=settings.dif_action,  # type: ignore[arg-type]
+                mh_greater_than_one_z=settings.mh_greater_than_one_z,
+                anchor_fraction=settings.dif.anchor_fraction, min_anchors=settings.dif.min_anchors,
+            ),
+            observed=observed_rows, irt=irt_rows,
+        ) if n_groups > 1 else None),
+        ladder=ladder,
+    )
+    return CalibrationOutcome(bundle=bundle, fit=fit, warnings=tuple(notes), dif=dif_outcome)
+
+
+def _apply_overrides(
+    overrides: Sequence[PolicyOverride],
+    status: dict[tuple[int, int], str],
+    reasons: dict[tuple[int, int], str],
+    item_ids: tuple[str, ...],
+    group_names: list[str],
+) -> None:
+    problems = []
+    for o in overrides:
+        if o.item not in item_ids:
+            problems.append(f"policy override: item {o.item!r} is not a calibrated item")
+            continue
+        if o.group not in group_names:
+            problems.append(f"policy override for {o.item}: group {o.group!r} is not in the data")
+            continue
+        if o.status not in POLICY_STATUSES:
+            problems.append(f"policy override for {o.item} in {o.group}: status {o.status!r} is not one of "
+                            f"{', '.join(POLICY_STATUSES)}")
+            continue
+        if o.group == group_names[0] and o.status != "invariant":
+            problems.append(f"policy override for {o.item}: the reference group {o.group!r} keeps every item")
+            continue
+        if not o.note.strip():
+            problems.append(f"policy override for {o.item} in {o.group}: a reviewer note is required")
+            continue
+        cell = (item_ids.index(o.item), group_names.index(o.group))
+        status[cell] = o.status
+        reasons[cell] = f"reviewer override: {o.note.strip()}"
+    if problems:
+        raise CalibrationInputError("; ".join(problems))
+
+
+def _ladder(
+    x: np.ndarray,
+    k: np.ndarray,
+    group_index: np.ndarray,
+    n_groups: int,
+    models: tuple[str, ...],
+    em: EMSettings,
+    scalar: MultiGroupFit,
+    status: dict[tuple[int, int], str],
+    dif: DifOutcome,
+) -> list[LadderRow]:
+    """Configural, metric, scalar and partial invariance models on the same data."""
+    n_items, k_max = x.shape[1], int(k.max())
+    everything = np.ones((n_groups, n_items, k_max), dtype=bool)
+    everything[0] = False
+    configural = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em, group_free=everything,
+                            start=scalar.tables, latent=LatentSpec.reference_fixed(n_groups, free_mean=False,
+                                                                                    free_sd=False))
+    intercepts = everything.copy()
+    intercepts[..., 0] = False
+    metric = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em, group_free=intercepts,
+                        start=scalar.tables, latent=LatentSpec.reference_fixed(n_groups, free_mean=False))
+    partial_free = np.zeros((n_groups, n_items, k_max), dtype=bool)
+    for (j, g), st in status.items():
+        if st != "invariant":
+            partial_free[g, j, :] = True  # same data as the other rungs: excluded cells are freed here
+    partial = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em, group_free=partial_free,
+                         start=dif.anchor_fit.tables)
+
+    def row(model: str, description: str, fit: MultiGroupFit, against: tuple[str, MultiGroupFit] | None
+            ) -> LadderRow:
+        lr = df = p = None
+        compared = None
+        if against is not None:
+            compared, other = against
+            df = abs(fit.n_parameters - other.n_parameters)
+            bigger, smaller = (fit, other) if fit.n_parameters >= other.n_parameters else (other, fit)
+            lr = max(2.0 * (bigger.log_likelihood - smaller.log_likelihood), 0.0)
+            p = float(stats.chi2.sf(lr, df)) if df > 0 else None
+        return LadderRow(model=model, description=description, log_likelihood=fit.log_likelihood,  # type: ignore[arg-type]
+                         n_parameters=fit.n_parameters, aic=fit.aic, bic=fit.bic, compared_with=compared,
+                         lr_statistic=lr, df=df, p_value=p)
+
+    return [
+        row("configural", "all item parameters free per group; every group N(0,1)", configural, None),
+        row("metric", "slopes equal; intercepts free; focal SDs estimated", metric, ("configural", configural)),
+        row("scalar", "slopes and intercepts equal; focal means and SDs estimated", scalar, ("metric", metric)),
+        row("partial", "anchors and unflagged items equal; flagged or overridden cells free", partial,
+            ("scalar", scalar)),
+    ]
+
+
+def _evidence(test: ItemGroupTest, settings: DifSettings, note: str) -> PolicyEvidence:
+    return PolicyEvidence(
+        statistic="G2 (anchored likelihood ratio, omnibus)",
+        value=finite_or_none(test.g2_omnibus),
+        p_value=finite_or_none(test.p_omnibus),
+        p_adjusted=finite_or_none(test.p_adjusted),
+        effect_size=finite_or_none(test.effect_theta),
+        category=test.level(settings),
+        note=note,
+    )
+
+
+def _irt_row(test: ItemGroupTest, stage: str, item_ids: tuple[str, ...], groups: list[str],
+             settings: DifSettings) -> IrtDifRow:
+    return IrtDifRow(
+        item=item_ids[test.item], group=groups[test.group], stage=stage,  # type: ignore[arg-type]
+        g2_omnibus=test.g2_omnibus, df_omnibus=test.df_omnibus, p_value=test.p_omnibus,
+        p_adjusted=finite_or_none(test.p_adjusted), g2_nonuniform=finite_or_none(test.g2_nonuniform),
+        p_nonuniform=finite_or_none(test.p_nonuniform), g2_uniform=finite_or_none(test.g2_uniform),
+        p_uniform=finite_or_none(test.p_uniform), effect_theta=finite_or_none(test.effect_theta),
+        effect_signed=finite_or_none(test.effect_signed), level=test.level(settings),  # type: ignore[arg-type]
+        flagged=stage == "test" and test.flagged(settings),
+    )
+
+
+def _observed_rows(
+    x: np.ndarray, k: np.ndarray, group_index: np.ndarray, screening: ObservedScreening,
+    item_ids: tuple[str, ...], groups: list[str],
+) -> list[ObservedDifRow]:
+    rows = []
+    for g in range(1, len(groups)):
+        members = (group_index == 0) | (group_index == g)
+        matching = np.zeros(x.shape[1], dtype=bool)
+        matching[list(screening.matching_items[g])] = True
+        for j in range(x.shape[1]):
+            items = matching.copy()
+            items[j] = True
+            score, enough = matching_scores(x[members], k, items)
+            y = x[members, j]
+            ok = enough & ~np.isnan(y) & ~np.isnan(score)
+            logistic = logistic_dif(y[ok], score[ok], group_index[members][ok] == g, int(k[j]))
+            common = {
+                "item": item_ids[j], "group": groups[g],
+                "logistic_chi_square": logistic.chi_square_omnibus, "logistic_p_value": logistic.p_omnibus,
+                "logistic_delta_r2": logistic.delta_r2, "logistic_level": logistic.level,
+            }
+            if (j, g) in screening.mh:
+                r = screening.mh[(j, g)]
+                rows.append(ObservedDifRow(
+                    method="mantel-haenszel", chi_square=r.chi_square, p_value=r.p_value,
+                    mh_odds_ratio=finite_or_none(r.alpha), mh_d_dif=finite_or_none(r.d_dif),
+                    mh_d_dif_se=finite_or_none(r.d_dif_se), category=r.category,
+                    n_reference=r.n_reference, n_focal=r.n_focal, **common,
+                ))
+            else:
+                m = screening.mantel[(j, g)]
+                rows.append(ObservedDifRow(
+                    method="mantel", chi_square=m.chi_square, p_value=m.p_value, smd=m.smd,
+                    smd_over_sd=m.smd_over_sd, category=m.category, n_reference=m.n_reference,
+                    n_focal=m.n_focal, **common,
+                ))
+    return rows
+
+
+def _group_quality(
+    x: np.ndarray, params: ItemParameters, item_ids: list[str], prior: NormalPrior, settings: PipelineSettings,
+    latent_mean: float, latent_sd: float,
+) -> GroupQuality:
+    classical = classical_statistics(x)
     eap = eap_scores(params, x, grid=settings.scoring_quadrature, prior=prior)
     reliability = marginal_reliability(eap.theta, eap.se)
     table = summed_score_table(params, grid=settings.scoring_quadrature, prior=prior)
-    curve = information_curve(params)
-    threshold_se = fit.threshold_se()
-
-    if math.isfinite(classical.alpha) and classical.alpha < ALPHA_GROUP_USE:
-        warnings.append(f"alpha = {classical.alpha:.3f} is below {ALPHA_GROUP_USE} (common minimum for group use)")
-    if reliability < ALPHA_INDIVIDUAL_DECISIONS:
-        warnings.append(
-            f"marginal reliability = {reliability:.3f} is below {ALPHA_INDIVIDUAL_DECISIONS}: scores must not drive "
-            "individual high-stakes decisions on their own"
+    fit_stats = item_fit(params, x, latent_mean=latent_mean, latent_sd=latent_sd)
+    summary = dimensionality(params, x, eap.theta)
+    dims = Dimensionality(eigenvalue_ratio=finite_or_none(summary.eigenvalue_ratio),
+                          residual_first_contrast=finite_or_none(summary.residual_first_contrast),
+                          n_complete=summary.n_complete)
+    items = {
+        item: ItemQuality(
+            item_rest_correlation=finite_or_none(float(classical.item_rest[j])),
+            alpha_if_deleted=finite_or_none(float(classical.alpha_if_deleted[j])),
+            s_x2=finite_or_none(fit_stats.s_x2[j]), s_x2_df=int(fit_stats.s_x2_df[j]) if fit_stats.s_x2_df[j] > 0
+            else None, s_x2_p=finite_or_none(fit_stats.s_x2_p[j]), rmsd=finite_or_none(fit_stats.rmsd[j]),
         )
-    for j, item in enumerate(item_ids):
-        if params.slopes[j] <= 0:
-            warnings.append(f"item {item!r}: slope {params.slopes[j]:.3f} is not positive (miskeyed or reversed?)")
-        elif params.slopes[j] > 4:
-            warnings.append(f"item {item!r}: slope {params.slopes[j]:.2f} is very large (possible near-Heywood case)")
-        if math.isfinite(classical.item_rest[j]) and classical.item_rest[j] < ITEM_REST_MINIMUM:
-            warnings.append(
-                f"item {item!r}: item-rest correlation {classical.item_rest[j]:.3f} is below {ITEM_REST_MINIMUM} "
-                "(common practice)"
-            )
+        for j, item in enumerate(item_ids)
+    }
+    return GroupQuality(
+        n_respondents=int(x.shape[0]),
+        alpha=finite_or_none(classical.alpha),
+        alpha_if_deleted={i: q.alpha_if_deleted for i, q in items.items()},
+        marginal_reliability=finite_or_none(reliability),
+        summed_score_table=[
+            SummedScoreRow(summed_score=int(s), theta=float(t), se=float(e), probability=float(p))
+            for s, t, e, p in zip(table.summed_score, table.theta, table.se, table.probability, strict=True)
+        ],
+        items=items,
+        dimensionality=dims,
+    )
 
+
+def _quality_warnings(quality: GroupQuality, group: str | None) -> list[str]:
+    where = "" if group is None else f"group {group!r}: "
+    out = []
+    if quality.alpha is not None and quality.alpha < ALPHA_GROUP_USE:
+        out.append(f"{where}alpha = {quality.alpha:.3f} is below {ALPHA_GROUP_USE} (common minimum for group use)")
+    rel = quality.marginal_reliability
+    if rel is not None and rel < ALPHA_INDIVIDUAL_DECISIONS:
+        out.append(f"{where}marginal reliability = {rel:.3f} is below {ALPHA_INDIVIDUAL_DECISIONS}: scores must not "
+                   "drive individual high-stakes decisions on their own")
+    for item, q in quality.items.items():
+        if q.item_rest_correlation is not None and q.item_rest_correlation < ITEM_REST_MINIMUM:
+            out.append(f"{where}item {item!r}: item-rest correlation {q.item_rest_correlation:.3f} is below "
+                       f"{ITEM_REST_MINIMUM} (common practice)")
+        if q.rmsd is not None and q.rmsd > 0.1:
+            out.append(f"{where}item {item!r}: RMSD {q.rmsd:.3f} above 0.10 (common practice): the model curve "
+                       "misses this group's observed curve")
+        if q.s_x2_p is not None and q.s_x2_p < 0.001:
+            out.append(f"{where}item {item!r}: S-X2 = {q.s_x2:.1f} (df {q.s_x2_df}), p < .001: item misfit")
+    dims = quality.dimensionality
+    if dims is not None and dims.eigenvalue_ratio is not None and dims.eigenvalue_ratio < 3:
+        out.append(f"{where}first-to-second eigenvalue ratio {dims.eigenvalue_ratio:.2f} is below 3 "
+                   "(rule of thumb, Raiche 2005 recalled from memory): check unidimensionality")
+    if dims is not None and dims.residual_first_contrast is not None and dims.residual_first_contrast > 2:
+        out.append(f"{where}first residual contrast eigenvalue {dims.residual_first_contrast:.2f} is above 2 "
+                   "(rule of thumb): a second dimension may be present")
+    return out
+
+
+def _assemble(
+    *, data: ResponseData, name: str, settings: PipelineSettings, fit: MultiGroupFit, x: np.ndarray,
+    item_ids: tuple[str, ...], models: tuple[str, ...], k: np.ndarray, group_names: list[str],
+    group_index: np.ndarray, status: dict[tuple[int, int], str], reasons: dict[tuple[int, int], str],
+    evidence: dict[tuple[int, int], PolicyEvidence], excluded_items: list[ExcludedItem], anchors: Anchors,
+    by_group: dict[str, GroupQuality], notes: list[str], dif: DifReport | None, ladder: list[LadderRow],
+) -> Bundle:
+    reference = fit.group_params(0)
+    b_se = threshold_se(reference, fit.layout.index[0], fit.covariance)
+    classical = classical_statistics(x[group_index == 0])
+    sizes = np.bincount(group_index, minlength=len(group_names))
     items = []
     for j, item in enumerate(item_ids):
         kj = int(k[j])
-        items.append(
-            ItemEntry(
-                id=item,
-                model=models[j],  # type: ignore[arg-type]
-                n_categories=kj,
-                slope=float(params.slopes[j]),
-                intercepts=[float(c) for c in params.intercepts[j, : kj - 1]],
-                thresholds=[float(b) for b in params.thresholds()[j, : kj - 1]],
-                slope_se=finite_or_none(float(fit.slope_se[j])),
-                intercept_se=[finite_or_none(float(s)) for s in fit.intercept_se[j, : kj - 1]],
-                threshold_se=[finite_or_none(float(s)) for s in threshold_se[j, : kj - 1]],
-                n_responses=int(classical.n_responses[j]),
-                mean_score=finite_or_none(float(classical.mean_score[j])),
-                item_rest_correlation=finite_or_none(float(classical.item_rest[j])),
-                policy={SINGLE_GROUP: GroupPolicy(status="invariant", reason="single-group calibration")},
+        policy = {}
+        for g, group in enumerate(group_names):
+            st = status[(j, g)]
+            specific = st == "group_specific"
+            policy[group] = GroupPolicy(
+                status=st,  # type: ignore[arg-type]
+                reason=reasons[(j, g)],
+                evidence=evidence.get((j, g), PolicyEvidence()),
+                slope=float(fit.tables[g, j, 0]) if specific else None,
+                intercepts=[float(c) for c in fit.tables[g, j, 1:kj]] if specific else None,
             )
-        )
-    min_items = settings.min_items_answered or min(5, len(item_ids))
+        items.append(ItemEntry(
+            id=item, model=models[j],  # type: ignore[arg-type]
+            n_categories=kj,
+            slope=float(reference.slopes[j]),
+            intercepts=[float(c) for c in reference.intercepts[j, : kj - 1]],
+            thresholds=[float(b) for b in reference.thresholds()[j, : kj - 1]],
+            slope_se=finite_or_none(float(fit.slot_se[0, j, 0])),
+            intercept_se=[finite_or_none(float(s)) for s in fit.slot_se[0, j, 1:kj]],
+            threshold_se=[finite_or_none(float(s)) for s in b_se[j, : kj - 1]],
+            n_responses=int(np.sum(~np.isnan(x[:, j]))),
+            mean_score=finite_or_none(float(np.nanmean(x[:, j]))),
+            item_rest_correlation=finite_or_none(float(classical.item_rest[j])),
+            policy=policy,
+        ))
     grid = settings.scoring_quadrature
-    bundle = Bundle(
-        name=name,
-        version=0,
-        created_at=_now(),
-        software_version=__version__,
+    curve = information_curve(reference)
+    em = settings.em.quadrature
+    return Bundle(
+        name=name, version=0, created_at=_now(), software_version=__version__,
         provenance=Provenance(
-            data_sha256=data.source_sha256,
-            data_source=data.source,
-            n_respondents=data.n_persons,
-            n_respondents_by_group={SINGLE_GROUP: data.n_persons},
-            settings=settings.describe(),
-            notes=list(data.notes),
+            data_sha256=data.source_sha256, data_source=data.source, n_respondents=data.n_persons,
+            n_respondents_by_group={g: int(sizes[i]) for i, g in enumerate(group_names)},
+            settings=settings.describe(), notes=list(data.notes),
         ),
         metric=Metric(
-            reference_group=SINGLE_GROUP,
-            groups=[GroupMetric(name=SINGLE_GROUP, n_respondents=data.n_persons, latent_mean=0.0, latent_sd=1.0)],
+            reference_group=group_names[0],
+            groups=[
+                GroupMetric(
+                    name=g, n_respondents=int(sizes[i]), latent_mean=float(fit.latent_mean[i]),
+                    latent_sd=float(fit.latent_sd[i]), latent_mean_se=finite_or_none(float(fit.latent_mean_se[i])),
+                    latent_sd_se=finite_or_none(float(fit.latent_sd_se[i])),
+                )
+                for i, g in enumerate(group_names)
+            ],
         ),
-        items=items,
-        excluded_items=excluded,
-        anchors=Anchors(items=[], method="none: single-group calibration (the scale is fixed by N(0,1))"),
+        items=items, excluded_items=excluded_items, anchors=anchors,
         scoring=ScoringSettings(
             method=settings.scoring_method,  # type: ignore[arg-type]
             quadrature=QuadratureSettings(n_points=grid.n_points, lower=grid.lower, upper=grid.upper),
-            min_items_answered=min_items,
+            min_items_answered=settings.min_items_answered or min(5, len(item_ids)),
             reporting_scale=settings.reporting_scale,
         ),
         fit=FitSummary(
-            log_likelihood=fit.log_likelihood,
-            n_parameters=fit.n_parameters,
-            n_persons=fit.n_persons,
-            aic=fit.aic,
-            bic=fit.bic,
-            converged=fit.converged,
-            n_iter=fit.n_iter,
+            log_likelihood=fit.log_likelihood, n_parameters=fit.n_parameters, n_persons=fit.n_persons,
+            aic=fit.aic, bic=fit.bic, converged=fit.converged, n_iter=fit.n_iter,
             estimation=(
-                f"marginal ML, Bock-Aitkin EM over {settings.em.quadrature.n_points} rectangular points on "
-                f"{settings.em.quadrature.lower:g}..{settings.em.quadrature.upper:g}, N(0,1) latent density; "
-                "SEs from the observed information (central differences of the analytic marginal score)"
+                f"{'multiple-group ' if len(group_names) > 1 else ''}marginal ML, Bock-Aitkin EM over "
+                f"{em.n_points} rectangular points on {em.lower:g}..{em.upper:g}; reference group N(0,1)"
+                f"{', other groups N(mean, sd) estimated' if len(group_names) > 1 else ''}; SEs from the observed "
+                "information (central differences of the analytic marginal score)"
             ),
         ),
         quality=Quality(
-            by_group={
-                SINGLE_GROUP: GroupQuality(
-                    n_respondents=data.n_persons,
-                    alpha=finite_or_none(classical.alpha),
-                    alpha_if_deleted={
-                        item: finite_or_none(float(v))
-                        for item, v in zip(item_ids, classical.alpha_if_deleted, strict=True)
-                    },
-                    marginal_reliability=finite_or_none(reliability),
-                    summed_score_table=[
-                        SummedScoreRow(summed_score=int(s), theta=float(t), se=float(e), probability=float(p))
-                        for s, t, e, p in zip(table.summed_score, table.theta, table.se, table.probability, strict=True)
-                    ],
-                )
-            },
+            by_group=by_group,
             test_information=InformationTable(
-                theta=[float(t) for t in curve.theta],
-                information=[float(i) for i in curve.information],
+                theta=[float(t) for t in curve.theta], information=[float(i) for i in curve.information],
                 se=[float(s) for s in curve.se],
             ),
-            warnings=warnings,
+            warnings=notes,
         ),
+        dif=dif,
+        invariance=ladder,
     )
-    return CalibrationOutcome(bundle=bundle, fit=fit, warnings=tuple(warnings))
+

@@ -164,18 +164,116 @@ class SummedScoreRow(_Frozen):
     probability: float
 
 
+class ItemQuality(_Frozen):
+    """Item statistics within one group."""
+
+    item_rest_correlation: float | None = None
+    alpha_if_deleted: float | None = None
+    s_x2: float | None = Field(None, description="Orlando-Thissen S-X2 item fit statistic")
+    s_x2_df: int | None = None
+    s_x2_p: float | None = None
+    rmsd: float | None = Field(None, description="Root mean squared difference between observed and model curves")
+
+
+class Dimensionality(_Frozen):
+    eigenvalue_ratio: float | None = Field(None, description="First to second eigenvalue of the item correlations")
+    residual_first_contrast: float | None = Field(
+        None, description="Largest eigenvalue of the PCA of standardized residuals"
+    )
+    n_complete: int = 0
+
+
 class GroupQuality(_Frozen):
     n_respondents: int
     alpha: float | None
     alpha_if_deleted: dict[str, float | None]
     marginal_reliability: float | None
     summed_score_table: list[SummedScoreRow]
+    items: dict[str, ItemQuality] = Field(default_factory=dict)
+    dimensionality: Dimensionality | None = None
 
 
 class Quality(_Frozen):
     by_group: dict[str, GroupQuality]
     test_information: InformationTable
     warnings: list[str] = Field(default_factory=list)
+
+
+class ObservedDifRow(_Frozen):
+    """Observed-score screening of one item for one focal group (against the reference group)."""
+
+    item: str
+    group: str
+    method: Literal["mantel-haenszel", "mantel"]
+    chi_square: float
+    p_value: float
+    mh_odds_ratio: float | None = None
+    mh_d_dif: float | None = None
+    mh_d_dif_se: float | None = None
+    smd: float | None = None
+    smd_over_sd: float | None = None
+    category: str = Field(description="A/B/C (+/-) for right/wrong items, AA/BB/CC for graded items")
+    logistic_chi_square: float | None = None
+    logistic_p_value: float | None = None
+    logistic_delta_r2: float | None = None
+    logistic_level: str | None = None
+    n_reference: int
+    n_focal: int
+
+
+class IrtDifRow(_Frozen):
+    """Anchored likelihood-ratio test of one item for one focal group."""
+
+    item: str
+    group: str
+    stage: Literal["screening", "test"]
+    g2_omnibus: float
+    df_omnibus: int
+    p_value: float
+    p_adjusted: float | None
+    g2_nonuniform: float | None
+    p_nonuniform: float | None
+    g2_uniform: float | None
+    p_uniform: float | None
+    effect_theta: float | None = Field(description="Focal-density weighted curve difference in theta units")
+    effect_signed: float | None = Field(description="Signed version; negative: harder for the focal group")
+    level: Literal["negligible", "moderate", "large"]
+    flagged: bool
+
+
+class DifSettingsRecord(_Frozen):
+    fdr_alpha: float
+    effect_moderate: float
+    effect_large: float
+    action: Literal["exclude", "free"]
+    mh_greater_than_one_z: float
+    anchor_fraction: float
+    min_anchors: int
+
+
+class DifReport(_Frozen):
+    settings: DifSettingsRecord
+    observed: list[ObservedDifRow]
+    irt: list[IrtDifRow]
+    caution: str = Field(
+        "A DIF flag is statistical evidence, not a verdict: content experts must review an item before it is "
+        "removed or treated differently for a group."
+    )
+
+
+class LadderRow(_Frozen):
+    """One model of the invariance ladder with its comparison."""
+
+    model: Literal["configural", "metric", "scalar", "partial"]
+    description: str
+    log_likelihood: float
+    n_parameters: int
+    aic: float
+    bic: float
+    compared_with: str | None = None
+    lr_statistic: float | None = None
+    df: int | None = None
+    p_value: float | None = None
 
 
 class Bundle(_Frozen):
@@ -195,6 +293,8 @@ class Bundle(_Frozen):
     scoring: ScoringSettings
     fit: FitSummary
     quality: Quality
+    dif: DifReport | None = None
+    invariance: list[LadderRow] = Field(default_factory=list)
 
     @field_validator("items")
     @classmethod

@@ -30,7 +30,9 @@ def _log_sigmoid(z: FloatArray) -> FloatArray:
     return -np.logaddexp(0.0, -z)
 
 
-def cumulative_logit_loglik(y: FloatArray, x: FloatArray, thresholds: FloatArray, beta: FloatArray) -> float:
+def cumulative_logit_loglik(
+    y: FloatArray, x: FloatArray, thresholds: FloatArray, beta: FloatArray, weights: FloatArray | None = None
+) -> float:
     """Log-likelihood of the cumulative logit at the given parameters (categories 0 .. K-1)."""
     eta = x @ beta if x.shape[1] else np.zeros(y.shape[0])
     z = eta[:, None] + thresholds[None, :]  # (n, K-1)
@@ -43,7 +45,8 @@ def cumulative_logit_loglik(y: FloatArray, x: FloatArray, thresholds: FloatArray
         log_u = np.where(np.isposinf(u), 0.0, _log_sigmoid(u))
         log_not_v = np.where(np.isneginf(v), 0.0, _log_sigmoid(-v))
         gap = np.where(np.isposinf(u) | np.isneginf(v), -np.inf, v - u)
-    return float(np.sum(log_u + log_not_v + np.log(-np.expm1(gap))))
+    terms = log_u + log_not_v + np.log(-np.expm1(gap))
+    return float(terms.sum() if weights is None else weights @ terms)
 
 
 @dataclass(frozen=True)
@@ -54,21 +57,25 @@ class CumulativeLogitFit:
     converged: bool
 
 
-def fit_cumulative_logit(y: FloatArray, x: FloatArray, n_categories: int, *, max_iter: int = 100) -> CumulativeLogitFit:
+def fit_cumulative_logit(
+    y: FloatArray, x: FloatArray, n_categories: int, *, weights: FloatArray | None = None, max_iter: int = 100
+) -> CumulativeLogitFit:
     """Maximum likelihood by Fisher scoring with step halving.
 
     Parameters
     ----------
     y : array of shape (n,), codes 0 .. n_categories - 1 (each used at least once)
     x : array of shape (n, p) of covariates (no constant column: the thresholds are the intercepts)
+    weights : array of shape (n,), frequency weights (rows standing for several identical rows)
     """
     n, p = x.shape
     m = n_categories - 1
-    cum = np.array([(y >= k).mean() for k in range(1, n_categories)])
+    w_rows = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
+    cum = np.array([w_rows @ (y >= k) / w_rows.sum() for k in range(1, n_categories)])
     cum = np.clip(cum, 1e-4, 1 - 1e-4)
     thresholds = np.log(cum / (1 - cum))
     beta = np.zeros(p)
-    ll = cumulative_logit_loglik(y, x, thresholds, beta)
+    ll = cumulative_logit_loglik(y, x, thresholds, beta, w_rows)
     yi = y.astype(np.int64)
     converged = False
     for _ in range(max_iter):
@@ -86,15 +93,15 @@ def fit_cumulative_logit(y: FloatArray, x: FloatArray, n_categories: int, *, max
         dk = w[:, :-1] - w[:, 1:]
         jac[:, :, m:] = dk[:, :, None] * x[:, None, :]
         observed = jac[np.arange(n), yi, :] / prob[np.arange(n), yi][:, None]
-        gradient = observed.sum(axis=0)
-        information = np.einsum("nk,nkp,nkr->pr", 1.0 / prob, jac, jac)
+        gradient = w_rows @ observed
+        information = np.einsum("nk,nkp,nkr->pr", w_rows[:, None] / prob, jac, jac)
         step = np.linalg.solve(information + 1e-10 * np.eye(m + p), gradient)
         scale = 1.0
         for _halving in range(30):
             new_t = thresholds + scale * step[:m]
             new_b = beta + scale * step[m:]
             if m == 1 or np.all(np.diff(new_t) < 0):
-                new_ll = cumulative_logit_loglik(y, x, new_t, new_b)
+                new_ll = cumulative_logit_loglik(y, x, new_t, new_b, w_rows)
                 if new_ll >= ll - 1e-12:
                     break
             scale *= 0.5
@@ -130,15 +137,21 @@ class LogisticDifResult:
 
 
 def logistic_dif(y: FloatArray, matching: FloatArray, is_focal: np.ndarray, n_categories: int) -> LogisticDifResult:
-    """The three nested models for one item and one focal group (rows already selected)."""
+    """The three nested models for one item and one focal group (rows already selected).
+
+    Rows are collapsed to distinct (matching score, group, answer) cells with frequency
+    weights first: the likelihood is the same and the fits are a hundred times smaller.
+    """
     n = y.size
-    z = (matching - matching.mean()) / (matching.std() or 1.0)
-    g = is_focal.astype(np.float64)
+    z_all = (matching - matching.mean()) / (matching.std() or 1.0)
+    cells, counts = np.unique(np.column_stack([z_all, is_focal.astype(np.float64), y]), axis=0, return_counts=True)
+    z, g, y_cells = cells[:, 0], cells[:, 1], cells[:, 2]
+    w = counts.astype(np.float64)
     x3 = np.column_stack([z, g, z * g])
-    null = fit_cumulative_logit(y, x3[:, :0], n_categories).log_likelihood
-    m1 = fit_cumulative_logit(y, x3[:, :1], n_categories).log_likelihood
-    m2 = fit_cumulative_logit(y, x3[:, :2], n_categories).log_likelihood
-    m3 = fit_cumulative_logit(y, x3, n_categories).log_likelihood
+    null = fit_cumulative_logit(y_cells, x3[:, :0], n_categories, weights=w).log_likelihood
+    m1 = fit_cumulative_logit(y_cells, x3[:, :1], n_categories, weights=w).log_likelihood
+    m2 = fit_cumulative_logit(y_cells, x3[:, :2], n_categories, weights=w).log_likelihood
+    m3 = fit_cumulative_logit(y_cells, x3, n_categories, weights=w).log_likelihood
     omnibus = max(2 * (m3 - m1), 0.0)
     uniform = max(2 * (m2 - m1), 0.0)
     nonuniform = max(2 * (m3 - m2), 0.0)

@@ -1,0 +1,146 @@
+"""Model-based quality checks: S-X2 item fit, RMSD, and dimensionality summaries.
+
+- S-X2 (Orlando & Thissen 2000): observed versus expected proportions in each
+  category of an item among respondents with the same summed score; expected
+  values come from the Lord-Wingersky distribution of the other items' summed
+  score. Summed scores 0 and the maximum are left out, adjacent score groups are
+  merged until every expected cell count is at least 1, and
+  df = score groups x (K - 1) - number of item parameters. Needs complete rows.
+- RMSD per item (common practice, no single source): the root mean squared
+  difference between the group's observed expected-score curve (posterior
+  weighted) and the model curve, over the group's latent density, divided by the
+  item's maximum score.
+- Dimensionality: the first-to-second eigenvalue ratio of the item correlation
+  matrix, and the largest eigenvalue of the correlations of standardized
+  residuals (the first contrast; values above about 2 suggest a second dimension).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+from calibration.irt.likelihood import QuadratureGrid, build_design, log_likelihood_grid, normal_log_weights
+from calibration.irt.models import FloatArray, IntArray, ItemParameters, category_probabilities, expected_item_scores
+from calibration.irt.scoring import summed_score_likelihoods
+
+MIN_COMPLETE_ROWS = 100
+
+
+@dataclass(frozen=True)
+class Dimensionality:
+    """None where there were too few complete rows (fewer than MIN_COMPLETE_ROWS) or items."""
+
+    eigenvalue_ratio: float | None
+    residual_first_contrast: float | None
+    n_complete: int
+
+
+@dataclass(frozen=True)
+class ItemFit:
+    s_x2: FloatArray
+    s_x2_df: IntArray
+    s_x2_p: FloatArray
+    rmsd: FloatArray
+
+
+def item_fit(
+    params: ItemParameters,
+    responses: FloatArray,
+    *,
+    latent_mean: float = 0.0,
+    latent_sd: float = 1.0,
+    grid: QuadratureGrid | None = None,
+) -> ItemFit:
+    grid = grid or QuadratureGrid(49, -6.0, 6.0)
+    points = grid.points
+    weights = np.exp(normal_log_weights(points, latent_mean, latent_sd))
+    n_items = params.n_items
+    s_x2 = np.full(n_items, np.nan)
+    df = np.zeros(n_items, dtype=np.int64)
+    p = np.full(n_items, np.nan)
+    complete = responses[~np.isnan(responses).any(axis=1)]
+    if complete.shape[0] >= MIN_COMPLETE_ROWS and n_items >= 3:
+        s_x2, df, p = _s_x2(params, complete, points, weights)
+    return ItemFit(s_x2=s_x2, s_x2_df=df, s_x2_p=p, rmsd=_rmsd(params, responses, points, latent_mean, latent_sd))
+
+
+def _s_x2(params: ItemParameters, x: FloatArray, points: FloatArray, weights: FloatArray
+          ) -> tuple[FloatArray, IntArray, FloatArray]:
+    n_items = params.n_items
+    totals = x.sum(axis=1).astype(np.int64)
+    max_score = int(np.sum(params.n_categories - 1))
+    full = summed_score_likelihoods(params, points) @ weights  # P(S = s)
+    prob = category_probabilities(params, points)
+    out_stat = np.full(n_items, np.nan)
+    out_df = np.zeros(n_items, dtype=np.int64)
+    out_p = np.full(n_items, np.nan)
+    for j in range(n_items):
+        k_j = int(params.n_categories[j])
+        rest = summed_score_likelihoods(params.subset([i for i in range(n_items) if i != j]), points)
+        scores = np.arange(1, max_score)
+        expected = np.zeros((scores.size, k_j))
+        for row, s in enumerate(scores):
+            for k in range(k_j):
+                if 0 <= s - k < rest.shape[0]:
+                    expected[row, k] = (prob[j, k] * rest[s - k]) @ weights
+            expected[row] /= max(full[s], 1e-300)
+        n_s = np.array([(totals == s).sum() for s in scores], dtype=np.float64)
+        observed = np.array([[np.sum((totals == s) & (x[:, j] == k)) for k in range(k_j)] for s in scores],
+                            dtype=np.float64)
+        # Merge adjacent score groups from each end until every expected count is at least 1.
+        groups: list[tuple[float, FloatArray, FloatArray]] = []
+        acc_n, acc_e, acc_o = 0.0, np.zeros(k_j), np.zeros(k_j)
+        for row in range(scores.size):
+            acc_n += n_s[row]
+            acc_e += expected[row] * n_s[row]
+            acc_o += observed[row]
+            if acc_n > 0 and np.all(acc_e >= 1.0):
+                groups.append((acc_n, acc_e.copy(), acc_o.copy()))
+                acc_n, acc_e, acc_o = 0.0, np.zeros(k_j), np.zeros(k_j)
+        if acc_n > 0 and groups:
+            n_last, e_last, o_last = groups.pop()
+            groups.append((n_last + acc_n, e_last + acc_e, o_last + acc_o))
+        n_params = k_j  # slope + K - 1 intercepts
+        dof = len(groups) * (k_j - 1) - n_params
+        if dof < 1:
+            continue
+        stat = float(sum(np.sum((o - e) ** 2 / np.maximum(e, 1e-12)) for _, e, o in groups))
+        out_stat[j], out_df[j], out_p[j] = stat, dof, float(stats.chi2.sf(stat, dof))
+    return out_stat, out_df, out_p
+
+
+def _rmsd(params: ItemParameters, x: FloatArray, points: FloatArray, mean: float, sd: float) -> FloatArray:
+    log_prior = normal_log_weights(points, mean, sd)
+    design = build_design(x, params.n_categories)
+    joint = log_likelihood_grid(params, points, design, log_prior=log_prior)
+    joint -= joint.max(axis=1, keepdims=True)
+    post = np.exp(joint)
+    post /= post.sum(axis=1, keepdims=True)
+    answered = ~np.isnan(x)
+    observed_sum = np.where(answered, x, 0.0).T @ post  # (J, Q)
+    mass = answered.astype(np.float64).T @ post
+    observed = observed_sum / np.maximum(mass, 1e-12)
+    model = expected_item_scores(params, points)
+    w = np.exp(log_prior)
+    top = (params.n_categories - 1).astype(np.float64)
+    return np.sqrt((observed - model) ** 2 @ w) / top
+
+
+def dimensionality(params: ItemParameters, responses: FloatArray, theta: FloatArray) -> Dimensionality:
+    complete = ~np.isnan(responses).any(axis=1)
+    x = responses[complete]
+    if x.shape[0] < MIN_COMPLETE_ROWS or x.shape[1] < 3 or np.any(x.std(axis=0) == 0):
+        return Dimensionality(None, None, int(x.shape[0]))
+    eig = np.sort(np.linalg.eigvalsh(np.corrcoef(x, rowvar=False)))[::-1]
+    ratio = float(eig[0] / eig[1]) if eig[1] > 0 else None
+    t = theta[complete]
+    prob = category_probabilities(params, t)  # (J, K, n)
+    k = np.arange(params.max_categories, dtype=np.float64)
+    mean = np.einsum("jkn,k->nj", prob, k)
+    var = np.einsum("jkn,k->nj", prob, k * k) - mean**2
+    residual = (x - mean) / np.sqrt(np.maximum(var, 1e-12))
+    contrast = float(np.max(np.linalg.eigvalsh(np.corrcoef(residual, rowvar=False))))
+    return Dimensionality(eigenvalue_ratio=ratio, residual_first_contrast=contrast, n_complete=int(x.shape[0]))
