@@ -237,6 +237,8 @@ def calibrate_data(
         raise CalibrationInputError(f"{data.source}: fewer than two items with variance; nothing to calibrate")
     x = x_all[:, keep]
     item_ids = tuple(data.item_ids[j] for j in keep)
+    # Reviewer overrides are checked now, before the long steps, and applied after the DIF stage.
+    _apply_overrides(overrides, {}, {}, item_ids, group_names, check_only=True)
     k = data.n_categories[keep]
     models = tuple(data.models[j] for j in keep)
     n_items = len(item_ids)
@@ -257,16 +259,20 @@ def calibrate_data(
     anchors_record = Anchors(items=[], method="none: single-group calibration (the scale is fixed by N(0,1))")
     em_no_se = replace(settings.em, standard_errors=False)
 
+    # Cells without variance in a group cannot be estimated: every model treats them as not administered.
+    x_model = x.copy()
+    for j, g in no_variance_cells:
+        x_model[group_index == g, j] = np.nan
     if n_groups > 1:
         if progress is not None:
             progress("screen", 0, 0.0)
         screening = screen_observed(x, k, group_index, n_groups, greater_than_one_z=settings.mh_greater_than_one_z)
         observed_rows = _observed_rows(x, k, group_index, screening, item_ids, group_names)
-        scalar = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em_no_se,
+        scalar = _quiet_fit(x_model, k, group_index, n_groups, models=models, settings=em_no_se,
                             progress=em_progress("scalar"))
         dif_outcome = run_irt_dif(
-            x, k, group_index, n_groups, scalar, item_ids=item_ids, models=models, settings=settings.dif,
-            em_settings=settings.em,
+            x_model, k, group_index, n_groups, scalar, item_ids=item_ids, models=models, settings=settings.dif,
+            em_settings=settings.em, skip=set(no_variance_cells),
             progress=(lambda stage, done, total: progress(stage, done, float(total))) if progress else None,
         )
         anchors_record = Anchors(items=[item_ids[j] for j in dif_outcome.anchors], method=dif_outcome.anchor_method)
@@ -292,7 +298,8 @@ def calibrate_data(
             status[(j, g)] = "excluded"
             reasons[(j, g)] = why
         _apply_overrides(overrides, status, reasons, item_ids, group_names)
-        ladder = _ladder(x, k, group_index, n_groups, models, em_no_se, scalar, status, dif_outcome)
+        ladder = _ladder(x_model, k, group_index, n_groups, models, em_no_se, scalar, status, dif_outcome,
+                         set(no_variance_cells))
 
     # Final calibration under the policy: excluded cells are not administered for that group.
     k_max = int(k.max())
@@ -370,6 +377,8 @@ def _apply_overrides(
     reasons: dict[tuple[int, int], str],
     item_ids: tuple[str, ...],
     group_names: list[str],
+    *,
+    check_only: bool = False,
 ) -> None:
     problems = []
     for o in overrides:
@@ -389,6 +398,8 @@ def _apply_overrides(
         if not o.note.strip():
             problems.append(f"policy override for {o.item} in {o.group}: a reviewer note is required")
             continue
+        if check_only:
+            continue
         cell = (item_ids.index(o.item), group_names.index(o.group))
         status[cell] = o.status
         reasons[cell] = f"reviewer override: {o.note.strip()}"
@@ -406,11 +417,17 @@ def _ladder(
     scalar: MultiGroupFit,
     status: dict[tuple[int, int], str],
     dif: DifOutcome,
+    structural: set[tuple[int, int]],
 ) -> list[LadderRow]:
-    """Configural, metric, scalar and partial invariance models on the same data."""
+    """Configural, metric, scalar and partial invariance models on the same data.
+
+    ``structural`` cells (no variance in a group) carry no data in any rung and stay shared.
+    """
     n_items, k_max = x.shape[1], int(k.max())
     everything = np.ones((n_groups, n_items, k_max), dtype=bool)
     everything[0] = False
+    for j, g in structural:
+        everything[g, j, :] = False
     configural = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em, group_free=everything,
                             start=scalar.tables, latent=LatentSpec.reference_fixed(n_groups, free_mean=False,
                                                                                     free_sd=False))
@@ -420,7 +437,7 @@ def _ladder(
                         start=scalar.tables, latent=LatentSpec.reference_fixed(n_groups, free_mean=False))
     partial_free = np.zeros((n_groups, n_items, k_max), dtype=bool)
     for (j, g), st in status.items():
-        if st != "invariant":
+        if st != "invariant" and (j, g) not in structural:
             partial_free[g, j, :] = True  # same data as the other rungs: excluded cells are freed here
     partial = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em, group_free=partial_free,
                          start=dif.anchor_fit.tables)

@@ -316,9 +316,10 @@ def test_items(
     tolerance: float = 1e-3,
     quadrature: QuadratureGrid | None = None,
     omnibus_only: bool = False,
+    skip: set[tuple[int, int]] | None = None,
     progress: Callable[[int, int], None] | None = None,
 ) -> dict[tuple[int, int], ItemGroupTest]:
-    """Anchored LR tests of ``items`` in every focal group against the base ``fit``."""
+    """Anchored LR tests of ``items`` in every focal group against the base ``fit`` (``skip``: cells left out)."""
     settings = EMSettings(tolerance=tolerance, standard_errors=False,
                           quadrature=quadrature or fit.settings.quadrature, compress_patterns=False)
     base = _base_logliks(fit, responses, group_index, settings.quadrature.points)
@@ -327,6 +328,8 @@ def test_items(
     total = len(items) * (n_groups - 1)
     for j in items:
         for g in range(1, n_groups):
+            if skip and (j, g) in skip:
+                continue
             out[(j, g)] = _test_item(j, g, fit, base, responses, settings, omnibus_only=omnibus_only)
             if progress is not None:
                 progress(len(out), total)
@@ -383,9 +386,13 @@ def run_irt_dif(
     models: tuple[str, ...],
     settings: DifSettings,
     em_settings: EMSettings,
+    skip: set[tuple[int, int]] | None = None,
     progress: Callable[[str, int, int], None] | None = None,
 ) -> DifOutcome:
-    """Anchor selection (or user anchors), the anchor-model fit, and the tests of every other item."""
+    """Anchor selection (or user anchors), the anchor-model fit, and the tests of every other item.
+
+    ``skip`` names (item, group) cells with no data to test (e.g. no variance in that group).
+    """
     n_items = responses.shape[1]
 
     def report(stage: str) -> Callable[[int, int], None]:
@@ -400,7 +407,8 @@ def run_irt_dif(
         method = "named by the user"
     else:
         screening = test_items(scalar_fit, responses, group_index, list(range(n_items)),
-                               tolerance=settings.sub_tolerance, omnibus_only=True, progress=report("screen"))
+                               tolerance=settings.sub_tolerance, omnibus_only=True, skip=skip,
+                               progress=report("screen"))
         anchors = select_anchors(screening, n_items, settings)
         method = (
             f"all-other-items screening (anchored LR, every other item held at the scalar-model estimates), "
@@ -411,6 +419,8 @@ def run_irt_dif(
     group_free = np.zeros((n_groups, n_items, k_max), dtype=bool)
     others = [j for j in range(n_items) if j not in anchors]
     group_free[1:, others, :] = True
+    for j, g in skip or ():
+        group_free[g, j, :] = False  # no data to free the cell with
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         anchor_fit = calibrate_groups(
@@ -418,7 +428,7 @@ def run_irt_dif(
             settings=EMSettings(**{**em_settings.__dict__, "standard_errors": False}),
             group_free=group_free, start=scalar_fit.tables,
         )
-    tests = test_items(anchor_fit, responses, group_index, others, tolerance=settings.sub_tolerance,
+    tests = test_items(anchor_fit, responses, group_index, others, tolerance=settings.sub_tolerance, skip=skip,
                        progress=report("test"))
     return DifOutcome(screening=adjust(screening) if screening else {}, anchors=anchors, anchor_method=method,
                       anchor_fit=anchor_fit, tests=adjust(tests), settings=settings)

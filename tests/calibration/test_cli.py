@@ -20,7 +20,7 @@ from calibration.irt.scoring import NormalPrior, eap_scores
 def published(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
     root = tmp_path_factory.mktemp("cli")
     data = root / "responses.csv"
-    make_demo_responses(800, seed=5).to_csv(data, index=False)
+    make_demo_responses(800, seed=5, with_sites=False).to_csv(data, index=False)
     assert main(["calibrate", str(data), "--name", "skills", "--store", str(root / "store")]) == 0
     return data, root / "store"
 
@@ -45,6 +45,7 @@ def test_score_output_matches_the_library(published: tuple[Path, Path], tmp_path
     raw = pd.read_csv(data)
     x = raw[list(scorer.item_ids)].to_numpy(dtype=float)
     direct = eap_scores(scorer.plans["all"].params, x, grid=QuadratureGrid(), prior=NormalPrior())
+    assert (frame["group"] == "all").all() and (frame["excluded_items"] == "").all()
     # The CSV keeps 6 decimals.
     np.testing.assert_allclose(frame["theta"], direct.theta, atol=5e-7)
     np.testing.assert_allclose(frame["se"], direct.se, atol=5e-7)
@@ -53,7 +54,7 @@ def test_score_output_matches_the_library(published: tuple[Path, Path], tmp_path
 
 def test_bad_cell_exits_2_names_the_cell_and_publishes_nothing(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     data = tmp_path / "bad.csv"
-    frame = make_demo_responses(100, seed=1).astype(str)
+    frame = make_demo_responses(100, seed=1, with_sites=False).astype(str)
     frame.loc[41, "DOC03"] = "yes"
     frame.to_csv(data, index=False)
     store_dir = tmp_path / "store"
@@ -65,14 +66,14 @@ def test_bad_cell_exits_2_names_the_cell_and_publishes_nothing(tmp_path: Path, c
 
 def test_too_few_respondents_is_a_clear_error(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     data = tmp_path / "small.csv"
-    make_demo_responses(30, seed=2).to_csv(data, index=False)
+    make_demo_responses(30, seed=2, with_sites=False).to_csv(data, index=False)
     assert main(["calibrate", str(data), "--name", "s", "--store", str(tmp_path / "st")]) == 2
     assert "30 respondents; a calibration needs at least 50" in capsys.readouterr().err
 
 
 def test_item_without_variance_is_left_out_and_reported(tmp_path: Path) -> None:
     data = tmp_path / "flat.csv"
-    frame = make_demo_responses(600, seed=3)
+    frame = make_demo_responses(600, seed=3, with_sites=False)
     frame["NUM01"] = 1
     frame.to_csv(data, index=False)
     assert main(["calibrate", str(data), "--name", "flat", "--store", str(tmp_path / "st")]) == 0
