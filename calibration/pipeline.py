@@ -89,6 +89,8 @@ SINGLE_GROUP = "all"
 RECOMMENDED_MIN_RESPONDENTS = 500
 HARD_MIN_RESPONDENTS = 50
 HARD_MIN_PER_GROUP = 100
+# A graded category with fewer answers than this in any group is merged with a neighbour (common practice).
+MIN_CATEGORY_COUNT = 5
 
 DIF_ACTIONS = ("exclude", "free")
 POLICY_STATUSES = ("invariant", "group_specific", "excluded")
@@ -235,12 +237,23 @@ def calibrate_data(
                 )
     if len(keep) < 2:
         raise CalibrationInputError(f"{data.source}: fewer than two items with variance; nothing to calibrate")
-    x = x_all[:, keep]
+    x = x_all[:, keep].copy()
     item_ids = tuple(data.item_ids[j] for j in keep)
+    k = data.n_categories[keep].copy()
+    category_maps: dict[int, list[int]] = {}
+    for j in range(len(keep)):
+        merged = collapse_sparse_categories(x[:, j], int(k[j]), group_index, group_names)
+        if merged is not None:
+            mapping, note = merged
+            answered = ~np.isnan(x[:, j])
+            x[answered, j] = np.asarray(mapping, dtype=np.float64)[x[answered, j].astype(np.int64)]
+            category_maps[j] = mapping
+            k[j] = max(mapping) + 1
+            notes.append(f"item {item_ids[j]!r}: {note}; scoring applies the same recoding")
     # Reviewer overrides are checked now, before the long steps, and applied after the DIF stage.
     _apply_overrides(overrides, {}, {}, item_ids, group_names, check_only=True)
-    k = data.n_categories[keep]
-    models = tuple(data.models[j] for j in keep)
+    # An item merged down to two categories becomes a 2PL item.
+    models = tuple("2pl" if k[pos] == 2 and data.models[j] == "grm" else data.models[j] for pos, j in enumerate(keep))
     n_items = len(item_ids)
 
     def em_progress(stage: str) -> Callable[[int, float], None]:
@@ -357,6 +370,7 @@ def calibrate_data(
         data=data, name=name, settings=settings, fit=fit, x=x, item_ids=item_ids, models=models, k=k,
         group_names=group_names, group_index=group_index, status=status, reasons=reasons, evidence=evidence,
         excluded_items=excluded_items, anchors=anchors_record, by_group=by_group, notes=notes,
+        category_maps=category_maps,
         dif=(DifReport(
             settings=DifSettingsRecord(
                 fdr_alpha=settings.dif.alpha, effect_moderate=settings.dif.effect_moderate,
@@ -369,6 +383,48 @@ def calibrate_data(
         ladder=ladder,
     )
     return CalibrationOutcome(bundle=bundle, fit=fit, warnings=tuple(notes), dif=dif_outcome)
+
+
+def collapse_sparse_categories(
+    column: np.ndarray, n_categories: int, group_index: np.ndarray, group_names: list[str]
+) -> tuple[list[int], str] | None:
+    """Merge graded categories with fewer than MIN_CATEGORY_COUNT answers in any group into a neighbour.
+
+    The sparsest category goes into its smaller neighbour (the end categories into
+    their only neighbour) until every category is well filled or two remain.
+    Returns (answer code -> new code, a note naming what was merged and why) or None.
+    """
+    if n_categories < 3:
+        return None
+    n_groups = len(group_names)
+    mapping = list(range(n_categories))
+    merged_notes = []
+    while max(mapping) >= 2:
+        k_now = max(mapping) + 1
+        counts = np.zeros((n_groups, k_now))
+        for g in range(n_groups):
+            values = column[(group_index == g) & ~np.isnan(column)].astype(np.int64)
+            counts[g] = np.bincount(np.asarray(mapping)[values], minlength=k_now)
+        worst = counts.min(axis=0)
+        c = int(np.argmin(worst))
+        if worst[c] >= MIN_CATEGORY_COUNT:
+            break
+        group = int(np.argmin(counts[:, c]))
+        if c == 0:
+            into = 1
+        elif c == k_now - 1:
+            into = k_now - 2
+        else:
+            into = c - 1 if counts[:, c - 1].min() <= counts[:, c + 1].min() else c + 1
+        low, high = min(c, into), max(c, into)
+        raw = [code for code, m in enumerate(mapping) if m in (low, high)]
+        where = "" if n_groups == 1 else f" in group {group_names[group]!r}"
+        merged_notes.append(f"answer codes {', '.join(map(str, raw))} merged (a category had {int(counts[group, c])} "
+                            f"answers{where}, below {MIN_CATEGORY_COUNT})")
+        mapping = [m if m <= low else m - 1 for m in mapping]
+    if not merged_notes:
+        return None
+    return mapping, "; ".join(merged_notes)
 
 
 def _apply_overrides(
@@ -599,6 +655,7 @@ def _assemble(
     group_index: np.ndarray, status: dict[tuple[int, int], str], reasons: dict[tuple[int, int], str],
     evidence: dict[tuple[int, int], PolicyEvidence], excluded_items: list[ExcludedItem], anchors: Anchors,
     by_group: dict[str, GroupQuality], notes: list[str], dif: DifReport | None, ladder: list[LadderRow],
+    category_maps: dict[int, list[int]],
 ) -> Bundle:
     reference = fit.group_params(0)
     b_se = threshold_se(reference, fit.layout.index[0], fit.covariance)
@@ -627,6 +684,7 @@ def _assemble(
             slope_se=finite_or_none(float(fit.slot_se[0, j, 0])),
             intercept_se=[finite_or_none(float(s)) for s in fit.slot_se[0, j, 1:kj]],
             threshold_se=[finite_or_none(float(s)) for s in b_se[j, : kj - 1]],
+            category_map=category_maps.get(j),
             n_responses=int(np.sum(~np.isnan(x[:, j]))),
             mean_score=finite_or_none(float(np.nanmean(x[:, j]))),
             item_rest_correlation=finite_or_none(float(classical.item_rest[j])),

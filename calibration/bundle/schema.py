@@ -89,6 +89,9 @@ class ItemEntry(_Frozen):
     slope_se: float | None = None
     intercept_se: list[float | None]
     threshold_se: list[float | None]
+    category_map: list[int] | None = Field(
+        None, description="Answer code -> model category when sparse categories were merged (index = answer code)"
+    )
     n_responses: int = Field(ge=0)
     mean_score: float | None = None
     item_rest_correlation: float | None = None
@@ -103,7 +106,18 @@ class ItemEntry(_Frozen):
             raise ValueError(f"item {self.id!r}: intercepts must be strictly decreasing")
         if self.model in ("2pl", "1pl") and self.n_categories != 2:
             raise ValueError(f"item {self.id!r}: model {self.model} has exactly 2 categories")
+        if self.category_map is not None and (
+            sorted(set(self.category_map)) != list(range(self.n_categories))
+            or any(b < a for a, b in zip(self.category_map, self.category_map[1:], strict=False))
+        ):
+            raise ValueError(f"item {self.id!r}: category_map must map answer codes onto 0..{self.n_categories - 1} "
+                             "in order")
         return self
+
+    @property
+    def answer_categories(self) -> int:
+        """Number of answer codes a respondent may give (before any merging)."""
+        return self.n_categories if self.category_map is None else len(self.category_map)
 
 
 class ExcludedItem(_Frozen):

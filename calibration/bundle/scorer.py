@@ -73,7 +73,12 @@ class BundleScorer:
     def __init__(self, bundle: Bundle) -> None:
         self.bundle = bundle
         self.item_ids: tuple[str, ...] = tuple(item.id for item in bundle.items)
-        self.item_categories: dict[str, int] = {item.id: item.n_categories for item in bundle.items}
+        self.item_categories: dict[str, int] = {item.id: item.answer_categories for item in bundle.items}
+        # Answer code -> model category, for items whose sparse categories were merged at calibration.
+        self.recode: dict[int, np.ndarray] = {
+            j: np.array(item.category_map, dtype=np.float64)
+            for j, item in enumerate(bundle.items) if item.category_map is not None
+        }
         settings = bundle.scoring
         self.grid = QuadratureGrid(settings.quadrature.n_points, settings.quadrature.lower, settings.quadrature.upper)
         self.prior = NormalPrior(settings.prior_mean, settings.prior_sd)
@@ -149,6 +154,11 @@ class BundleScorer:
         if method not in METHODS:
             raise ValueError(f"unknown scoring method {method!r}; use one of {', '.join(METHODS)}")
         x = np.asarray(responses, dtype=np.float64)
+        if self.recode:
+            x = x.copy()
+            for j, table in self.recode.items():
+                answered = ~np.isnan(x[:, j])
+                x[answered, j] = table[x[answered, j].astype(np.int64)]
         n = x.shape[0]
         theta = np.empty(n)
         se = np.empty(n)

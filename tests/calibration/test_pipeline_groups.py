@@ -153,3 +153,24 @@ def test_item_without_variance_in_one_group_is_excluded_there(tmp_path: Path) ->
                             reference_group="port-ellery").bundle
     cell = next(i for i in bundle.items if i.id == "NUM01").policy["ridgeview"]
     assert cell.status == "excluded" and cell.reason.startswith("no variance in group 'ridgeview'")
+
+
+def test_sparse_graded_category_is_merged_and_scoring_recodes(tmp_path: Path) -> None:
+    frame = make_demo_responses(2400, seed=9)
+    ridge = frame.index[frame["site"] == "ridgeview"]
+    top = (frame.loc[ridge, "DIG01"] == 3).fillna(False)
+    frame.loc[ridge[top.to_numpy()][3:], "DIG01"] = 2  # leave only 3 answers in category 3 at ridgeview
+    path = tmp_path / "sparse.csv"
+    frame.to_csv(path, index=False)
+    bundle = calibrate_data(read_responses(path, group_column="site"), name="sp",
+                            reference_group="port-ellery").bundle
+    item = next(i for i in bundle.items if i.id == "DIG01")
+    assert item.category_map == [0, 1, 2, 2] and item.n_categories == 3
+    assert any("DIG01" in w and "ridgeview" in w and "merged" in w for w in bundle.quality.warnings)
+    scorer = BundleScorer(bundle)
+    assert scorer.item_categories["DIG01"] == 4  # answers are still coded 0..3
+    answers = np.full((2, len(scorer.item_ids)), np.nan)
+    j = scorer.item_ids.index("DIG01")
+    answers[0, j], answers[1, j] = 3, 2
+    theta = scorer.score(answers, ["port-ellery", "port-ellery"]).theta
+    assert theta[0] == theta[1]  # 3 and 2 are one category now
