@@ -124,6 +124,13 @@ def _build_parser() -> argparse.ArgumentParser:
     bb.add_argument("--store", required=True)
     bsub.add_parser("schema", help="print the bundle JSON Schema")
 
+    srv = sub.add_parser("serve", help="run the scoring service (uvicorn) over a bundle store")
+    srv.add_argument("--store", required=True, help="bundle directory (or a redis:// URL)")
+    srv.add_argument("--redis-url", help="shared Redis store (overrides --store)")
+    srv.add_argument("--host", default="127.0.0.1")
+    srv.add_argument("--port", type=int, default=8000)
+    srv.add_argument("--workers", type=int, default=1)
+
     demo = sub.add_parser("demo", help="invent a workforce-skills data set, calibrate, score and summarise it")
     demo.add_argument("--out", type=Path, default=Path("demo-output"))
     demo.add_argument("--respondents", type=int, default=4500)
@@ -150,6 +157,8 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _bundle(args)
         if args.command == "demo":
             return _demo(args)
+        if args.command == "serve":
+            return _serve(args)
     except (InputError, CalibrationInputError, UsageError) as exc:
         console.print(f"[bold red]error:[/] {exc}", highlight=False)
         return 2
@@ -392,6 +401,18 @@ def _bundle(args: argparse.Namespace) -> int:
         out.print(f"{args.name}: alias {record.alias} moved back -> {record.version}")
         return 0
     return 1
+
+
+def _serve(args: argparse.Namespace) -> int:
+    """Hand over to the service in a process of its own (calibration never imports the service)."""
+    import os
+
+    argv = [sys.executable, "-m", "service.main", "--store", str(args.store), "--host", args.host,
+            "--port", str(args.port), "--workers", str(args.workers)]
+    if args.redis_url:
+        argv += ["--redis-url", args.redis_url]
+    os.execv(sys.executable, argv)
+    return 1  # not reached
 
 
 def _demo(args: argparse.Namespace) -> int:

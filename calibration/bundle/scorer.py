@@ -19,15 +19,23 @@ from calibration.bundle.canonical import BundleError
 from calibration.bundle.schema import Bundle
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
-from calibration.irt.scoring import METHODS, NormalPrior, ReportingScale, score
+from calibration.irt.scoring import METHODS, NormalPrior, ReportingScale, person_fit_lz, score
 
 FLAG_NO_ANSWERS = "no_answers"
 FLAG_FEW_ITEMS = "few_items"
 FLAG_EXTREME = "extreme_pattern"
+FLAG_MISFIT = "person_misfit"
+# l_z below the one-sided 5% normal point flags a pattern as unlikely (common practice).
+PERSON_FIT_CUTOFF = -1.645
 
 
 class UnknownGroup(BundleError):
-    """A respondent's group is not a group of the bundle."""
+    """A respondent's group is not a group of the bundle; ``index`` is the 0-based respondent position."""
+
+    def __init__(self, message: str, *, index: int, group: str | None) -> None:
+        super().__init__(message)
+        self.index = index
+        self.group = group
 
 
 @dataclass(frozen=True)
@@ -52,6 +60,8 @@ class ScoredBatch:
     groups: tuple[str, ...]
     flags: tuple[tuple[str, ...], ...]
     method: str
+    person_fit: FloatArray  # l_z at the estimate (NaN without answers)
+    summed_score: FloatArray  # summed score when every item of the group's plan was answered, else NaN
 
 
 def _shared_parameters(bundle: Bundle) -> ItemParameters:
@@ -125,7 +135,7 @@ class BundleScorer:
                 if self.default_group is None:
                     raise UnknownGroup(
                         f"respondent {i + 1}: no group given and the bundle has several groups "
-                        f"({', '.join(sorted(known))})"
+                        f"({', '.join(sorted(known))})", index=i, group=None,
                     )
                 resolved.append(self.default_group)
             elif g in known:
@@ -135,7 +145,7 @@ class BundleScorer:
             else:
                 raise UnknownGroup(
                     f"respondent {i + 1}: group {g!r} is not in bundle {self.bundle.label} "
-                    f"(groups: {', '.join(sorted(known))})"
+                    f"(groups: {', '.join(sorted(known))})", index=i, group=g,
                 )
         return tuple(resolved)
 
@@ -164,6 +174,8 @@ class BundleScorer:
         se = np.empty(n)
         n_answered = np.zeros(n, dtype=np.int64)
         extreme = np.zeros(n, dtype=bool)
+        person_fit = np.full(n, np.nan)
+        summed = np.full(n, np.nan)
         group_array = np.asarray(groups, dtype=object)
         for name, plan in self.plans.items():
             rows = np.flatnonzero(group_array == name)
@@ -173,6 +185,11 @@ class BundleScorer:
                            prior=self.prior, ml_bound=self.bundle.scoring.ml_bound)
             theta[rows], se[rows] = result.theta, result.se
             n_answered[rows], extreme[rows] = result.n_answered, result.extreme
+            sub = x[np.ix_(rows, plan.columns)]
+            finite = np.isfinite(theta[rows])
+            person_fit[rows[finite]] = person_fit_lz(plan.params, sub[finite], theta[rows][finite])
+            complete = ~np.isnan(sub).any(axis=1)
+            summed[rows[complete]] = sub[complete].sum(axis=1)
         scale_score, scale_se = self.reporting_scale.transform(theta, se)
         minimum = self.bundle.scoring.min_items_answered
         flags = []
@@ -184,10 +201,12 @@ class BundleScorer:
                 f.append(FLAG_FEW_ITEMS)
             if extreme[i]:
                 f.append(FLAG_EXTREME)
+            if person_fit[i] < PERSON_FIT_CUTOFF:
+                f.append(FLAG_MISFIT)
             flags.append(tuple(f))
         return ScoredBatch(
             theta=theta, se=se, scale_score=scale_score, scale_se=scale_se, n_answered=n_answered,
-            groups=tuple(groups), flags=tuple(flags), method=method,
+            groups=tuple(groups), flags=tuple(flags), method=method, person_fit=person_fit, summed_score=summed,
         )
 
     def excluded_for(self, group: str) -> tuple[tuple[str, str], ...]:

@@ -296,9 +296,13 @@ def _fsync_dir(directory: Path) -> None:
         os.close(fd)
 
 
-def open_store(location: str | Path) -> BundleStore:
-    """A store from a ``--store`` value: a directory path (``redis://`` URLs come with the service)."""
+def open_store(location: str | Path, *, prefix: str = "equitheta") -> BundleStore:
+    """A store from a ``--store`` value: a directory path or a ``redis://`` URL."""
     text = str(location)
-    if text.startswith(("redis://", "rediss://")):
-        raise BundleError("a Redis store needs the service extras; this build has only the directory store")
+    if text.startswith(("redis://", "rediss://", "unix://")):
+        try:
+            from calibration.bundle.redis_store import RedisStore
+        except ImportError as exc:  # the redis client is an optional dependency
+            raise BundleError("a redis:// store needs the 'redis' package (pip install equitheta[service])") from exc
+        return RedisStore(text, prefix=prefix)
     return DirectoryStore(text)

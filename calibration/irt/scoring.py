@@ -27,6 +27,7 @@ from calibration.irt.models import (
     IntArray,
     ItemParameters,
     category_probabilities,
+    log_category_probabilities,
     test_information,
 )
 
@@ -327,6 +328,38 @@ def summed_score_table(
         se=np.sqrt(var),
         probability=marginal,
     )
+
+
+def person_fit_lz(params: ItemParameters, responses: FloatArray, theta: FloatArray) -> FloatArray:
+    """Standardized log-likelihood person fit l_z at each respondent's theta (Drasgow, Levine & Williams 1985).
+
+    ``l_z = (l0 - E[l0]) / sqrt(Var[l0])`` over the answered items, with
+    ``E[l0] = sum_j sum_k P_jk log P_jk`` and
+    ``Var[l0] = sum_j (sum_k P_jk (log P_jk)^2 - (sum_k P_jk log P_jk)^2)``. Large negative values
+    mean an unlikely pattern. This is l_z evaluated at the estimate, without Snijders' (2001)
+    correction for the estimated theta (which makes l_z somewhat conservative). NaN with no answers.
+    """
+    x = np.asarray(responses, dtype=np.float64)
+    answered = ~np.isnan(x)
+    codes = np.where(answered, x, 0).astype(np.int64)
+    out = np.full(x.shape[0], np.nan)
+
+    def block(rows: slice) -> None:
+        log_p = np.moveaxis(log_category_probabilities(params, theta[rows]), 2, 0)  # (n, J, K)
+        prob = np.exp(log_p)
+        safe = np.where(np.isfinite(log_p), log_p, 0.0)
+        observed = np.take_along_axis(safe, codes[rows][:, :, None], axis=2)[:, :, 0]
+        mean_j = np.sum(prob * safe, axis=2)
+        var_j = np.sum(prob * safe * safe, axis=2) - mean_j**2
+        ok = answered[rows]
+        l0 = np.where(ok, observed, 0.0).sum(axis=1)
+        mean = np.where(ok, mean_j, 0.0).sum(axis=1)
+        var = np.where(ok, var_j, 0.0).sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out[rows] = np.where((ok.sum(axis=1) > 0) & (var > 0), (l0 - mean) / np.sqrt(var), np.nan)
+
+    run_blocks(block, x.shape[0], DEFAULT_CHUNK, workers=None)
+    return out
 
 
 def marginal_reliability(theta: FloatArray, se: FloatArray) -> float:

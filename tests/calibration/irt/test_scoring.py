@@ -197,3 +197,23 @@ def test_reporting_scale_rounds_and_bounds() -> None:
     np.testing.assert_allclose(ses, [30.0, 50.0, 50.0, 25.0])
     with pytest.raises(ValueError, match="minimum must be below"):
         ReportingScale(minimum=5, maximum=1)
+
+
+def test_person_fit_lz_matches_the_formula_written_out(items: ItemParameters) -> None:
+    # Independent route: l_z by explicit loops over items and categories (Drasgow et al. 1985 formula).
+    from calibration.irt.scoring import person_fit_lz
+
+    theta = np.array([0.3, -1.0, 0.8, 0.0, 1.2])
+    lz = person_fit_lz(items, PATTERNS, theta)
+    for i, pattern in enumerate(PATTERNS):
+        log_p = log_category_probabilities(items, np.array([theta[i]]))[:, :, 0]
+        l0 = mean = var = 0.0
+        for j, x in enumerate(pattern):
+            if np.isnan(x):
+                continue
+            cats = range(int(items.n_categories[j]))
+            l0 += log_p[j, int(x)]
+            m = sum(np.exp(log_p[j, k]) * log_p[j, k] for k in cats)
+            mean += m
+            var += sum(np.exp(log_p[j, k]) * log_p[j, k] ** 2 for k in cats) - m * m
+        assert lz[i] == pytest.approx((l0 - mean) / np.sqrt(var), rel=1e-10)

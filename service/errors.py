@@ -1,0 +1,111 @@
+"""RFC 9457 problem documents: every error the service returns has this shape."""
+
+from __future__ import annotations
+
+import logging
+from typing import Any
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse
+from starlette.exceptions import HTTPException as StarletteHTTPException
+
+PROBLEM_MEDIA_TYPE = "application/problem+json"
+PROBLEM_BASE = "https://equitheta.invalid/problems/"
+log = logging.getLogger("equitheta.service")
+
+
+class ProblemError(Exception):
+    """A domain error with a stable problem type."""
+
+    status = 400
+    slug = "bad-request"
+    title = "Bad request"
+
+    def __init__(self, detail: str, **extra: Any) -> None:
+        super().__init__(detail)
+        self.detail = detail
+        self.extra = extra
+
+
+class BundleNotFoundProblem(ProblemError):
+    status, slug, title = 404, "bundle-not-found", "Bundle not found"
+
+
+class InvalidScoreRequest(ProblemError):
+    status, slug, title = 422, "invalid-score-request", "The response vectors cannot be scored"
+
+
+class UnknownItem(InvalidScoreRequest):
+    slug, title = "unknown-item", "Unknown item"
+
+
+class AnswerOutOfRange(InvalidScoreRequest):
+    slug, title = "answer-out-of-range", "Answer outside the item's categories"
+
+
+class UnknownGroupProblem(InvalidScoreRequest):
+    slug, title = "unknown-group", "Unknown group"
+
+
+class InvalidBundle(ProblemError):
+    status, slug, title = 422, "invalid-bundle", "The bundle document is not valid"
+
+
+class VersionConflictProblem(ProblemError):
+    status, slug, title = 409, "version-conflict", "That version is already published with other content"
+
+
+class StoreUnavailableProblem(ProblemError):
+    status, slug, title = 503, "store-unavailable", "The shared bundle store is unreachable"
+
+
+class Unauthorized(ProblemError):
+    status, slug, title = 401, "unauthorized", "Missing or unknown API key"
+
+
+class Forbidden(ProblemError):
+    status, slug, title = 403, "forbidden", "The API key lacks the scope this route needs"
+
+
+class PayloadTooLarge(ProblemError):
+    status, slug, title = 413, "payload-too-large", "Request too large"
+
+
+def problem(status: int, slug: str, title: str, detail: str, instance: str | None = None,
+            headers: dict[str, str] | None = None, **extra: Any) -> JSONResponse:
+    body: dict[str, Any] = {"type": PROBLEM_BASE + slug, "title": title, "status": status, "detail": detail}
+    if instance:
+        body["instance"] = instance
+    body.update(extra)
+    return JSONResponse(body, status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers=headers)
+
+
+def install_handlers(app: FastAPI) -> None:
+    @app.exception_handler(ProblemError)
+    async def _domain(request: Request, exc: ProblemError) -> JSONResponse:
+        headers = {"WWW-Authenticate": "Bearer"} if exc.status == 401 else None
+        return problem(exc.status, exc.slug, exc.title, exc.detail, request.url.path, headers=headers, **exc.extra)
+
+    @app.exception_handler(RequestValidationError)
+    async def _validation(request: Request, exc: RequestValidationError) -> JSONResponse:
+        errors = [
+            {"field": ".".join(str(p) for p in e.get("loc", ())), "message": e.get("msg", ""), "type": e.get("type")}
+            for e in exc.errors()
+        ]
+        first = errors[0] if errors else {"field": "", "message": "invalid request"}
+        detail = f"{first['field']}: {first['message']}" + (f" (and {len(errors) - 1} more)" if len(errors) > 1 else "")
+        return problem(422, "validation-error", "The request does not match the schema", detail, request.url.path,
+                       errors=errors)
+
+    @app.exception_handler(StarletteHTTPException)
+    async def _http(request: Request, exc: StarletteHTTPException) -> JSONResponse:
+        slug = {404: "not-found", 405: "method-not-allowed"}.get(exc.status_code, "http-error")
+        return problem(exc.status_code, slug, str(exc.detail), f"{request.method} {request.url.path}: {exc.detail}",
+                       request.url.path)
+
+    @app.exception_handler(Exception)
+    async def _unexpected(request: Request, exc: Exception) -> JSONResponse:
+        log.exception("unexpected error on %s %s", request.method, request.url.path)
+        return problem(500, "internal-error", "Internal server error",
+                       "The server could not complete the request; the error was logged.", request.url.path)

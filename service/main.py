@@ -1,0 +1,486 @@
+"""The scoring service: ``create_app(settings)``; nothing connects at import.
+
+Run it with ``equitheta serve --store DIR|redis://...`` (uvicorn), or
+``uvicorn service.main:app_from_env --factory``.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import math
+import sys
+import time
+from collections.abc import AsyncIterator, Callable
+from contextlib import asynccontextmanager
+from pathlib import Path
+from typing import Annotated, Any
+
+import numpy as np
+from fastapi import Body, Depends, FastAPI, Header, Request
+from fastapi import Path as PathParam
+from fastapi.responses import JSONResponse, PlainTextResponse
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from calibration import __version__
+from calibration.bundle import Bundle, BundleNotFound, InvalidReference, VersionConflict, open_store
+from calibration.bundle.canonical import BundleIntegrityError
+from calibration.bundle.schema import ALIAS_PATTERN, NAME_PATTERN
+from calibration.bundle.scorer import UnknownGroup
+from service.errors import (
+    PROBLEM_MEDIA_TYPE,
+    AnswerOutOfRange,
+    BundleNotFoundProblem,
+    InvalidBundle,
+    PayloadTooLarge,
+    ProblemError,
+    StoreUnavailableProblem,
+    UnknownGroupProblem,
+    UnknownItem,
+    VersionConflictProblem,
+    install_handlers,
+    problem,
+)
+from service.metrics import Metrics
+from service.registry import BundleRegistry, LoadedBundle, StoreUnavailable
+from service.schemas import (
+    AliasRequest,
+    AliasResult,
+    BundleList,
+    BundleRef,
+    BundleSummary,
+    ExcludedItemOut,
+    Health,
+    Problem,
+    PublishResult,
+    Readiness,
+    ScoreRequest,
+    ScoreResponse,
+    ScoreResult,
+)
+from service.security import KeyRing, Principal, load_keys
+from service.settings import Settings
+
+log = logging.getLogger("equitheta.service")
+EXAMPLES = Path(__file__).resolve().parents[1] / "openapi_examples"
+
+NameParam = Annotated[str, PathParam(pattern=NAME_PATTERN, description="bundle name")]
+VersionParam = Annotated[int, PathParam(ge=1, le=2**31 - 1, description="bundle version")]
+AliasParam = Annotated[str, PathParam(pattern=ALIAS_PATTERN, description="alias, e.g. production")]
+
+
+def _example(name: str) -> Any:
+    path = EXAMPLES / f"{name}.json"
+    return json.loads(path.read_text()) if path.exists() else None
+
+
+def _problem_responses(*codes: int) -> dict[int | str, dict[str, Any]]:
+    descriptions = {
+        401: "missing or unknown API key", 403: "the key lacks the scope", 404: "unknown bundle or version",
+        409: "version already published with other content", 413: "request too large",
+        422: "invalid request, item, answer or group", 503: "the shared store is unreachable",
+    }
+    out: dict[int | str, dict[str, Any]] = {}
+    for code in codes:
+        entry: dict[str, Any] = {"model": Problem, "description": descriptions[code],
+                                 "content": {PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/Problem"}}}}
+        example = _example(f"problem_{code}")
+        if example is not None:
+            entry["content"][PROBLEM_MEDIA_TYPE]["example"] = example
+        out[code] = entry
+    return out
+
+
+def _ok_example(name: str) -> dict[str, Any]:
+    example = _example(name)
+    return {"content": {"application/json": {"example": example}}} if example is not None else {}
+
+
+# -- middleware ---------------------------------------------------------------------------------------
+class BodyLimit:
+    """Reads the request body up to the limit; a larger body gets a 413 problem document."""
+
+    def __init__(self, app: ASGIApp, max_bytes: int) -> None:
+        self.app, self.max_bytes = app, max_bytes
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http" or scope["method"] in ("GET", "HEAD", "OPTIONS"):
+            await self.app(scope, receive, send)
+            return
+        length = dict(scope.get("headers", [])).get(b"content-length")
+        if length is not None and length.isdigit() and int(length) > self.max_bytes:
+            await self._reject(scope, receive, send)
+            return
+        chunks, size, more = [], 0, True
+        while more:
+            message = await receive()
+            if message["type"] == "http.disconnect":
+                return
+            body = message.get("body", b"")
+            size += len(body)
+            if size > self.max_bytes:
+                await self._reject(scope, receive, send)
+                return
+            chunks.append(body)
+            more = message.get("more_body", False)
+        replay: list[Message] = [{"type": "http.request", "body": b"".join(chunks), "more_body": False}]
+
+        async def replayed() -> Message:
+            return replay.pop() if replay else await receive()
+
+        await self.app(scope, replayed, send)
+
+    async def _reject(self, scope: Scope, receive: Receive, send: Send) -> None:
+        response = problem(413, "payload-too-large", "Request too large",
+                           f"the request body is larger than {self.max_bytes} bytes (EQUITHETA_MAX_BODY_BYTES)",
+                           scope.get("path"))
+        await response(scope, receive, send)
+
+
+class Observe:
+    """Metrics per route template and one structured log line per request (no keys, no bodies)."""
+
+    def __init__(self, app: ASGIApp, metrics: Metrics) -> None:
+        self.app, self.metrics = app, metrics
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        start = time.perf_counter()
+        status = {"code": 500}
+
+        async def capture(message: Message) -> None:
+            if message["type"] == "http.response.start":
+                status["code"] = message["status"]
+            await send(message)
+
+        try:
+            await self.app(scope, receive, capture)
+        finally:
+            elapsed = time.perf_counter() - start
+            route = getattr(scope.get("route"), "path", "unmatched")
+            self.metrics.observe_request(route, scope["method"], status["code"], elapsed)
+            log.info(json.dumps({"event": "request", "method": scope["method"], "route": route,
+                                 "path": scope.get("path"), "status": status["code"],
+                                 "ms": round(elapsed * 1000, 3)}))
+
+
+class JsonLogFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        message = record.getMessage()
+        if message.startswith("{"):
+            body = json.loads(message)
+        else:
+            body = {"event": "log", "message": message}
+        body.update({"level": record.levelname.lower(), "logger": record.name,
+                     "time": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created))})
+        if record.exc_info:
+            body["exception"] = self.formatException(record.exc_info)
+        return json.dumps(body)
+
+
+def _configure_logging(level: str) -> None:
+    if not any(getattr(h, "_equitheta", False) for h in log.handlers):
+        handler = logging.StreamHandler(sys.stderr)
+        handler.setFormatter(JsonLogFormatter())
+        handler._equitheta = True  # type: ignore[attr-defined]
+        log.addHandler(handler)
+        log.propagate = False
+    log.setLevel(level.upper())
+
+
+# -- scoring ------------------------------------------------------------------------------------------
+def _finite(value: float) -> float | None:
+    return float(value) if math.isfinite(value) else None
+
+
+def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> ScoreResponse:
+    """Validate the vectors against the bundle and score them in one vectorised call."""
+    scorer = loaded.scorer
+    bundle = loaded.bundle
+    index = {item: j for j, item in enumerate(scorer.item_ids)}
+    categories = [scorer.item_categories[item] for item in scorer.item_ids]
+    n = len(request.responses)
+    x = np.full((n, len(scorer.item_ids)), np.nan)
+    for i, vector in enumerate(request.responses):
+        for item, value in vector.answers.items():
+            j = index.get(item)
+            if j is None:
+                raise UnknownItem(
+                    f"responses[{i}] (id {vector.id!r}): item {item!r} is not in bundle {bundle.label}",
+                    field=f"responses.{i}.answers.{item}",
+                )
+            if not 0 <= value < categories[j]:
+                raise AnswerOutOfRange(
+                    f"responses[{i}] (id {vector.id!r}), item {item!r}: answer {value} is outside the item's "
+                    f"categories 0..{categories[j] - 1}",
+                    field=f"responses.{i}.answers.{item}",
+                )
+            x[i, j] = value
+    try:
+        groups = scorer.resolve_groups([v.group for v in request.responses], n)
+    except UnknownGroup as exc:
+        vector = request.responses[exc.index]
+        known = ", ".join(sorted(scorer.plans))
+        what = "no group given and the bundle has several groups" if exc.group is None else \
+            f"group {exc.group!r} is not in bundle {bundle.label}"
+        raise UnknownGroupProblem(f"responses[{exc.index}] (id {vector.id!r}): {what} (groups: {known})",
+                                  field=f"responses.{exc.index}.group") from exc
+    result = scorer.score(x, groups, method=request.options.method)
+    tables: dict[str, dict[int, tuple[float, float]]] = {}
+    if request.options.include_summed_score:
+        for name, quality in bundle.quality.by_group.items():
+            tables[name] = {row.summed_score: (row.theta, row.se) for row in quality.summed_score_table}
+    excluded = {g: [ExcludedItemOut(item=i, reason=r) for i, r in scorer.excluded_for(g)] for g in scorer.plans}
+    results = []
+    for i, vector in enumerate(request.responses):
+        g = groups[i]
+        summed = result.summed_score[i]
+        entry: dict[str, Any] = {}
+        if request.options.include_summed_score and math.isfinite(summed):
+            theta_s, se_s = tables.get(g, {}).get(int(summed), (math.nan, math.nan))
+            entry = {"summed_score": int(summed), "summed_score_theta": _finite(theta_s),
+                     "summed_score_se": _finite(se_s)}
+        results.append(ScoreResult(
+            id=vector.id, group=g, theta=_finite(result.theta[i]), se=_finite(result.se[i]),
+            scale_score=_finite(result.scale_score[i]), scale_se=_finite(result.scale_se[i]),
+            items_answered=int(result.n_answered[i]), excluded_items=excluded[g], flags=list(result.flags[i]),
+            person_fit_lz=_finite(result.person_fit[i]), **entry,
+        ))
+    return ScoreResponse(bundle=BundleRef(name=bundle.name, version=bundle.version, hash=bundle.hash),
+                         method=result.method, results=results)
+
+
+# -- app ----------------------------------------------------------------------------------------------
+def registry_dep(request: Request) -> BundleRegistry:
+    return request.app.state.registry  # type: ignore[no-any-return]
+
+
+def principal_dep(
+    request: Request,
+    authorization: Annotated[str | None, Header(description="Bearer <API key>")] = None,
+    x_api_key: Annotated[str | None, Header(description="the API key (alternative header)")] = None,
+) -> Principal:
+    keyring: KeyRing = request.app.state.keyring
+    return keyring.authenticate(authorization, x_api_key)
+
+
+RegistryDep = Annotated[BundleRegistry, Depends(registry_dep)]
+PrincipalDep = Annotated[Principal, Depends(principal_dep)]
+
+
+def _needs(scope: str) -> Callable[[Principal], Principal]:
+    def check(principal: PrincipalDep) -> Principal:
+        KeyRing.require(principal, scope)
+        return principal
+
+    return check
+
+
+ScoreScope = Annotated[Principal, Depends(_needs("score"))]
+ReadScope = Annotated[Principal, Depends(_needs("read"))]
+PublishScope = Annotated[Principal, Depends(_needs("publish"))]
+ScoreBody = Annotated[ScoreRequest, Body(
+    openapi_examples={"one respondent": {"value": _example("score_request")}} if _example("score_request") else None
+)]
+
+
+def create_app(settings: Settings) -> FastAPI:
+    keyring = KeyRing(load_keys(settings.api_keys_file, settings.api_keys))
+    metrics = Metrics()
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        _configure_logging(settings.log_level)
+        store = open_store(settings.store, prefix=settings.redis_prefix)
+        registry = BundleRegistry(store)
+        if settings.preload:
+            registry.preload()
+        registry.start_listener()
+        app.state.registry = registry
+        if keyring.open:
+            log.warning(json.dumps({"event": "startup", "message": "no API keys configured: open access, bound to "
+                                    f"loopback only ({settings.host})"}))
+        log.info(json.dumps({"event": "startup", "store": repr(store), "bundles_loaded": registry.loaded_count,
+                             "keys": len(keyring.records)}))
+        yield
+        registry.stop()
+
+    app = FastAPI(
+        title="equitheta scoring service",
+        version=__version__,
+        description=(
+            "Scores response vectors with versioned, invariance-checked calibration bundles and explains which "
+            "items were left out for a respondent's group. " + ScoreResponse.model_fields["caution"].default
+        ),
+        lifespan=lifespan,
+    )
+    install_handlers(app)
+    app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
+    app.add_middleware(Observe, metrics=metrics)
+
+    app.state.keyring = keyring
+
+    def resolve(registry: BundleRegistry, name: str, version: int | None) -> LoadedBundle:
+        try:
+            return registry.get(name, version) if version is not None else registry.default(name)
+        except BundleNotFound as exc:
+            raise BundleNotFoundProblem(str(exc)) from exc
+        except StoreUnavailable as exc:
+            raise StoreUnavailableProblem(f"{exc}; this replica holds no copy of that bundle") from exc
+        except BundleIntegrityError as exc:
+            raise ProblemError(f"the stored bundle is damaged and refused: {exc}") from exc
+
+    def run_scoring(loaded: LoadedBundle, body: ScoreRequest) -> ScoreResponse:
+        if len(body.responses) > settings.max_vectors:
+            raise PayloadTooLarge(f"{len(body.responses)} response vectors; at most {settings.max_vectors} per "
+                                  "request (EQUITHETA_MAX_VECTORS)")
+        response = score_vectors(loaded, body)
+        metrics.count_vectors(loaded.bundle.label, len(body.responses))
+        return response
+
+    @app.get("/healthz", response_model=Health, tags=["operations"], responses={200: _ok_example("healthz")})
+    def healthz() -> Health:
+        return Health(status="ok")
+
+    @app.get("/readyz", response_model=Readiness, tags=["operations"],
+             responses={200: _ok_example("readyz"), 503: {"model": Readiness, "description": "not ready"}})
+    def readyz(registry: RegistryDep) -> Any:
+        reachable = registry.reachable()
+        metrics.set_gauge("equitheta_bundles_loaded", registry.loaded_count)
+        metrics.set_gauge("equitheta_store_up", 1.0 if reachable else 0.0)
+        if reachable:
+            return Readiness(status="ready", store="reachable", bundles_loaded=registry.loaded_count)
+        body = Readiness(status="degraded" if registry.loaded_count else "not_ready", store="unreachable",
+                         bundles_loaded=registry.loaded_count, detail=registry.degraded_reason)
+        if registry.loaded_count:
+            return body
+        return JSONResponse(body.model_dump(), status_code=503)
+
+    @app.get("/metrics", response_class=PlainTextResponse, tags=["operations"],
+             responses={200: {"content": {"text/plain": {"example": "equitheta_requests_total{...} 1\n"}}}})
+    def metrics_route(registry: RegistryDep) -> PlainTextResponse:
+        metrics.set_gauge("equitheta_bundles_loaded", registry.loaded_count)
+        return PlainTextResponse(metrics.render(), media_type="text/plain; version=0.0.4")
+
+    @app.post("/v1/bundles/{name}/scores", response_model=ScoreResponse, tags=["scoring"],
+              responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 503)})
+    def score_default(name: NameParam, body: ScoreBody, registry: RegistryDep,
+                      _: ScoreScope) -> ScoreResponse:
+        """Score with the version the ``production`` alias points at, else the newest version."""
+        return run_scoring(resolve(registry, name, None), body)
+
+    @app.post("/v1/bundles/{name}/versions/{version}/scores", response_model=ScoreResponse, tags=["scoring"],
+              responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 503)})
+    def score_version(name: NameParam, version: VersionParam, body: ScoreBody,
+                      registry: RegistryDep, _: ScoreScope) -> ScoreResponse:
+        """Score with one pinned version."""
+        return run_scoring(resolve(registry, name, version), body)
+
+    @app.get("/v1/bundles", response_model=BundleList, tags=["bundles"],
+             responses={200: _ok_example("bundles"), **_problem_responses(401, 403)})
+    def list_bundles(registry: RegistryDep, _: ReadScope) -> BundleList:
+        listing = registry.listing()
+        return BundleList(bundles=[BundleSummary(name=n, versions=v, aliases=a) for n, (v, a) in listing.items()])
+
+    @app.get("/v1/bundles/{name}/versions", response_model=BundleSummary, tags=["bundles"],
+             responses={200: _ok_example("versions"), **_problem_responses(401, 403, 404, 503)})
+    def list_versions(name: NameParam, registry: RegistryDep, _: ReadScope) -> BundleSummary:
+        try:
+            versions, aliases = registry.versions(name)
+        except BundleNotFound as exc:
+            raise BundleNotFoundProblem(str(exc)) from exc
+        except StoreUnavailable as exc:
+            raise StoreUnavailableProblem(str(exc)) from exc
+        return BundleSummary(name=name, versions=versions, aliases=aliases)
+
+    @app.get("/v1/bundles/{name}/versions/{version}", response_model=Bundle, tags=["bundles"],
+             responses={**_problem_responses(401, 403, 404, 503)})
+    def get_version(name: NameParam, version: VersionParam, registry: RegistryDep, _: ReadScope) -> Bundle:
+        """The whole verified bundle: groups, items, policy per item and group with evidence, anchors, quality."""
+        return resolve(registry, name, version).bundle
+
+    def publish_guard(fn: Callable[[], Any]) -> Any:
+        try:
+            return fn()
+        except VersionConflict as exc:
+            raise VersionConflictProblem(str(exc)) from exc
+        except StoreUnavailable as exc:
+            raise StoreUnavailableProblem(f"{exc}; publishing needs the shared store") from exc
+        except (BundleIntegrityError, InvalidReference) as exc:
+            raise InvalidBundle(str(exc)) from exc
+        except BundleNotFound as exc:
+            raise BundleNotFoundProblem(str(exc)) from exc
+
+    @app.put("/v1/bundles/{name}/versions/{version}", response_model=PublishResult, status_code=201,
+             tags=["bundles"], responses={200: {"model": PublishResult, "description": "identical content was "
+                                                "already published"}, **_problem_responses(401, 403, 409, 413,
+                                                                                            422, 503)})
+    def put_version(name: NameParam, version: VersionParam, bundle: Bundle, registry: RegistryDep,
+                    _: PublishScope) -> Any:
+        """Publish a bundle at this version; a published version never changes (other content: 409)."""
+        if bundle.name != name or bundle.version != version:
+            raise InvalidBundle(f"the document is {bundle.name}@{bundle.version} but the path names {name}@{version}",
+                                field="body.version" if bundle.name == name else "body.name")
+        stored, created = publish_guard(lambda: registry.put_version(bundle))
+        result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
+        return result if created else JSONResponse(result.model_dump(), status_code=200)
+
+    @app.post("/v1/bundles/{name}/versions", response_model=PublishResult, status_code=201, tags=["bundles"],
+              responses={**_problem_responses(401, 403, 413, 422, 503)})
+    def publish_next(name: NameParam, bundle: Bundle, registry: RegistryDep, _: PublishScope) -> PublishResult:
+        """Publish a bundle as the next version of ``name`` (the version in the document is ignored)."""
+        if bundle.name != name:
+            raise InvalidBundle(f"the document is named {bundle.name!r} but the path names {name!r}", field="body.name")
+        stored = publish_guard(lambda: registry.publish(bundle))
+        return PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=True)
+
+    @app.put("/v1/bundles/{name}/aliases/{alias}", response_model=AliasResult, tags=["bundles"],
+             responses={200: _ok_example("alias_response"), **_problem_responses(401, 403, 404, 422, 503)})
+    def move_alias(name: NameParam, alias: AliasParam, body: AliasRequest, registry: RegistryDep,
+                   _: PublishScope) -> AliasResult:
+        """Point an alias (e.g. ``production``) at a published version; move it back the same way."""
+        version = publish_guard(lambda: registry.set_alias(name, alias, body.version))
+        return AliasResult(name=name, alias=alias, version=version)
+
+    return app
+
+
+def app_from_env() -> FastAPI:
+    """Factory for ``uvicorn --factory``: settings from EQUITHETA_* variables."""
+    return create_app(Settings())
+
+
+def serve(argv: list[str] | None = None) -> int:
+    """``python -m service.main --store ... [--redis-url ...] [--host --port --workers]``."""
+    import argparse
+    import os
+
+    import uvicorn
+    from pydantic import ValidationError
+
+    parser = argparse.ArgumentParser(prog="equitheta serve")
+    parser.add_argument("--store", required=True, help="bundle directory (or a redis:// URL)")
+    parser.add_argument("--redis-url", help="shared Redis store; overrides --store for bundles")
+    parser.add_argument("--host", default="127.0.0.1")
+    parser.add_argument("--port", type=int, default=8000)
+    parser.add_argument("--workers", type=int, default=1)
+    args = parser.parse_args(argv)
+    os.environ["EQUITHETA_STORE"] = args.redis_url or args.store
+    os.environ["EQUITHETA_HOST"] = args.host
+    try:
+        settings = Settings(port=args.port, workers=args.workers)
+    except ValidationError as exc:
+        for error in exc.errors():
+            print(f"configuration error: {error['msg']}", file=sys.stderr)
+        return 2
+    if not settings.has_keys:
+        print(f"no API keys configured: open access, bound to loopback only ({settings.host})", file=sys.stderr)
+    uvicorn.run("service.main:app_from_env", factory=True, host=settings.host, port=settings.port,
+                workers=settings.workers, log_level=settings.log_level, access_log=False)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(serve())

@@ -1,0 +1,119 @@
+"""Request and response schemas of the scoring service (named by role, extra fields forbidden)."""
+
+from __future__ import annotations
+
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+CAUTION = (
+    "Every score has measurement error: report the SE with it. Scores from few answered items or with low "
+    "reliability must not drive individual high-stakes decisions on their own. Items left out for a group come "
+    "from a statistical DIF screen that content experts must review; follow the professional testing standards "
+    "and the local rules that govern the assessment."
+)
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class ScoreOptions(_Strict):
+    method: Literal["eap", "map", "ml"] | None = Field(None, description="default: the bundle's scoring method")
+    include_summed_score: bool = Field(
+        False, description="add the summed score and its EAP conversion when every item of the group was answered"
+    )
+
+
+class ResponseVector(_Strict):
+    id: str = Field(min_length=1, max_length=200, description="the respondent's id, echoed back")
+    group: str | None = Field(None, max_length=200, description="required when the bundle has several groups")
+    answers: dict[str, int] = Field(description="item id -> category code (0 .. K-1); omit items not administered")
+
+
+class ScoreRequest(_Strict):
+    responses: list[ResponseVector] = Field(min_length=1)
+    options: ScoreOptions = Field(default_factory=ScoreOptions)
+
+
+class ExcludedItemOut(_Strict):
+    item: str
+    reason: str
+
+
+class ScoreResult(_Strict):
+    id: str
+    group: str
+    theta: float | None
+    se: float | None
+    scale_score: float | None
+    scale_se: float | None
+    items_answered: int
+    excluded_items: list[ExcludedItemOut]
+    flags: list[str] = Field(description="no_answers, few_items, extreme_pattern, person_misfit")
+    person_fit_lz: float | None = Field(description="standardized log-likelihood l_z at the estimate")
+    summed_score: int | None = None
+    summed_score_theta: float | None = None
+    summed_score_se: float | None = None
+
+
+class BundleRef(_Strict):
+    name: str
+    version: int
+    hash: str
+
+
+class ScoreResponse(_Strict):
+    bundle: BundleRef
+    method: str
+    results: list[ScoreResult]
+    caution: str = CAUTION
+
+
+class BundleSummary(_Strict):
+    name: str
+    versions: list[int]
+    aliases: dict[str, int]
+
+
+class BundleList(_Strict):
+    bundles: list[BundleSummary]
+
+
+class PublishResult(_Strict):
+    name: str
+    version: int
+    hash: str
+    created: bool
+
+
+class AliasRequest(_Strict):
+    version: int = Field(ge=1)
+
+
+class AliasResult(_Strict):
+    name: str
+    alias: str
+    version: int
+
+
+class Health(_Strict):
+    status: Literal["ok"]
+
+
+class Readiness(_Strict):
+    status: Literal["ready", "degraded", "not_ready"]
+    store: str
+    bundles_loaded: int
+    detail: str | None = None
+
+
+class Problem(BaseModel):
+    """RFC 9457 problem document."""
+
+    model_config = ConfigDict(extra="allow")
+    type: str
+    title: str
+    status: int
+    detail: str
+    instance: str | None = None

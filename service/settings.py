@@ -1,0 +1,67 @@
+"""Service settings: one class, environment prefix ``EQUITHETA_``; bad values fail at start-up."""
+
+from __future__ import annotations
+
+import ipaddress
+from pathlib import Path
+
+from pydantic import Field, field_validator, model_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+class Settings(BaseSettings):
+    """Every setting can come from the environment, e.g. ``EQUITHETA_STORE=/srv/bundles``."""
+
+    model_config = SettingsConfigDict(env_prefix="EQUITHETA_", extra="forbid")
+
+    store: str = Field("bundles", description="bundle directory, or redis:// URL of the shared store")
+    redis_prefix: str = Field("equitheta", description="key prefix in Redis (one per deployment)")
+    host: str = "127.0.0.1"
+    port: int = Field(8000, ge=1, le=65535)
+    workers: int = Field(1, ge=1, le=64)
+    api_keys_file: Path | None = Field(None, description="file of API keys (name, scopes, SHA-256 of the key)")
+    api_keys: str = Field("", description="inline keys: 'name:scope+scope:sha256hex' separated by ';'")
+    max_body_bytes: int = Field(4 * 1024 * 1024, ge=1024)
+    max_vectors: int = Field(10_000, ge=1)
+    preload: bool = Field(True, description="load every bundle at start-up")
+    log_level: str = "info"
+
+    @field_validator("store")
+    @classmethod
+    def _store_given(cls, value: str) -> str:
+        if not value.strip():
+            raise ValueError("EQUITHETA_STORE is empty: give a bundle directory or a redis:// URL")
+        return value
+
+    @field_validator("api_keys_file")
+    @classmethod
+    def _file_exists(cls, value: Path | None) -> Path | None:
+        if value is not None and not value.is_file():
+            raise ValueError(f"EQUITHETA_API_KEYS_FILE: {value} is not a file")
+        return value
+
+    @model_validator(mode="after")
+    def _open_only_on_loopback(self) -> Settings:
+        if not self.has_keys and not is_loopback(self.host):
+            raise ValueError(
+                f"EQUITHETA_HOST={self.host} with no API keys configured: an open service only binds to loopback "
+                "(127.0.0.1 or ::1); set EQUITHETA_API_KEYS_FILE or EQUITHETA_API_KEYS"
+            )
+        return self
+
+    @property
+    def has_keys(self) -> bool:
+        return bool(self.api_keys.strip()) or self.api_keys_file is not None
+
+    @property
+    def is_redis(self) -> bool:
+        return self.store.startswith(("redis://", "rediss://", "unix://"))
+
+
+def is_loopback(host: str) -> bool:
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False

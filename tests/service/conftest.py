@@ -1,0 +1,127 @@
+"""Service fixtures: the example bundle, a live uvicorn, real Redis (shared and private)."""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import shutil
+import socket
+import subprocess
+import threading
+import time
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+import redis
+import uvicorn
+from fastapi import FastAPI
+
+from calibration.bundle import Bundle, DirectoryStore
+from service.main import create_app
+from service.security import key_digest
+from service.settings import Settings
+
+EXAMPLES = Path(__file__).parents[2] / "openapi_examples"
+CASES = json.loads((EXAMPLES / "cases.json").read_text())
+SHARED_REDIS = "redis://127.0.0.1:6379/0"
+
+
+def example_bundle() -> Bundle:
+    return Bundle.model_validate_json((EXAMPLES / "bundle.json").read_text())
+
+
+def example_keys() -> str:
+    return ";".join(f"{name}:{'+'.join(CASES['scopes'][name])}:{key_digest(key)}" for name, key in CASES["keys"].items())
+
+
+def auth(role: str) -> dict[str, str]:
+    return {"Authorization": f"Bearer {CASES['keys'][role]}"}
+
+
+@pytest.fixture
+def example_store(tmp_path: Path) -> Path:
+    store = tmp_path / "store"
+    DirectoryStore(store).put_version(example_bundle())
+    return store
+
+
+@pytest.fixture
+def keyed_settings(example_store: Path) -> Settings:
+    return Settings(store=str(example_store), api_keys=example_keys(), log_level="warning")
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+@contextlib.contextmanager
+def live_server(app: FastAPI) -> Iterator[str]:
+    """Serve ``app`` with uvicorn on a free loopback port in a thread; yields the base URL."""
+    port = free_port()
+    server = uvicorn.Server(uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning"))
+    thread = threading.Thread(target=server.run, daemon=True)
+    thread.start()
+    deadline = time.time() + 15
+    while not server.started:
+        if time.time() > deadline or not thread.is_alive():
+            raise RuntimeError("uvicorn did not start")
+        time.sleep(0.02)
+    try:
+        yield f"http://127.0.0.1:{port}"
+    finally:
+        server.should_exit = True
+        thread.join(10)
+
+
+def _redis_answers(url: str) -> bool:
+    try:
+        return bool(redis.Redis.from_url(url, socket_connect_timeout=1).ping())
+    except redis.RedisError:
+        return False
+
+
+@pytest.fixture
+def shared_redis() -> Iterator[tuple[str, str]]:
+    """The machine's Redis on 127.0.0.1:6379 with a key prefix of this test's own; cleaned afterwards."""
+    if not _redis_answers(SHARED_REDIS):
+        if os.environ.get("EQUITHETA_REQUIRE_REDIS") == "1":
+            pytest.fail("EQUITHETA_REQUIRE_REDIS=1 but no Redis answers on 127.0.0.1:6379")
+        pytest.skip("no Redis on 127.0.0.1:6379")
+    prefix = f"equitheta-test-{uuid.uuid4().hex[:12]}"
+    yield SHARED_REDIS, prefix
+    client = redis.Redis.from_url(SHARED_REDIS)
+    for key in client.scan_iter(f"{prefix}:*"):
+        client.delete(key)
+
+
+@pytest.fixture
+def private_redis(tmp_path: Path) -> Iterator[tuple[str, subprocess.Popen[bytes]]]:
+    """A redis-server of this test's own on a free port (tests that stop Redis use this one)."""
+    binary = shutil.which("redis-server")
+    if binary is None:
+        if os.environ.get("EQUITHETA_REQUIRE_REDIS") == "1":
+            pytest.fail("EQUITHETA_REQUIRE_REDIS=1 but redis-server is not installed")
+        pytest.skip("redis-server is not installed")
+    port = free_port()
+    process = subprocess.Popen([binary, "--port", str(port), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no",
+                                "--dir", str(tmp_path)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    url = f"redis://127.0.0.1:{port}/0"
+    deadline = time.time() + 10
+    while not _redis_answers(url):
+        if time.time() > deadline:
+            process.kill()
+            raise RuntimeError("private redis-server did not start")
+        time.sleep(0.05)
+    yield url, process
+    if process.poll() is None:
+        process.terminate()
+        process.wait(10)
+
+
+def make_app(settings: Settings) -> FastAPI:
+    return create_app(settings)
