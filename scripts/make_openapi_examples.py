@@ -42,8 +42,9 @@ def example_bundle():  # type: ignore[no-untyped-def]
         blocks.append((rng.random(p.shape) < p).astype(float))
         modes += [mode] * 900
     x = np.vstack(blocks)
-    data = ResponseData(ids=tuple(f"P{i:04d}" for i in range(x.shape[0])), item_ids=tuple(f"T{j + 1}" for j in range(6)),
-                        responses=x, n_categories=np.full(6, 2), models=("2pl",) * 6, groups=tuple(modes),
+    data = ResponseData(ids=tuple(f"P{i:04d}" for i in range(x.shape[0])),
+                        item_ids=tuple(f"T{j + 1}" for j in range(6)), responses=x,
+                        n_categories=np.full(6, 2), models=("2pl",) * 6, groups=tuple(modes),
                         source="pantry-checkout-invented.csv")
     bundle = calibrate_data(data, name="pantry-checkout", reference_group="paper").bundle
     return bundle.model_copy(update={"created_at": "2026-12-01T00:00:00Z"})
@@ -108,7 +109,8 @@ def main() -> int:
                 body = json.loads((OUT / f"{case['request']}.json").read_text()) if "request" in case else None
                 reply = client.request(case["method"], case["path"], json=body, headers=headers)
                 if reply.status_code != case["status"]:
-                    raise SystemExit(f"{case['name']}: expected {case['status']}, got {reply.status_code}: {reply.text}")
+                    raise SystemExit(f"{case['name']}: expected {case['status']}, got {reply.status_code}: "
+                                     f"{reply.text}")
                 response_name = case.get("response", case["name"])
                 (OUT / f"{response_name}.json").write_text(json.dumps(reply.json(), indent=1) + "\n")
                 manifest.append({**case, "response": response_name})

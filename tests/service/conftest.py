@@ -34,7 +34,8 @@ def example_bundle() -> Bundle:
 
 
 def example_keys() -> str:
-    return ";".join(f"{name}:{'+'.join(CASES['scopes'][name])}:{key_digest(key)}" for name, key in CASES["keys"].items())
+    entries = (f"{name}:{'+'.join(CASES['scopes'][name])}:{key_digest(key)}" for name, key in CASES["keys"].items())
+    return ";".join(entries)
 
 
 def auth(role: str) -> dict[str, str]:
