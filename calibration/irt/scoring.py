@@ -27,7 +27,6 @@ from calibration.irt.models import (
     IntArray,
     ItemParameters,
     category_probabilities,
-    log_category_probabilities,
     test_information,
 )
 
@@ -345,9 +344,9 @@ def person_fit_lz(params: ItemParameters, responses: FloatArray, theta: FloatArr
     out = np.full(x.shape[0], np.nan)
 
     def block(rows: slice) -> None:
-        log_p = np.moveaxis(log_category_probabilities(params, theta[rows]), 2, 0)  # (n, J, K)
-        prob = np.exp(log_p)
-        safe = np.where(np.isfinite(log_p), log_p, 0.0)
+        # Plain probabilities suffice here (l_z needs no far-tail precision); floor them before the log.
+        prob = np.moveaxis(category_probabilities(params, theta[rows]), 2, 0)  # (n, J, K)
+        safe = np.log(np.maximum(prob, 1e-300))
         observed = np.take_along_axis(safe, codes[rows][:, :, None], axis=2)[:, :, 0]
         mean_j = np.sum(prob * safe, axis=2)
         var_j = np.sum(prob * safe * safe, axis=2) - mean_j**2

@@ -14,6 +14,7 @@ from pydantic import ValidationError
 from calibration.bundle.scorer import BundleScorer
 from calibration.cli import main as cli_main
 from service.main import create_app
+from service.schemas import ScoreResponse
 from service.settings import Settings
 from tests.service.conftest import auth, example_bundle
 
@@ -34,6 +35,7 @@ def test_api_theta_and_se_equal_the_library_and_the_cli(keyed_settings: Settings
     with TestClient(create_app(keyed_settings)) as client:
         reply = client.post("/v1/bundles/pantry-checkout/scores", json=body, headers=auth("scorer"))
     assert reply.status_code == 200
+    ScoreResponse.model_validate(reply.json())  # the route sends plain data: it must still match its schema
     api = reply.json()["results"]
     library = BundleScorer(example_bundle()).score(answers, groups)
     np.testing.assert_allclose([r["theta"] for r in api], library.theta, rtol=0, atol=1e-12)
