@@ -9,6 +9,7 @@ one pass.
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import math
 import os
@@ -110,6 +111,12 @@ def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
             frame = frame.astype(object).where(frame.notna(), "")
             frame = frame.map(_cell_text)
             return frame, 0
+        with path.open(newline="", encoding="utf-8") as handle:
+            first = next(csv.reader(handle), [])
+        # pandas would rename a repeated header to "X.1" and read it as another column: refuse instead.
+        repeated = sorted({c.strip() for c in first if [h.strip() for h in first].count(c.strip()) > 1})
+        if repeated:
+            raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in repeated])
         frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[], skipinitialspace=False)
     except (pd.errors.ParserError, UnicodeDecodeError, OSError, ValueError) as exc:
         kind = "Parquet" if suffix in (".parquet", ".pq") else "CSV"
@@ -117,6 +124,26 @@ def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
     except pd.errors.EmptyDataError as exc:
         raise InputError(path.name, ["the file is empty (no header, no respondents)"]) from exc
     return frame, 1
+
+
+def _open_respondent_table(
+    path: Path, id_column: str, group_column: str | None
+) -> tuple[pd.DataFrame, int, list[str]]:
+    """Read a respondent table and check its header: unique columns, the id (and group) column, some rows."""
+    frame, header = _read_table(path)
+    frame.columns = [str(c).strip() for c in frame.columns]
+    columns = list(frame.columns)
+    duplicated = sorted({c for c in columns if columns.count(c) > 1})
+    if duplicated:
+        raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in duplicated])
+    if id_column not in columns:
+        raise InputError(path.name, [f"no id column {id_column!r}; the columns are: {', '.join(columns)} "
+                                     "(choose one with --id-column)"])
+    if group_column is not None and group_column not in columns:
+        raise InputError(path.name, [f"no group column {group_column!r}; the columns are: {', '.join(columns)}"])
+    if len(frame) == 0:
+        raise InputError(path.name, ["the file has a header but no respondents"])
+    return frame, header, columns
 
 
 def _cell_text(value: object) -> str:
@@ -217,21 +244,9 @@ def read_responses(
     ignored with a note.
     """
     path = Path(path)
-    frame, header = _read_table(path)
+    frame, header, columns = _open_respondent_table(path, id_column, group_column)
     source = path.name
-    frame.columns = [str(c).strip() for c in frame.columns]
     problems: list[str] = []
-    columns = list(frame.columns)
-    duplicated_columns = sorted({c for c in columns if columns.count(c) > 1})
-    if duplicated_columns:
-        raise InputError(source, [f"column {c!r} appears more than once in the header" for c in duplicated_columns])
-    if id_column not in columns:
-        raise InputError(source, [f"no id column {id_column!r}; the columns are: {', '.join(columns)} "
-                                  "(choose one with --id-column)"])
-    if group_column is not None and group_column not in columns:
-        raise InputError(source, [f"no group column {group_column!r}; the columns are: {', '.join(columns)}"])
-    if len(frame) == 0:
-        raise InputError(source, ["the file has a header but no respondents"])
 
     reserved = {id_column} | ({group_column} if group_column else set())
     notes: list[str] = []
@@ -329,17 +344,8 @@ def read_for_scoring(
     without a column count as not administered, with a note.
     """
     path = Path(path)
-    frame, header = _read_table(path)
+    frame, header, columns = _open_respondent_table(path, id_column, group_column)
     source = path.name
-    frame.columns = [str(c).strip() for c in frame.columns]
-    columns = list(frame.columns)
-    if id_column not in columns:
-        raise InputError(source, [f"no id column {id_column!r}; the columns are: {', '.join(columns)} "
-                                  "(choose one with --id-column)"])
-    if group_column is not None and group_column not in columns:
-        raise InputError(source, [f"no group column {group_column!r}; the columns are: {', '.join(columns)}"])
-    if len(frame) == 0:
-        raise InputError(source, ["the file has a header but no respondents"])
     reserved = {id_column, *ignore_columns} | ({group_column} if group_column else set())
     unknown = [c for c in columns if c not in reserved and c not in item_categories]
     problems = [

@@ -123,8 +123,8 @@ class BundleRegistry:
             self._mark(exc)
             raise
 
-    def default(self, name: str) -> LoadedBundle:
-        """The version the ``production`` alias points at, else the newest."""
+    def _refresh_or_remembered(self, name: str) -> None:
+        """Re-read a name's versions and aliases; when the store is down keep what was seen before."""
         try:
             self._refresh_view(name)
             self._mark(None)
@@ -132,6 +132,10 @@ class BundleRegistry:
             self._mark(exc)
             if name not in self._view.versions:
                 raise
+
+    def default(self, name: str) -> LoadedBundle:
+        """The version the ``production`` alias points at, else the newest."""
+        self._refresh_or_remembered(name)
         versions = self._view.versions.get(name, [])
         aliases = self._view.aliases.get(name, {})
         if DEFAULT_ALIAS in aliases:
@@ -152,13 +156,7 @@ class BundleRegistry:
         return {n: (self._view.versions.get(n, []), self._view.aliases.get(n, {})) for n in names}
 
     def versions(self, name: str) -> tuple[list[int], dict[str, int]]:
-        try:
-            self._refresh_view(name)
-            self._mark(None)
-        except StoreUnavailable as exc:
-            self._mark(exc)
-            if name not in self._view.versions:
-                raise
+        self._refresh_or_remembered(name)
         versions = self._view.versions.get(name, [])
         if not versions:
             raise BundleNotFound(f"no bundle named {name!r}")

@@ -105,3 +105,9 @@ def test_scoring_input_refuses_unknown_columns_and_out_of_range_codes(tmp_path: 
     assert data.item_ids == ("Q1", "Q2")
     assert np.isnan(data.responses[0, 0]) and data.responses[0, 1] == 2
     assert any("Q1" in n for n in data.notes)
+
+
+def test_repeated_header_is_refused(tmp_path: Path) -> None:
+    # pandas alone would rename the second Q1 to "Q1.1" and calibrate it as another item.
+    with pytest.raises(InputError, match="column 'Q1' appears more than once in the header"):
+        read_responses(write(tmp_path, "id,Q1,Q2,Q1\na,1,0,1\nb,0,1,1\n"))
