@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import threading
 import time
+from pathlib import Path
 
 import httpx
 import pytest
@@ -129,3 +130,33 @@ def test_redis_outage_keeps_scoring_and_flips_readiness(private_redis: tuple[str
         assert unknown.status_code == 503
     with pytest.raises(StoreUnavailable):
         RedisStore(url, prefix="outage", timeout=0.5).versions("pantry-checkout")
+
+
+def test_change_feed_warms_the_other_replica(shared_redis: tuple[str, str]) -> None:
+    url, prefix = shared_redis
+    document = json.loads(example_bundle().model_dump_json())
+    first_app, second_app = create_app(_settings(url, prefix)), create_app(_settings(url, prefix))
+    with live_server(first_app) as first, live_server(second_app) as second:
+        assert httpx.get(f"{second}/readyz").json()["bundles_loaded"] == 0
+        httpx.put(f"{first}/v1/bundles/pantry-checkout/versions/1", json=document, headers=auth("publisher"))
+        # No request reaches the second replica for that bundle: its listener loads it from the channel.
+        deadline = time.time() + 10
+        while second_app.state.registry.loaded_count == 0 and time.time() < deadline:
+            time.sleep(0.05)
+        assert second_app.state.registry.loaded_count == 1
+
+
+def test_cli_publishes_to_redis_and_the_service_scores_it(shared_redis: tuple[str, str], tmp_path: Path,
+                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    from calibration.cli import main as cli_main
+    from calibration.demo import make_demo_responses
+
+    url, prefix = shared_redis
+    monkeypatch.setenv("EQUITHETA_REDIS_PREFIX", prefix)
+    data = tmp_path / "skills.csv"
+    make_demo_responses(600, seed=2, with_sites=False).to_csv(data, index=False)
+    assert cli_main(["calibrate", str(data), "--name", "skills", "--store", url, "--alias", "production"]) == 0
+    with live_server(create_app(_settings(url, prefix))) as server:
+        reply = httpx.post(f"{server}/v1/bundles/skills/scores", headers=auth("scorer"),
+                           json={"responses": [{"id": "x", "answers": {"NUM01": 1, "DIG01": 2}}]})
+    assert reply.status_code == 200 and reply.json()["bundle"]["version"] == 1
