@@ -13,13 +13,15 @@ import sys
 import time
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
+from itertools import chain
 from pathlib import Path
 from typing import Annotated, Any
 
 import numpy as np
+import orjson
 from fastapi import Body, Depends, FastAPI, Header, Request
 from fastapi import Path as PathParam
-from fastapi.responses import JSONResponse, PlainTextResponse
+from fastapi.responses import JSONResponse, PlainTextResponse, Response
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from calibration import __version__
@@ -193,6 +195,14 @@ def _finite(value: float) -> float | None:
     return float(value) if math.isfinite(value) else None
 
 
+def _json_floats(array: np.ndarray) -> list[float | None]:
+    """Floats for JSON: NaN and infinities become null (a pass over the list only when there are any)."""
+    values = array.tolist()
+    if np.isfinite(array).all():
+        return values  # type: ignore[no-any-return]
+    return [v if math.isfinite(v) else None for v in values]
+
+
 def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]:
     """Validate the vectors against the bundle and score them in one vectorised call.
 
@@ -204,27 +214,38 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
     categories = [scorer.item_categories[item] for item in scorer.item_ids]
     n = len(request.responses)
     x = np.full((n, len(scorer.item_ids)), np.nan)
-    # Flatten every answer once (comprehensions, no per-answer branching), then check and place with numpy.
-    rows = np.fromiter((i for i, v in enumerate(request.responses) for _ in v.answers), dtype=np.int64)
-    cols = np.fromiter((index.get(item, -1) for v in request.responses for item in v.answers), dtype=np.int64)
-    values = np.fromiter((value for v in request.responses for value in v.answers.values()), dtype=np.int64)
-    if rows.size:
-        unknown = np.flatnonzero(cols < 0)
-        if unknown.size:
-            i = int(rows[unknown[0]])
-            vector = request.responses[i]
-            item = next(k for k in vector.answers if k not in index)
-            raise UnknownItem(f"responses[{i}] (id {vector.id!r}): item {item!r} is not in bundle {bundle.label}",
-                              field=f"responses.{i}.answers.{item}")
-        limits = np.asarray(categories, dtype=np.int64)[cols]
-        outside = np.flatnonzero((values < 0) | (values >= limits))
-        if outside.size:
-            i, j, value = int(rows[outside[0]]), int(cols[outside[0]]), int(values[outside[0]])
-            vector, item = request.responses[i], scorer.item_ids[j]
-            raise AnswerOutOfRange(
-                f"responses[{i}] (id {vector.id!r}), item {item!r}: answer {value} is outside the item's "
-                f"categories 0..{categories[j] - 1}", field=f"responses.{i}.answers.{item}")
-        x[rows, cols] = values
+    # Vectors usually share one key order: place each distinct layout of keys with one column lookup,
+    # reading the values at C speed. Errors name the earliest offending vector.
+    layouts: dict[tuple[str, ...], list[int]] = {}
+    for i, vector in enumerate(request.responses):
+        layouts.setdefault(tuple(vector.answers), []).append(i)
+    limits = np.asarray(categories, dtype=np.int64)
+    problems: list[tuple[int, ProblemError]] = []
+    for keys, members in layouts.items():
+        if not keys:
+            continue
+        cols = np.fromiter((index.get(k, -1) for k in keys), dtype=np.int64, count=len(keys))
+        rows = np.asarray(members, dtype=np.int64)
+        if (cols < 0).any():
+            i = members[0]
+            item = keys[int(np.flatnonzero(cols < 0)[0])]
+            problems.append((i, UnknownItem(
+                f"responses[{i}] (id {request.responses[i].id!r}): item {item!r} is not in bundle {bundle.label}",
+                field=f"responses.{i}.answers.{item}")))
+            continue
+        values = np.fromiter(chain.from_iterable(request.responses[i].answers.values() for i in members),
+                             dtype=np.int64, count=len(members) * len(keys)).reshape(len(members), len(keys))
+        outside = (values < 0) | (values >= limits[cols][None, :])
+        if outside.any():
+            r, c = (int(v[0]) for v in np.nonzero(outside))
+            i, item, value = members[r], keys[c], int(values[r, c])
+            problems.append((i, AnswerOutOfRange(
+                f"responses[{i}] (id {request.responses[i].id!r}), item {item!r}: answer {value} is outside the "
+                f"item's categories 0..{limits[cols[c]] - 1}", field=f"responses.{i}.answers.{item}")))
+            continue
+        x[np.ix_(rows, cols)] = values
+    if problems:
+        raise min(problems, key=lambda p: p[0])[1]
     try:
         groups = scorer.resolve_groups([v.group for v in request.responses], n)
     except UnknownGroup as exc:
@@ -241,24 +262,23 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
             tables[name] = {row.summed_score: (row.theta, row.se) for row in quality.summed_score_table}
     excluded = {g: [{"item": i, "reason": r} for i, r in scorer.excluded_for(g)] for g in scorer.plans}
     # Plain dicts (the ScoreResult shape) instead of one model per respondent: the batch hot path.
-    columns = [[_finite(v) for v in array.tolist()] for array in
+    columns = [_json_floats(array) for array in
                (result.theta, result.se, result.scale_score, result.scale_se, result.person_fit)]
     answered = result.n_answered.tolist()
     summed_scores = result.summed_score.tolist()
-    results = []
-    for i, vector in enumerate(request.responses):
-        g = groups[i]
-        entry: dict[str, Any] = {
-            "id": vector.id, "group": g, "theta": columns[0][i], "se": columns[1][i], "scale_score": columns[2][i],
-            "scale_se": columns[3][i], "items_answered": answered[i], "excluded_items": excluded[g],
-            "flags": list(result.flags[i]), "person_fit_lz": columns[4][i],
-            "summed_score": None, "summed_score_theta": None, "summed_score_se": None,
-        }
-        summed = summed_scores[i]
-        if request.options.include_summed_score and math.isfinite(summed):
-            theta_s, se_s = tables.get(g, {}).get(int(summed), (math.nan, math.nan))
-            entry.update(summed_score=int(summed), summed_score_theta=_finite(theta_s), summed_score_se=_finite(se_s))
-        results.append(entry)
+    results = [
+        {"id": vector.id, "group": g, "theta": theta, "se": se, "scale_score": scale, "scale_se": scale_se,
+         "items_answered": n_items, "excluded_items": excluded[g], "flags": list(flags), "person_fit_lz": lz,
+         "summed_score": None, "summed_score_theta": None, "summed_score_se": None}
+        for vector, g, theta, se, scale, scale_se, n_items, flags, lz in zip(
+            request.responses, groups, *columns[:4], answered, result.flags, columns[4], strict=True)
+    ]
+    if request.options.include_summed_score:
+        for entry, summed in zip(results, summed_scores, strict=True):
+            if math.isfinite(summed):
+                theta_s, se_s = tables.get(entry["group"], {}).get(int(summed), (math.nan, math.nan))
+                entry.update(summed_score=int(summed), summed_score_theta=_finite(theta_s),
+                             summed_score_se=_finite(se_s))
     return {"bundle": {"name": bundle.name, "version": bundle.version, "hash": bundle.hash},
             "method": result.method, "results": results, "caution": CAUTION}
 
@@ -350,7 +370,7 @@ def create_app(settings: Settings) -> FastAPI:
         document = score_vectors(loaded, body)
         metrics.count_vectors(loaded.bundle.label, len(body.responses))
         # Built in the ScoreResponse shape (tests check it against the schema); sent without re-validation.
-        return JSONResponse(document)
+        return Response(orjson.dumps(document), media_type="application/json")
 
     @app.get("/healthz", response_model=Health, tags=["operations"], responses={200: _ok_example("healthz")})
     def healthz() -> Health:

@@ -19,7 +19,7 @@ from calibration.bundle.canonical import BundleError
 from calibration.bundle.schema import Bundle
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
-from calibration.irt.scoring import METHODS, NormalPrior, ReportingScale, person_fit_lz, score
+from calibration.irt.scoring import METHODS, NormalPrior, ReportingScale, person_fit_lz, score, score_tables
 
 FLAG_NO_ANSWERS = "no_answers"
 FLAG_FEW_ITEMS = "few_items"
@@ -46,6 +46,7 @@ class GroupScoringPlan:
     columns: IntArray  # positions in the bundle's item list
     params: ItemParameters
     excluded: tuple[tuple[str, str], ...]  # (item id, reason)
+    tables: tuple[FloatArray, FloatArray]  # log-probability tables on the scoring grid, built once
 
 
 @dataclass(frozen=True)
@@ -113,7 +114,8 @@ class BundleScorer:
             columns = np.array(keep, dtype=np.int64)
             params = ItemParameters(slopes=slopes, intercepts=intercepts, n_categories=shared.n_categories,
                                     models=shared.models).subset(columns)
-            self.plans[group.name] = GroupScoringPlan(group.name, columns, params, tuple(excluded))
+            self.plans[group.name] = GroupScoringPlan(group.name, columns, params, tuple(excluded),
+                                                      score_tables(params, self.grid))
 
     @property
     def default_group(self) -> str | None:
@@ -127,17 +129,20 @@ class BundleScorer:
         """Check every respondent's group; raise :class:`UnknownGroup` naming the first bad one."""
         known = set(self.plans)
         reference = self.bundle.metric.reference_group
+        if groups is not None and known.issuperset(groups):
+            return tuple(groups)  # type: ignore[arg-type]
+        default = self.default_group
         if groups is None:
             groups = [None] * n_persons
         resolved: list[str] = []
         for i, g in enumerate(groups):
             if g is None or g == "":
-                if self.default_group is None:
+                if default is None:
                     raise UnknownGroup(
                         f"respondent {i + 1}: no group given and the bundle has several groups "
                         f"({', '.join(sorted(known))})", index=i, group=None,
                     )
-                resolved.append(self.default_group)
+                resolved.append(default)
             elif g in known:
                 resolved.append(g)
             elif unknown_to_reference:
@@ -182,7 +187,7 @@ class BundleScorer:
             if rows.size == 0:
                 continue
             result = score(plan.params, x[np.ix_(rows, plan.columns)], method=method, grid=self.grid,
-                           prior=self.prior, ml_bound=self.bundle.scoring.ml_bound)
+                           prior=self.prior, ml_bound=self.bundle.scoring.ml_bound, tables=plan.tables)
             theta[rows], se[rows] = result.theta, result.se
             n_answered[rows], extreme[rows] = result.n_answered, result.extreme
             sub = x[np.ix_(rows, plan.columns)]
@@ -192,18 +197,15 @@ class BundleScorer:
             summed[rows[complete]] = sub[complete].sum(axis=1)
         scale_score, scale_se = self.reporting_scale.transform(theta, se)
         minimum = self.bundle.scoring.min_items_answered
-        flags = []
-        for i in range(n):
-            f: list[str] = []
-            if n_answered[i] == 0:
-                f.append(FLAG_NO_ANSWERS)
-            elif n_answered[i] < minimum:
-                f.append(FLAG_FEW_ITEMS)
-            if extreme[i]:
-                f.append(FLAG_EXTREME)
-            if person_fit[i] < PERSON_FIT_CUTOFF:
-                f.append(FLAG_MISFIT)
-            flags.append(tuple(f))
+        marks = (
+            (n_answered == 0, FLAG_NO_ANSWERS),
+            ((n_answered > 0) & (n_answered < minimum), FLAG_FEW_ITEMS),
+            (extreme, FLAG_EXTREME),
+            (np.nan_to_num(person_fit, nan=0.0) < PERSON_FIT_CUTOFF, FLAG_MISFIT),
+        )
+        flags: list[tuple[str, ...]] = [()] * n
+        for i in np.flatnonzero(np.logical_or.reduce([mask for mask, _ in marks])):
+            flags[i] = tuple(name for mask, name in marks if mask[i])
         return ScoredBatch(
             theta=theta, se=se, scale_score=scale_score, scale_se=scale_se, n_answered=n_answered,
             groups=tuple(groups), flags=tuple(flags), method=method, person_fit=person_fit, summed_score=summed,

@@ -15,6 +15,7 @@ the first product is a constant row, so the work is one (N x J) by (J x Q) produ
 
 from __future__ import annotations
 
+import functools
 import os
 import threading
 from collections.abc import Callable
@@ -38,6 +39,7 @@ def chunks(n: int, size: int) -> list[slice]:
     return [slice(i, min(i + size, n)) for i in range(0, n, size)] or [slice(0, 0)]
 
 
+_DEFAULT_WORKERS = min(os.cpu_count() or 1, 4)
 _POOL: ThreadPoolExecutor | None = None
 _BLAS: ThreadpoolController | None = None
 _POOL_LOCK = threading.Lock()
@@ -48,7 +50,7 @@ def _pool_and_blas() -> tuple[ThreadPoolExecutor, ThreadpoolController]:
     global _POOL, _BLAS
     with _POOL_LOCK:
         if _POOL is None or _BLAS is None:
-            _POOL = ThreadPoolExecutor(max_workers=min(os.cpu_count() or 1, 4), thread_name_prefix="equitheta")
+            _POOL = ThreadPoolExecutor(max_workers=_DEFAULT_WORKERS, thread_name_prefix="equitheta")
             _BLAS = ThreadpoolController()
         return _POOL, _BLAS
 
@@ -61,7 +63,7 @@ def run_blocks(block: Callable[[slice], T], n_rows: int, chunk_size: int, *, wor
     Calls from inside a worker run serially (no nested pools).
     """
     slices = chunks(n_rows, chunk_size)
-    n_workers = min(workers or min(os.cpu_count() or 1, 4), len(slices))
+    n_workers = min(workers or _DEFAULT_WORKERS, len(slices))
     if n_workers <= 1 or threading.current_thread().name.startswith("equitheta"):
         return [block(rows) for rows in slices]
     pool, blas = _pool_and_blas()
@@ -144,6 +146,16 @@ class ResponseDesign:
         return self.administered
 
 
+@functools.lru_cache(maxsize=256)
+def design_columns(n_categories: tuple[int, ...]) -> tuple[IntArray, IntArray]:
+    """Item and category (>= 1) of every indicator column; cached per test layout (read-only arrays)."""
+    column_item = np.repeat(np.arange(len(n_categories)), np.asarray(n_categories) - 1)
+    column_category = np.concatenate([np.arange(1, k) for k in n_categories]).astype(np.int64)
+    column_item.flags.writeable = False
+    column_category.flags.writeable = False
+    return column_item, column_category
+
+
 def build_design(responses: FloatArray, n_categories: IntArray) -> ResponseDesign:
     """Indicator matrices for ``responses`` of shape (n_persons, n_items).
 
@@ -153,8 +165,7 @@ def build_design(responses: FloatArray, n_categories: IntArray) -> ResponseDesig
     n_categories = np.asarray(n_categories, dtype=np.int64)
     missing = np.isnan(responses)
     complete = not missing.any()
-    column_item = np.repeat(np.arange(responses.shape[1]), n_categories - 1)
-    column_category = np.concatenate([np.arange(1, k) for k in n_categories]).astype(np.int64)
+    column_item, column_category = design_columns(tuple(int(k) for k in n_categories))
     filled = responses if complete else np.where(missing, 0.0, responses)
     if np.all(n_categories == 2):
         # Dichotomous test: the indicator of category 1 is the (filled) response itself.

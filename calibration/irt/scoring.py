@@ -75,13 +75,15 @@ def eap_scores(
     prior: NormalPrior | None = None,
     chunk_size: int = DEFAULT_CHUNK,
     workers: int | None = None,
+    tables: tuple[FloatArray, FloatArray] | None = None,
 ) -> ThetaScores:
     """Expected a posteriori theta and posterior SD (Bock & Mislevy 1982).
 
     ``EAP = sum_q theta_q L(x|theta_q) w_q / sum_q L(x|theta_q) w_q`` on a rectangular
     grid with normal prior weights; ``PSD`` is the posterior standard deviation.
     A respondent with no answers gets the prior mean and SD. ``workers`` threads
-    (default: the number of CPUs, at most 4) share the row blocks.
+    (default: the number of CPUs, at most 4) share the row blocks. ``tables`` are the
+    log-probability tables of :func:`score_tables` for this grid, when the caller holds them.
     """
     grid = grid or QuadratureGrid()
     prior = prior or NormalPrior()
@@ -93,7 +95,8 @@ def eap_scores(
     moments = np.stack([np.ones_like(points), points, points * points], axis=1)
     n_answered = np.empty(x.shape[0], dtype=np.int64)
     extreme = np.empty(x.shape[0], dtype=bool)
-    tables = split_log_table(params, points, build_design(x[:1], params.n_categories))
+    if tables is None:
+        tables = score_tables(params, grid)
 
     def block(rows: slice) -> None:
         design = build_design(x[rows], params.n_categories)
@@ -109,6 +112,12 @@ def eap_scores(
 
     run_blocks(block, x.shape[0], chunk_size, workers=workers)
     return ThetaScores(theta=theta, se=psd, n_answered=n_answered, extreme=extreme, method=METHOD_EAP)
+
+
+def score_tables(params: ItemParameters, grid: QuadratureGrid) -> tuple[FloatArray, FloatArray]:
+    """Log-probability tables (baseline, contrasts) of a test on a grid: build once, score many times."""
+    probe = np.zeros((1, params.n_items))
+    return split_log_table(params, grid.points, build_design(probe, params.n_categories))
 
 
 def _extended_intercepts(params: ItemParameters) -> FloatArray:
@@ -259,10 +268,11 @@ def score(
     grid: QuadratureGrid | None = None,
     prior: NormalPrior | None = None,
     ml_bound: float = 4.0,
+    tables: tuple[FloatArray, FloatArray] | None = None,
 ) -> ThetaScores:
-    """Dispatch to :func:`eap_scores`, :func:`map_scores` or :func:`ml_scores`."""
+    """Dispatch to :func:`eap_scores`, :func:`map_scores` or :func:`ml_scores` (``tables``: EAP only)."""
     if method == METHOD_EAP:
-        return eap_scores(params, responses, grid=grid, prior=prior)
+        return eap_scores(params, responses, grid=grid, prior=prior, tables=tables)
     if method == METHOD_MAP:
         return map_scores(params, responses, grid=grid, prior=prior)
     if method == METHOD_ML:
