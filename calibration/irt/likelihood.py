@@ -132,18 +132,9 @@ class ResponseDesign:
     n_answered: IntArray
 
     @property
-    def complete(self) -> bool:
-        return self.administered is None
-
-    @property
     def n_persons(self) -> int:
         return int(self.indicators.shape[0])
 
-    def administered_matrix(self, n_items: int) -> FloatArray:
-        """The administered indicators, materialised (all ones for a complete table)."""
-        if self.administered is None:
-            return np.ones((self.n_persons, n_items))
-        return self.administered
 
 
 @functools.lru_cache(maxsize=256)
