@@ -51,7 +51,9 @@ class ScoreResult(_Strict):
     items_answered: int
     excluded_items: list[ExcludedItemOut]
     flags: list[str] = Field(description="no_answers, few_items, extreme_pattern, person_misfit")
-    person_fit_lz: float | None = Field(description="standardized log-likelihood l_z at the estimate")
+    person_fit_lz: float | None = Field(
+        description="person fit l_z* (Snijders' correction for the estimated theta); below -1.645 flags person_misfit"
+    )
     summed_score: int | None = None
     summed_score_theta: float | None = None
     summed_score_se: float | None = None

@@ -25,7 +25,7 @@ FLAG_NO_ANSWERS = "no_answers"
 FLAG_FEW_ITEMS = "few_items"
 FLAG_EXTREME = "extreme_pattern"
 FLAG_MISFIT = "person_misfit"
-# l_z below the one-sided 5% normal point flags a pattern as unlikely (common practice).
+# l_z* below the one-sided 5% normal point flags a pattern as unlikely (common practice).
 PERSON_FIT_CUTOFF = -1.645
 
 
@@ -61,7 +61,7 @@ class ScoredBatch:
     groups: tuple[str, ...]
     flags: tuple[tuple[str, ...], ...]
     method: str
-    person_fit: FloatArray  # l_z at the estimate (NaN without answers)
+    person_fit: FloatArray  # l_z* at the estimate (NaN without answers)
     summed_score: FloatArray  # summed score when every item of the group's plan was answered, else NaN
 
 
@@ -192,7 +192,9 @@ class BundleScorer:
             n_answered[rows], extreme[rows] = result.n_answered, result.extreme
             sub = x[np.ix_(rows, plan.columns)]
             finite = np.isfinite(theta[rows])
-            person_fit[rows[finite]] = person_fit_lz(plan.params, sub[finite], theta[rows][finite])
+            # l_z* with the estimating equation of the method: ML has no prior term, MAP and EAP the prior's.
+            person_fit[rows[finite]] = person_fit_lz(plan.params, sub[finite], theta[rows][finite], corrected=True,
+                                                     prior=None if method == "ml" else self.prior)
             complete = ~np.isnan(sub).any(axis=1)
             summed[rows[complete]] = sub[complete].sum(axis=1)
         scale_score, scale_se = self.reporting_scale.transform(theta, se)

@@ -217,3 +217,50 @@ def test_person_fit_lz_matches_the_formula_written_out(items: ItemParameters) ->
             mean += m
             var += sum(np.exp(log_p[j, k]) * log_p[j, k] ** 2 for k in cats) - m * m
         assert lz[i] == pytest.approx((l0 - mean) / np.sqrt(var), rel=1e-10)
+
+
+def test_corrected_person_fit_equals_snijders_binary_formula() -> None:
+    # Independent route: Snijders' (2001) formula for right/wrong items written out with the 2PL's
+    # r_j = a_j (formula recalled from memory); the category form must reduce to it exactly.
+    from calibration.irt.scoring import person_fit_lz
+
+    rng = np.random.default_rng(8)
+    a, b = rng.uniform(0.8, 2.0, 12), rng.normal(0, 1, 12)
+    params = ItemParameters.from_thresholds(a, b)
+    theta = rng.normal(size=200)
+    p = 1 / (1 + np.exp(-a * (theta[:, None] - b)))
+    x = (rng.random(p.shape) < p).astype(float)
+    x[rng.random(x.shape) < 0.1] = np.nan
+    prior = NormalPrior(0.0, 1.0)
+    got = person_fit_lz(params, x, theta, corrected=True, prior=prior)
+    ok = ~np.isnan(x)
+    w = np.log(p / (1 - p))
+    d = a * p * (1 - p)
+    c = np.where(ok, d * w, 0).sum(1) / np.where(ok, d * a, 0).sum(1)
+    w_tilde = w - c[:, None] * a
+    numerator = np.where(ok, (np.nan_to_num(x) - p) * w, 0).sum(1) + c * (-theta)
+    denominator = np.sqrt(np.where(ok, w_tilde**2 * p * (1 - p), 0).sum(1))
+    np.testing.assert_allclose(got, numerator / denominator, rtol=1e-9)
+
+
+@pytest.mark.parametrize("method", ["ml", "eap"])
+def test_corrected_person_fit_is_standard_normal_under_the_model(method: str) -> None:
+    # Simulation (seeded, invented parameters): under the model l_z* has mean near 0 and SD near 1
+    # at the estimated theta, while uncorrected l_z is too narrow (the reason for the correction).
+    from calibration.irt.scoring import person_fit_lz
+
+    rng = np.random.default_rng(13)
+    n_items = 30
+    a = rng.uniform(0.8, 2.0, n_items)
+    b = np.full((n_items, 3), np.nan)
+    b[:20, 0] = rng.normal(0, 1, 20)
+    b[20:] = rng.normal(0, 0.6, (10, 1)) + np.array([-1.0, 0.0, 1.0])
+    params = ItemParameters.from_thresholds(a, b)
+    x = simulate_responses(a, b, rng.normal(size=10_000), rng)
+    scores = ml_scores(params, x) if method == "ml" else eap_scores(params, x)
+    keep = ~scores.extreme
+    prior = None if method == "ml" else NormalPrior()
+    star = person_fit_lz(params, x[keep], scores.theta[keep], corrected=True, prior=prior)
+    plain = person_fit_lz(params, x[keep], scores.theta[keep])
+    assert abs(star.mean()) < 0.15 and 0.92 < star.std() < 1.08
+    assert plain.std() < star.std()
