@@ -18,7 +18,6 @@ column) it is:
 
 from __future__ import annotations
 
-import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
@@ -57,7 +56,6 @@ from calibration.dif.irt import DifOutcome, DifSettings, ItemGroupTest, run_irt_
 from calibration.dif.logistic import logistic_dif
 from calibration.dif.observed import ObservedScreening, matching_scores, screen_observed
 from calibration.estimation.em import (
-    ConvergenceWarning,
     EMSettings,
     LatentSpec,
     MultiGroupFit,
@@ -150,9 +148,7 @@ def _now() -> str:
 
 def _quiet_fit(*args, **kwargs) -> MultiGroupFit:  # type: ignore[no-untyped-def]
     """A fit whose non-convergence is reported in the bundle's warnings, not as a Python warning."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ConvergenceWarning)
-        return calibrate_groups(*args, **kwargs)
+    return calibrate_groups(*args, warn=False, **kwargs)
 
 
 def _group_setup(data: ResponseData, reference_group: str | None) -> tuple[list[str], np.ndarray]:

@@ -15,7 +15,7 @@ import threading
 import time
 from dataclasses import dataclass, field
 
-from calibration.bundle import Bundle, BundleNotFound, BundleStore, DirectoryStore, VersionConflict
+from calibration.bundle import Bundle, BundleNotFound, BundleStore, DirectoryStore
 from calibration.bundle.canonical import BundleError, BundleIntegrityError
 from calibration.bundle.scorer import BundleScorer
 from calibration.bundle.store import DEFAULT_ALIAS
@@ -164,20 +164,16 @@ class BundleRegistry:
 
     # -- writing ------------------------------------------------------------------------------------
     def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]:
-        """Publish at the bundle's version; returns (stored bundle, created?)."""
-        try:
-            existing = self.store.get(bundle.name, bundle.version)
-        except BundleNotFound:
-            existing = None
-        if existing is not None:
-            stored = self.store.put_version(bundle)  # same content: returns it; other content: VersionConflict
-            return stored, False
-        try:
-            stored = self.store.put_version(bundle)
-        except VersionConflict:
-            raise
-        self._refresh_view(bundle.name)
-        return stored, True
+        """Publish at the bundle's version; returns (stored bundle, created?).
+
+        The store decides: same content again returns the stored bundle, other content raises
+        VersionConflict. Whether the version existed before is read from the version list.
+        """
+        existed = bundle.version in self.store.versions(bundle.name)
+        stored = self.store.put_version(bundle)
+        if not existed:
+            self._refresh_view(bundle.name)
+        return stored, not existed
 
     def publish(self, bundle: Bundle) -> Bundle:
         stored = self.store.publish(bundle)

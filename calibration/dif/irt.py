@@ -32,15 +32,13 @@ threshold shift |b_g - b_R|. Levels (equitheta defaults, settings): negligible
 
 from __future__ import annotations
 
-import warnings
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import stats
 
 from calibration.estimation.em import (
-    ConvergenceWarning,
     EMSettings,
     GroupLayout,
     LatentSpec,
@@ -242,9 +240,7 @@ def _fit_single_item(
         return np.concatenate([layout.to_vector(tables), [mean[1], sd[1]]]), log_lik
 
     vec0 = np.concatenate([layout.to_vector(start), [latent.mean[1], latent.sd[1]]])
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ConvergenceWarning)
-        vec, _, _, _ = run_em(vec0, em_map, settings)
+    vec, _, _, _ = run_em(vec0, em_map, settings, warn=False)
     tables, mean, sd = unpack(vec)
     params = [params_from_table(tables[h], one) for h in range(2)]
     return _single_item_e_step(rows, params, mean, sd, points)[2], tables
@@ -358,8 +354,6 @@ def adjust(tests: dict[tuple[int, int], ItemGroupTest]) -> dict[tuple[int, int],
 
 
 def _with_adjusted(test: ItemGroupTest, p: float) -> ItemGroupTest:
-    from dataclasses import replace
-
     return replace(test, p_adjusted=p)
 
 
@@ -421,13 +415,11 @@ def run_irt_dif(
     group_free[1:, others, :] = True
     for j, g in skip or ():
         group_free[g, j, :] = False  # no data to free the cell with
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ConvergenceWarning)
-        anchor_fit = calibrate_groups(
-            responses, n_categories, group_index, n_groups, models=models,
-            settings=EMSettings(**{**em_settings.__dict__, "standard_errors": False}),
-            group_free=group_free, start=scalar_fit.tables,
-        )
+    anchor_fit = calibrate_groups(
+        responses, n_categories, group_index, n_groups, models=models,
+        settings=replace(em_settings, standard_errors=False), group_free=group_free, start=scalar_fit.tables,
+        warn=False,
+    )
     tests = test_items(anchor_fit, responses, group_index, others, tolerance=settings.sub_tolerance, skip=skip,
                        progress=report("test"))
     return DifOutcome(screening=adjust(screening) if screening else {}, anchors=anchors, anchor_method=method,

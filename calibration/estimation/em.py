@@ -541,11 +541,13 @@ def run_em(
     settings: EMSettings,
     *,
     progress: Callable[[int, float], None] | None = None,
+    warn: bool = True,
 ) -> tuple[FloatArray, bool, int, tuple[float, ...]]:
     """Iterate an EM map (SQUAREM-accelerated) to the convergence criterion.
 
     ``em_map(vec)`` returns the updated vector and the log-likelihood at ``vec``.
-    Warns with :class:`ConvergenceWarning` when ``max_iter`` is reached.
+    Warns with :class:`ConvergenceWarning` when ``max_iter`` is reached, unless ``warn`` is
+    False (callers that report non-convergence themselves, e.g. in a bundle's warnings).
     """
     history: list[float] = []
     converged = False
@@ -566,7 +568,7 @@ def run_em(
         if change < settings.tolerance:
             converged = True
             break
-    if not converged:
+    if not converged and warn:
         warnings.warn(
             f"EM did not converge in {settings.max_iter} iterations "
             f"(last largest parameter change above {settings.tolerance:g}); "
@@ -591,6 +593,7 @@ def calibrate_groups(
     latent: LatentSpec | None = None,
     offsets: list[FloatArray | None] | None = None,
     progress: Callable[[int, float], None] | None = None,
+    warn: bool = True,
 ) -> MultiGroupFit:
     """Multiple-group marginal ML (Bock & Zimowski 1997) by EM over a fixed quadrature grid.
 
@@ -604,6 +607,7 @@ def calibrate_groups(
     start : slot tables (n_groups, n_items, k_max); default from classical statistics
     latent : latent means/SDs and which are estimated (default: reference N(0,1), others free)
     offsets : per group, an (n_rows_g, n_points) log-likelihood of items outside this fit
+    warn : False leaves non-convergence to the caller (``converged`` in the result) instead of warning
     """
     settings = settings or EMSettings()
     x = np.asarray(responses, dtype=np.float64)
@@ -654,7 +658,7 @@ def calibrate_groups(
         return pack(tabs, mean, sd), float(sum(r.log_likelihood for r in results))
 
     vec, converged, n_iter, history = run_em(pack(tables, latent.mean, latent.sd), em_map, settings,
-                                             progress=progress)
+                                             progress=progress, warn=warn)
     tabs, mean, sd, _, results = e_step(vec)
     group_ll = np.array([r.log_likelihood for r in results])
 
