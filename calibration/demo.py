@@ -37,15 +37,20 @@ SITE_MEANS = (0.0, -0.25, 0.2)
 SITE_SDS = (1.0, 1.1, 0.9)
 
 
-def make_demo_responses(n_respondents: int = 3000, *, seed: int = 20261201, with_sites: bool = True) -> pd.DataFrame:
-    """Simulated responses with ids ``TW-000001`` ... and a ``site`` column; empty cells mark omissions."""
+def make_demo_responses(
+    n_respondents: int = 3000, *, seed: int = 20261201, with_sites: bool = True, with_dif: bool = True
+) -> pd.DataFrame:
+    """Simulated responses with ids ``TW-000001`` ... and a ``site`` column; empty cells mark omissions.
+
+    ``with_dif=False`` leaves out the two DIF items' site effects (every item invariant).
+    """
     rng = np.random.default_rng(seed)
     ids, slopes, b = demo_item_parameters()
     site = rng.integers(0, len(SITES), n_respondents) if with_sites else np.zeros(n_respondents, dtype=int)
     theta = rng.normal(np.take(SITE_MEANS, site), np.take(SITE_SDS, site))
     slope = np.broadcast_to(slopes, (n_respondents, len(ids))).copy()
     location = np.broadcast_to(b, (n_respondents,) + b.shape).copy()
-    if with_sites:
+    if with_sites and with_dif:
         location[site == 1, ids.index("NUM06"), 0] += 0.8  # harder at marsh-creek
         slope[site == 2, ids.index("DIG07")] *= 0.45  # weaker at ridgeview
     z = slope[:, :, None] * (theta[:, None, None] - location)

@@ -17,25 +17,20 @@ import tempfile
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
 
+from calibration.errors import InputError
+
+if TYPE_CHECKING:
+    import pandas as pd
 from calibration.irt.models import MODEL_1PL, MODEL_2PL, MODEL_GRM, MODELS, FloatArray, IntArray
 
 MAX_PROBLEMS = 12
-
-
-class InputError(ValueError):
-    """A data or spec file cannot be used; ``problems`` lists each finding."""
-
-    def __init__(self, source: str, problems: Sequence[str], *, total: int | None = None) -> None:
-        self.source = source
-        self.problems = list(problems)
-        self.total = total if total is not None else len(self.problems)
-        more = f"\n  ... and {self.total - len(self.problems)} more" if self.total > len(self.problems) else ""
-        listing = "\n".join(f"  - {p}" for p in self.problems)
-        super().__init__(f"{source}: {self.total} problem(s)\n{listing}{more}")
+# This many unused categories between the used low codes and a higher code mark that code as a
+# likely missing-data code (9 on a 0..3 item leaves 5 unused, 99 leaves 95).
+MISSING_CODE_GAP = 4
 
 
 @dataclass(frozen=True)
@@ -69,6 +64,8 @@ class ResponseData:
         SHA-256 of the file's bytes.
     notes : tuple of str
         Handling decisions a user should see (ignored columns and the like).
+    header_lines : int
+        Lines before the first respondent in the file (1 for CSV, 0 for Parquet), for messages.
     """
 
     ids: tuple[str, ...]
@@ -80,6 +77,7 @@ class ResponseData:
     source: str = ""
     source_sha256: str = ""
     notes: tuple[str, ...] = field(default=())
+    header_lines: int = 0
 
     @property
     def n_persons(self) -> int:
@@ -98,26 +96,68 @@ def file_sha256(path: Path) -> str:
     return digest.hexdigest()
 
 
-def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
-    """Read a CSV or Parquet file with every cell as text; returns the table and the header offset."""
+# Delimiters a CSV header is checked for, in order of preference when counts tie.
+DELIMITERS = (",", ";", "\t", "|")
+
+
+def _is_parquet(path: Path) -> bool:
+    return path.suffix.lower() in (".parquet", ".pq")
+
+
+def _header_fields(path: Path) -> tuple[list[str], str]:
+    """The header line's fields and the delimiter they were split on (the most frequent of DELIMITERS)."""
+    with path.open(newline="", encoding="utf-8") as handle:
+        line = handle.readline()
+    delimiter = max(DELIMITERS, key=lambda d: (line.count(d), -DELIMITERS.index(d)))
+    if line.count(delimiter) == 0:
+        delimiter = ","
+    return next(csv.reader([line], delimiter=delimiter), []), delimiter
+
+
+def read_header(path: Path | str) -> list[str]:
+    """The column names of a CSV or Parquet file, without reading its rows."""
+    path = Path(path)
+    _check_file(path)
+    if _is_parquet(path):
+        import pyarrow.parquet as pq
+
+        return [str(c).strip() for c in pq.read_schema(path).names]
+    try:
+        return [c.strip() for c in _header_fields(path)[0]]
+    except (UnicodeDecodeError, OSError) as exc:
+        raise InputError(path.name, [f"cannot be read as CSV: {exc}"]) from exc
+
+
+def _check_file(path: Path) -> None:
     if not path.exists():
         raise InputError(str(path), ["file not found"])
     if path.stat().st_size == 0:
         raise InputError(path.name, ["the file is empty (no header, no respondents)"])
+
+
+def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
+    """Read a CSV or Parquet file with every cell as text; returns the table and the header offset.
+
+    The CSV delimiter is taken from the header line (comma, semicolon, tab or bar,
+    whichever occurs most), so a semicolon-delimited export reads as it is.
+    """
+    _check_file(path)
+    import pandas as pd  # here, not at import: a missing file or a bad header answers without it
+
     suffix = path.suffix.lower()
     try:
-        if suffix in (".parquet", ".pq"):
+        if _is_parquet(path):
             frame = pd.read_parquet(path)
             frame = frame.astype(object).where(frame.notna(), "")
             frame = frame.map(_cell_text)
             return frame, 0
-        with path.open(newline="", encoding="utf-8") as handle:
-            first = next(csv.reader(handle), [])
+        first, delimiter = _header_fields(path)
         # pandas would rename a repeated header to "X.1" and read it as another column: refuse instead.
         repeated = sorted({c.strip() for c in first if [h.strip() for h in first].count(c.strip()) > 1})
         if repeated:
             raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in repeated])
-        frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[], skipinitialspace=False)
+        frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[], skipinitialspace=False,
+                            sep=delimiter)
     except (pd.errors.ParserError, UnicodeDecodeError, OSError, ValueError) as exc:
         kind = "Parquet" if suffix in (".parquet", ".pq") else "CSV"
         raise InputError(path.name, [f"cannot be read as {kind}: {exc}"]) from exc
@@ -129,21 +169,31 @@ def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
 def _open_respondent_table(
     path: Path, id_column: str, group_column: str | None
 ) -> tuple[pd.DataFrame, int, list[str]]:
-    """Read a respondent table and check its header: unique columns, the id (and group) column, some rows."""
-    frame, header = _read_table(path)
-    frame.columns = [str(c).strip() for c in frame.columns]
-    columns = list(frame.columns)
+    """Read a respondent table and check its header: unique columns, the id (and group) column, some rows.
+
+    The header is checked before the rows are parsed, so a header problem answers at once.
+    """
+    columns = read_header(path)
     duplicated = sorted({c for c in columns if columns.count(c) > 1})
     if duplicated:
         raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in duplicated])
+    _check_required_columns(path, columns, id_column, group_column)
+    frame, header = _read_table(path)
+    frame.columns = [str(c).strip() for c in frame.columns]
+    if len(frame) == 0:
+        raise InputError(path.name, ["the file has a header but no respondents"])
+    return frame, header, list(frame.columns)
+
+
+def _check_required_columns(path: Path, columns: list[str], id_column: str, group_column: str | None) -> None:
     if id_column not in columns:
+        if len(columns) == 1:
+            raise InputError(path.name, [f"the header has a single column {columns[0]!r}: the file is not "
+                                         "delimited by a comma, semicolon, tab or bar; save it as CSV"])
         raise InputError(path.name, [f"no id column {id_column!r}; the columns are: {', '.join(columns)} "
                                      "(choose one with --id-column)"])
     if group_column is not None and group_column not in columns:
         raise InputError(path.name, [f"no group column {group_column!r}; the columns are: {', '.join(columns)}"])
-    if len(frame) == 0:
-        raise InputError(path.name, ["the file has a header but no respondents"])
-    return frame, header, columns
 
 
 def _cell_text(value: object) -> str:
@@ -152,7 +202,7 @@ def _cell_text(value: object) -> str:
     return str(value)
 
 
-def _row_label(index: int, header_lines: int) -> str:
+def row_label(index: int, header_lines: int) -> str:
     """1-based data row, and the file line for text files."""
     if header_lines:
         return f"row {index + 1} (line {index + 1 + header_lines})"
@@ -171,7 +221,7 @@ def read_item_spec(path: Path) -> list[ItemSpec]:
     specs: list[ItemSpec] = []
     seen: set[str] = set()
     for i, row in frame.iterrows():
-        where = _row_label(int(i), header)  # type: ignore[arg-type]
+        where = row_label(int(i), header)  # type: ignore[arg-type]
         item = str(row["item"]).strip()
         if not item:
             problems.append(f"{where}: empty item id")
@@ -219,7 +269,7 @@ def read_policy_overrides(path: Path) -> list[tuple[str, str, str, str]]:
         values = [str(row[c]).strip() for c in needed]
         empty = [c for c, v in zip(needed, values, strict=True) if not v]
         if empty:
-            problems.append(f"{_row_label(int(i), header)}: empty {', '.join(empty)}")  # type: ignore[arg-type]
+            problems.append(f"{row_label(int(i), header)}: empty {', '.join(empty)}")  # type: ignore[arg-type]
             continue
         out.append((values[0], values[1], values[2].lower(), values[3]))
     if problems:
@@ -293,6 +343,7 @@ def read_responses(
         source=source,
         source_sha256=file_sha256(path),
         notes=tuple(notes),
+        header_lines=header,
     )
 
 
@@ -303,11 +354,11 @@ def _respondent_ids(frame: pd.DataFrame, id_column: str, header: int) -> tuple[l
     first_row: dict[str, int] = {}
     for i, value in enumerate(ids):
         if not value:
-            problems.append(f"{_row_label(i, header)}, column {id_column!r}: empty respondent id")
+            problems.append(f"{row_label(i, header)}, column {id_column!r}: empty respondent id")
         elif value in first_row:
             problems.append(
-                f"{_row_label(i, header)}, column {id_column!r}: duplicate id {value!r} "
-                f"(first seen at {_row_label(first_row[value], header)})"
+                f"{row_label(i, header)}, column {id_column!r}: duplicate id {value!r} "
+                f"(first seen at {row_label(first_row[value], header)})"
             )
         first_row.setdefault(value, i)
     return ids, problems
@@ -321,7 +372,7 @@ def _group_labels(frame: pd.DataFrame, group_column: str | None, header: int, so
     if empty:
         raise InputError(
             source,
-            [f"{_row_label(i, header)}, column {group_column!r}: empty group" for i in empty[:MAX_PROBLEMS]],
+            [f"{row_label(i, header)}, column {group_column!r}: empty group" for i in empty[:MAX_PROBLEMS]],
             total=len(empty),
         )
     return groups
@@ -366,7 +417,7 @@ def read_for_scoring(
         over = np.flatnonzero(parsed[:, j] >= k)
         for row in over[: max(0, MAX_PROBLEMS - len(problems))]:
             problems.append(
-                f"{_row_label(int(row), header)}, column {item!r}: category code {int(parsed[row, j])} is outside "
+                f"{row_label(int(row), header)}, column {item!r}: category code {int(parsed[row, j])} is outside "
                 f"the item's categories 0..{k - 1}"
             )
     if problems:
@@ -387,6 +438,7 @@ def read_for_scoring(
         source=source,
         source_sha256=file_sha256(path),
         notes=tuple(notes),
+        header_lines=header,
     )
 
 
@@ -397,13 +449,15 @@ def parse_codes(frame: pd.DataFrame, header_lines: int) -> tuple[FloatArray, lis
     empty = stripped == ""
     out = np.full(stripped.shape, np.nan)
     problems: list[str] = []
+    import pandas as pd
+
     numeric = pd.to_numeric(pd.Series(stripped[~empty]), errors="coerce").to_numpy(dtype=np.float64)
     out[~empty] = numeric
     bad = ~empty & ~(np.isfinite(out) & (out >= 0) & (np.floor(out) == out))
     columns = list(frame.columns)
     for i, j in zip(*np.nonzero(bad), strict=True):
         problems.append(
-            f"{_row_label(int(i), header_lines)}, column {columns[j]!r}: value {values[i, j]!r} is not a "
+            f"{row_label(int(i), header_lines)}, column {columns[j]!r}: value {values[i, j]!r} is not a "
             "category code (a whole number >= 0, or empty for not administered)"
         )
         if len(problems) >= MAX_PROBLEMS:
@@ -438,7 +492,7 @@ def _categories_and_models(
         if spec.n_categories is not None and top >= spec.n_categories:
             row = int(np.flatnonzero(column >= spec.n_categories)[0])
             problems.append(
-                f"{_row_label(row, header_lines)}, column {item!r}: category code {int(column[row])} is outside "
+                f"{row_label(row, header_lines)}, column {item!r}: category code {int(column[row])} is outside "
                 f"the item's categories 0..{spec.n_categories - 1} (item spec)"
             )
         else:
@@ -447,17 +501,53 @@ def _categories_and_models(
             # An item with a single observed category has no variance: the pipeline reports and
             # leaves it out. An unobserved category inside the range cannot be estimated.
             if unseen and np.count_nonzero(counts) > 1:
-                seen = ", ".join(str(c) for c in range(k) if counts[c] > 0)
-                problems.append(
-                    f"item {item!r}: category {', '.join(map(str, unseen))} has no responses (codes seen: {seen}); "
-                    "recode the item so its categories are 0..K-1 with every category used"
-                )
+                problems.append(_unused_categories_problem(item, column, counts, header_lines))
         n_categories[j] = k
         model = spec.model or (dichotomous_model if k == 2 else MODEL_GRM)
         if model in (MODEL_2PL, MODEL_1PL) and k != 2:
             problems.append(f"item {item!r}: model {model} needs 2 categories, the data have {k}")
         models.append(model)
     return n_categories, tuple(models), problems
+
+
+def _code_ranges(codes: list[int]) -> str:
+    """``[0, 1, 2, 5, 7, 8]`` -> ``"0-2, 5, 7, 8"`` (runs of three or more as a range)."""
+    parts: list[str] = []
+    start = prev = None
+    for c in codes + [None]:  # type: ignore[list-item]
+        if start is not None and (c is None or c != prev + 1):  # type: ignore[operator]
+            run = list(range(start, prev + 1))  # type: ignore[operator]
+            parts.extend(map(str, run)) if len(run) < 3 else parts.append(f"{start}-{prev}")
+            start = None
+        if c is not None and start is None:
+            start = c
+        prev = c
+    return ", ".join(parts)
+
+
+def _unused_categories_problem(item: str, column: FloatArray, counts: IntArray, header_lines: int) -> str:
+    """Unused categories, or a code far above the rest that looks like a missing-data code (9, 99, ...)."""
+    seen = [int(c) for c in np.flatnonzero(counts)]
+    unseen = [c for c in range(counts.size) if counts[c] == 0]
+    low_run = 0
+    while low_run < counts.size and counts[low_run] > 0:
+        low_run += 1
+    outliers = [c for c in seen if c >= low_run]
+    if low_run >= 2 and len(unseen) >= MISSING_CODE_GAP:
+        rows = np.flatnonzero(np.isin(column, outliers))
+        listed = ", ".join(row_label(int(r), header_lines) for r in rows[:3])
+        more = f" and {rows.size - 3} more" if rows.size > 3 else ""
+        return (f"item {item!r}: code {', '.join(map(str, outliers))} ({listed}{more}) lies far above the item's "
+                f"other codes 0..{low_run - 1}: it looks like a missing-data code; leave such cells empty "
+                "(empty = not administered) or recode them")
+    return (f"item {item!r}: category {_code_ranges(unseen)} has no responses (codes seen: {_code_ranges(seen)}); "
+            "recode the item so its categories are 0..K-1 with every category used")
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def write_csv_atomic(frame: pd.DataFrame, path: Path) -> None:
@@ -468,6 +558,7 @@ def write_csv_atomic(frame: pd.DataFrame, path: Path) -> None:
     try:
         with os.fdopen(fd, "w", newline="", encoding="utf-8") as handle:
             frame.to_csv(handle, index=False, float_format="%.6f")
+        os.chmod(tmp, 0o666 & ~_umask())  # the temporary file is 0600; the output follows the umask
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):

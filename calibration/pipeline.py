@@ -27,6 +27,7 @@ from scipy import stats
 
 from calibration import __version__
 from calibration.bundle.schema import (
+    AnchorCandidate,
     Anchors,
     Bundle,
     DifReport,
@@ -55,6 +56,7 @@ from calibration.bundle.schema import (
 from calibration.dif.irt import DifOutcome, DifSettings, ItemGroupTest, run_irt_dif
 from calibration.dif.logistic import logistic_dif
 from calibration.dif.observed import ObservedScreening, matching_scores, screen_observed
+from calibration.errors import CalibrationInputError
 from calibration.estimation.em import (
     EMSettings,
     LatentSpec,
@@ -82,20 +84,22 @@ from calibration.quality.model_fit import dimensionality, item_fit
 
 SINGLE_GROUP = "all"
 # About 500 respondents per group is a common floor for 2PL/GRM calibration
-# (Jiang, Wang & Weiss 2016, published for the GRM); below 50 (one group) or 100
-# (per group in a multiple-group calibration) equitheta refuses to calibrate.
+# (Jiang, Wang & Weiss 2016, published for the GRM). Below it equitheta warns and says
+# what suffers. It refuses only below a hard floor: 50 respondents in a single-group
+# calibration, 30 per group in a multiple-group one. With fewer than 30 a group's latent
+# mean has an SE of at least 1/sqrt(30) = 0.18 even for a perfectly reliable test, a
+# right/wrong item answered by so few has slope and intercept SEs of the order of 0.5,
+# and the chi-square references of the MH and LR tests need expected cell counts that
+# such a group cannot fill; no statement about that group's items would be worth
+# publishing. A programme's own rule can raise the floor (``min_group_size``).
 RECOMMENDED_MIN_RESPONDENTS = 500
 HARD_MIN_RESPONDENTS = 50
-HARD_MIN_PER_GROUP = 100
+HARD_MIN_PER_GROUP = 30
 # A graded category with fewer answers than this in any group is merged with a neighbour (common practice).
 MIN_CATEGORY_COUNT = 5
 
 DIF_ACTIONS = ("exclude", "free")
 POLICY_STATUSES = ("invariant", "group_specific", "excluded")
-
-
-class CalibrationInputError(ValueError):
-    """The data cannot support a calibration (too few respondents or items, unknown group)."""
 
 
 @dataclass(frozen=True)
@@ -118,6 +122,7 @@ class PipelineSettings:
     dif: DifSettings = field(default_factory=DifSettings)
     dif_action: str = "exclude"
     mh_greater_than_one_z: float = 1.645
+    min_group_size: int = HARD_MIN_PER_GROUP  # refuse a multiple-group calibration with a smaller group
 
     def describe(self) -> dict[str, str | int | float | bool | None]:
         prior = self.em.slope_prior
@@ -131,6 +136,7 @@ class PipelineSettings:
             "dif_action": self.dif_action,
             "dif_fdr_alpha": self.dif.alpha,
             "dif_anchors": ",".join(self.dif.anchors) or "automatic",
+            "min_group_size": self.min_group_size,
         }
 
 
@@ -192,20 +198,19 @@ def calibrate_data(
             f"(about {RECOMMENDED_MIN_RESPONDENTS} per group is a common floor for 2PL and graded items)"
         )
     sizes = np.bincount(group_index, minlength=n_groups)
+    if settings.min_group_size < HARD_MIN_PER_GROUP:
+        raise CalibrationInputError(
+            f"the minimum group size cannot be set below {HARD_MIN_PER_GROUP} (the hard floor; see the "
+            f"documentation of HARD_MIN_PER_GROUP), got {settings.min_group_size}"
+        )
     if n_groups > 1:
-        small = [f"{group_names[g]} ({sizes[g]})" for g in range(n_groups) if sizes[g] < HARD_MIN_PER_GROUP]
+        small = [f"{group_names[g]} ({sizes[g]})" for g in range(n_groups) if sizes[g] < settings.min_group_size]
         if small:
             raise CalibrationInputError(
-                f"{data.source}: groups with fewer than {HARD_MIN_PER_GROUP} respondents cannot be calibrated "
+                f"{data.source}: groups with fewer than {settings.min_group_size} respondents cannot be calibrated "
                 f"or screened for DIF: {', '.join(small)}; merge or drop them"
             )
-    for g in range(n_groups):
-        if sizes[g] < RECOMMENDED_MIN_RESPONDENTS:
-            notes.append(
-                f"group {group_names[g]!r}: {sizes[g]} respondents is below the common floor of about "
-                f"{RECOMMENDED_MIN_RESPONDENTS} for 2PL/graded calibration (Jiang, Wang & Weiss 2016); "
-                "SEs will be large and DIF power low"
-            )
+    notes.extend(small_group_notes(group_names, sizes, multiple=n_groups > 1))
 
     # Items without variance: out of the calibration if so in the reference group, else out for that group.
     x_all = data.responses
@@ -246,8 +251,9 @@ def calibrate_data(
             category_maps[j] = mapping
             k[j] = max(mapping) + 1
             notes.append(f"item {item_ids[j]!r}: {note}; scoring applies the same recoding")
-    # Reviewer overrides are checked now, before the long steps, and applied after the DIF stage.
+    # Reviewer overrides and named anchors are checked now, before the long steps.
     _apply_overrides(overrides, {}, {}, item_ids, group_names, check_only=True)
+    _check_anchors(settings.dif.anchors, item_ids, data.item_ids, excluded_items, n_groups)
     # An item merged down to two categories becomes a 2PL item.
     models = tuple("2pl" if k[pos] == 2 and data.models[j] == "grm" else data.models[j] for pos, j in enumerate(keep))
     n_items = len(item_ids)
@@ -284,7 +290,18 @@ def calibrate_data(
             em_settings=settings.em, skip=set(no_variance_cells),
             progress=(lambda stage, done, total: progress(stage, done, float(total))) if progress else None,
         )
-        anchors_record = Anchors(items=[item_ids[j] for j in dif_outcome.anchors], method=dif_outcome.anchor_method)
+        anchors_record = Anchors(
+            items=[item_ids[j] for j in dif_outcome.anchors], method=dif_outcome.anchor_method,
+            ranking=[
+                AnchorCandidate(
+                    item=item_ids[c.item], rank=r + 1, statistic=finite_or_none(c.statistic),
+                    worst_group=group_names[c.worst_group] if c.worst_group >= 0 else "none",
+                    p_adjusted=finite_or_none(c.p_adjusted), selected=c.item in dif_outcome.anchors,
+                )
+                for r, c in enumerate(dif_outcome.ranking)
+            ],
+        )
+        notes.extend(dif_outcome.warnings)
         for j in dif_outcome.anchors:
             for g in range(1, n_groups):
                 reasons[(j, g)] = "anchor item (constrained equal across groups)"
@@ -299,9 +316,11 @@ def calibrate_data(
             evidence[(j, g)] = _evidence(test, settings.dif, "anchored LR test against the anchor set")
             if test.flagged(settings.dif):
                 status[(j, g)] = action
+                low, high = test.effect_interval()
                 reasons[(j, g)] = (
                     f"DIF flag: omnibus G2 = {test.g2_omnibus:.1f} (df {test.df_omnibus}), FDR-adjusted "
-                    f"p = {test.p_adjusted:.2g}, {test.level(settings.dif)} effect {test.effect_theta:.2f} theta units"
+                    f"p = {test.p_adjusted:.2g}, effect {test.effect_theta:.2f} theta units "
+                    f"(95% interval {low:.2f} to {high:.2f}: {test.level(settings.dif)})"
                 )
         for (j, g), why in no_variance_cells.items():
             status[(j, g)] = "excluded"
@@ -379,6 +398,50 @@ def calibrate_data(
         ladder=ladder,
     )
     return CalibrationOutcome(bundle=bundle, fit=fit, warnings=tuple(notes), dif=dif_outcome)
+
+
+def small_group_notes(group_names: list[str], sizes: np.ndarray, *, multiple: bool) -> list[str]:
+    """What a group below the recommended size means for its evidence, in words."""
+    out = []
+    for name, n in zip(group_names, sizes, strict=True):
+        if n >= RECOMMENDED_MIN_RESPONDENTS:
+            continue
+        what = (
+            "item-parameter SEs are wide; the S-X2 item fit and the residual PCA rest on sparse cells"
+        )
+        if multiple:
+            what += (
+                "; its latent mean and SD and any group-specific parameters are imprecise; DIF tests have low "
+                "power, so the absence of a flag is weak evidence of invariance; Mantel-Haenszel strata are "
+                "sparse; effect sizes carry wide intervals (effect_theta_se)"
+            )
+        out.append(
+            f"group {name!r}: {int(n)} respondents is below the common floor of about {RECOMMENDED_MIN_RESPONDENTS} "
+            f"for 2PL/graded calibration (Jiang, Wang & Weiss 2016): {what}"
+        )
+    return out
+
+
+def _check_anchors(
+    anchors: Sequence[str], item_ids: tuple[str, ...], all_items: tuple[str, ...],
+    excluded_items: list[ExcludedItem], n_groups: int,
+) -> None:
+    """Named anchors must be calibrated items of a multiple-group calibration."""
+    if not anchors:
+        return
+    if n_groups == 1:
+        raise CalibrationInputError("anchors apply only to a multiple-group calibration (give a group column)")
+    dropped = {e.id: e.reason for e in excluded_items}
+    problems = []
+    for anchor in anchors:
+        if anchor in dropped:
+            problems.append(f"anchor {anchor!r} was left out of the calibration ({dropped[anchor]})")
+        elif anchor not in item_ids:
+            near = [i for i in all_items if i.lower() == anchor.lower()]
+            hint = f" (did you mean {near[0]!r}?)" if near else ""
+            problems.append(f"anchor {anchor!r} is not an item of the data{hint}")
+    if problems:
+        raise CalibrationInputError("; ".join(problems))
 
 
 def collapse_sparse_categories(
@@ -524,7 +587,8 @@ def _evidence(test: ItemGroupTest, settings: DifSettings, note: str) -> PolicyEv
         p_value=finite_or_none(test.p_omnibus),
         p_adjusted=finite_or_none(test.p_adjusted),
         effect_size=finite_or_none(test.effect_theta),
-        category=test.level(settings),
+        effect_size_se=finite_or_none(test.effect_theta_se),
+        effect_level=test.level(settings),
         note=note,
     )
 
@@ -537,7 +601,8 @@ def _irt_row(test: ItemGroupTest, stage: str, item_ids: tuple[str, ...], groups:
         p_adjusted=finite_or_none(test.p_adjusted), g2_nonuniform=finite_or_none(test.g2_nonuniform),
         p_nonuniform=finite_or_none(test.p_nonuniform), g2_uniform=finite_or_none(test.g2_uniform),
         p_uniform=finite_or_none(test.p_uniform), effect_theta=finite_or_none(test.effect_theta),
-        effect_signed=finite_or_none(test.effect_signed), level=test.level(settings),  # type: ignore[arg-type]
+        effect_signed=finite_or_none(test.effect_signed), effect_theta_se=finite_or_none(test.effect_theta_se),
+        level=test.level(settings),  # type: ignore[arg-type]
         flagged=stage == "test" and test.flagged(settings),
     )
 
@@ -568,14 +633,14 @@ def _observed_rows(
                 rows.append(ObservedDifRow(
                     method="mantel-haenszel", chi_square=r.chi_square, p_value=r.p_value,
                     mh_odds_ratio=finite_or_none(r.alpha), mh_d_dif=finite_or_none(r.d_dif),
-                    mh_d_dif_se=finite_or_none(r.d_dif_se), category=r.category,
+                    mh_d_dif_se=finite_or_none(r.d_dif_se), dif_class=r.category,
                     n_reference=r.n_reference, n_focal=r.n_focal, **common,
                 ))
             else:
                 m = screening.mantel[(j, g)]
                 rows.append(ObservedDifRow(
                     method="mantel", chi_square=m.chi_square, p_value=m.p_value, smd=m.smd,
-                    smd_over_sd=m.smd_over_sd, category=m.category, n_reference=m.n_reference,
+                    smd_over_sd=m.smd_over_sd, dif_class=m.category, n_reference=m.n_reference,
                     n_focal=m.n_focal, **common,
                 ))
     return rows
@@ -592,7 +657,7 @@ def _group_quality(
     fit_stats = item_fit(params, x, latent_mean=latent_mean, latent_sd=latent_sd)
     summary = dimensionality(params, x, eap.theta)
     dims = Dimensionality(eigenvalue_ratio=finite_or_none(summary.eigenvalue_ratio),
-                          residual_first_contrast=finite_or_none(summary.residual_first_contrast),
+                          residual_pca_first_eigenvalue=finite_or_none(summary.residual_pca_first_eigenvalue),
                           n_complete=summary.n_complete)
     items = {
         item: ItemQuality(
@@ -637,10 +702,11 @@ def _quality_warnings(quality: GroupQuality, group: str | None) -> list[str]:
             out.append(f"{where}item {item!r}: S-X2 = {q.s_x2:.1f} (df {q.s_x2_df}), p < .001: item misfit")
     dims = quality.dimensionality
     if dims is not None and dims.eigenvalue_ratio is not None and dims.eigenvalue_ratio < 3:
-        out.append(f"{where}first-to-second eigenvalue ratio {dims.eigenvalue_ratio:.2f} is below 3 "
+        out.append(f"{where}first-to-second eigenvalue ratio {dims.eigenvalue_ratio:.3f} is below 3 "
                    "(rule of thumb, Raiche 2005 recalled from memory): check unidimensionality")
-    if dims is not None and dims.residual_first_contrast is not None and dims.residual_first_contrast > 2:
-        out.append(f"{where}first residual contrast eigenvalue {dims.residual_first_contrast:.2f} is above 2 "
+    residual = None if dims is None else dims.residual_pca_first_eigenvalue
+    if residual is not None and residual > 2:
+        out.append(f"{where}largest eigenvalue of the residual PCA {residual:.2f} is above 2 "
                    "(rule of thumb): a second dimension may be present")
     return out
 
@@ -719,9 +785,13 @@ def _assemble(
             aic=fit.aic, bic=fit.bic, converged=fit.converged, n_iter=fit.n_iter,
             estimation=(
                 f"{'multiple-group ' if len(group_names) > 1 else ''}marginal ML, Bock-Aitkin EM over "
-                f"{em.n_points} rectangular points on {em.lower:g}..{em.upper:g}; reference group N(0,1)"
+                f"{em.n_points} equally spaced points on {em.lower:g}..{em.upper:g} (equitheta's default grid); "
+                "reference group N(0,1)"
                 f"{', other groups N(mean, sd) estimated' if len(group_names) > 1 else ''}; SEs from the observed "
                 "information (central differences of the analytic marginal score)"
+                + ("; the final model under the item policy: excluded cells count as not administered, so its "
+                   "log-likelihood is on other data than the invariance ladder's and is not comparable with it"
+                   if len(group_names) > 1 else "")
             ),
         ),
         quality=Quality(

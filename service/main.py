@@ -293,7 +293,7 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
     summed_scores = result.summed_score.tolist()
     results = [
         {"id": vector.id, "group": g, "theta": theta, "se": se, "scale_score": scale, "scale_se": scale_se,
-         "items_answered": n_items, "excluded_items": excluded[g], "flags": list(flags), "person_fit_lz": lz,
+         "items_answered": n_items, "excluded_items": excluded[g], "flags": list(flags), "person_fit_lz_star": lz,
          "summed_score": None, "summed_score_theta": None, "summed_score_se": None}
         for vector, g, theta, se, scale, scale_se, n_items, flags, lz in zip(
             request.responses, groups, *columns[:4], answered, result.flags, columns[4], strict=True)
@@ -486,13 +486,20 @@ def create_app(settings: Settings) -> FastAPI:
         return result if created else JSONResponse(result.model_dump(), status_code=200)
 
     @app.post("/v1/bundles/{name}/versions", response_model=PublishResult, status_code=201, tags=["bundles"],
-              responses={**_problem_responses(401, 403, 413, 422, 503)})
-    def publish_next(name: NameParam, bundle: Bundle, registry: RegistryDep, _: PublishScope) -> PublishResult:
-        """Publish a bundle as the next version of ``name`` (the version in the document is ignored)."""
+              responses={200: {"model": PublishResult, "description": "an identical calibration (same content "
+                                                                      "but for version, time and hash) is already "
+                                                                      "published: nothing changed"},
+                         **_problem_responses(401, 403, 413, 422, 503)})
+    def publish_next(name: NameParam, bundle: Bundle, registry: RegistryDep, _: PublishScope) -> Any:
+        """Publish a bundle as the next version of ``name`` (the version in the document is ignored).
+
+        An identical calibration already published is not published again: the answer names it (200).
+        """
         if bundle.name != name:
             raise InvalidBundle(f"the document is named {bundle.name!r} but the path names {name!r}", field="body.name")
-        stored = publish_guard(lambda: registry.publish(bundle))
-        return PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=True)
+        stored, created = publish_guard(lambda: registry.publish(bundle))
+        result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
+        return result if created else JSONResponse(result.model_dump(), status_code=200)
 
     @app.put("/v1/bundles/{name}/aliases/{alias}", response_model=AliasResult, tags=["bundles"],
              responses={200: _ok_example("alias_response"), **_problem_responses(401, 403, 404, 422, 503)})

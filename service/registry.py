@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from calibration.bundle import Bundle, BundleNotFound, BundleStore, DirectoryStore
 from calibration.bundle.canonical import BundleError, BundleIntegrityError
 from calibration.bundle.scorer import BundleScorer
-from calibration.bundle.store import DEFAULT_ALIAS
+from calibration.bundle.store import DEFAULT_ALIAS, find_identical
 
 log = logging.getLogger("equitheta.service")
 
@@ -175,10 +175,17 @@ class BundleRegistry:
             self._refresh_view(bundle.name)
         return stored, not existed
 
-    def publish(self, bundle: Bundle) -> Bundle:
+    def publish(self, bundle: Bundle) -> tuple[Bundle, bool]:
+        """Publish as the next version, unless an identical calibration is already published.
+
+        Returns (stored bundle, created?); the rule is the CLI's (:func:`find_identical`).
+        """
+        identical = find_identical(self.store, bundle)
+        if identical is not None:
+            return identical, False
         stored = self.store.publish(bundle)
         self._refresh_view(bundle.name)
-        return stored
+        return stored, True
 
     def set_alias(self, name: str, alias: str, version: int) -> int:
         record = self.store.set_alias(name, alias, version)

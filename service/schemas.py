@@ -51,7 +51,7 @@ class ScoreResult(_Strict):
     items_answered: int
     excluded_items: list[ExcludedItemOut]
     flags: list[str] = Field(description="no_answers, few_items, extreme_pattern, person_misfit")
-    person_fit_lz: float | None = Field(
+    person_fit_lz_star: float | None = Field(
         description="person fit l_z* (Snijders' correction for the estimated theta); below -1.645 flags person_misfit"
     )
     summed_score: int | None = None

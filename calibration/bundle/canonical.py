@@ -14,7 +14,7 @@ from typing import Any
 
 from pydantic import ValidationError
 
-from calibration.bundle.schema import Bundle
+from calibration.bundle.schema import READABLE_SCHEMA_VERSIONS, Bundle, upgrade_document
 
 
 class BundleError(Exception):
@@ -80,8 +80,14 @@ def from_document(document: Any, *, source: str) -> Bundle:
             f"{source}: content hash mismatch (stated {stated[:12]}..., computed {actual[:12]}...); "
             "the file was changed after publication and is refused"
         )
+    version = document.get("schema_version")
+    if version not in READABLE_SCHEMA_VERSIONS:
+        raise BundleIntegrityError(
+            f"{source}: bundle schema version {version!r} is not one this software reads "
+            f"({', '.join(READABLE_SCHEMA_VERSIONS)}); upgrade equitheta"
+        )
     try:
-        return Bundle.model_validate(document)
+        return Bundle.model_validate(upgrade_document(document))
     except ValidationError as exc:
         first = exc.errors()[0]
         where = ".".join(str(p) for p in first["loc"])

@@ -7,12 +7,17 @@ Missing statistics are ``null`` (JSON has no NaN).
 
 from __future__ import annotations
 
+import copy
 import re
-from typing import Literal
+from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-SCHEMA_VERSION = "1"
+SCHEMA_VERSION = "2"
+# Schema versions this code reads. A version-1 document is verified against its stored bytes, then
+# upgraded in memory (see :func:`upgrade_document`); it keeps ``schema_version`` "1" so that a reader
+# knows its hash was taken over the version-1 form.
+READABLE_SCHEMA_VERSIONS = ("1", "2")
 NAME_PATTERN = r"^[a-z0-9][a-z0-9._-]{0,63}$"
 ALIAS_PATTERN = r"^[a-z][a-z0-9_-]{0,31}$"
 
@@ -67,7 +72,11 @@ class PolicyEvidence(_Frozen):
     p_value: float | None = None
     p_adjusted: float | None = None
     effect_size: float | None = None
-    category: str | None = None
+    effect_size_se: float | None = Field(None, description="Delta-method SE of the effect size (theta units)")
+    effect_level: str | None = Field(
+        None, description="negligible / moderate / large when the effect's 95% interval lies in one band, else "
+        "uncertain (see DifReport.effect_levels)",
+    )
     note: str = ""
 
 
@@ -125,9 +134,25 @@ class ExcludedItem(_Frozen):
     reason: str
 
 
+class AnchorCandidate(_Frozen):
+    """One item's place in the anchor ranking (smallest statistic first)."""
+
+    item: str
+    rank: int = Field(ge=1)
+    statistic: float | None = Field(
+        description="Largest over focal groups of (G2 - df) / sqrt(2 df) from the screening; null: never tested"
+    )
+    worst_group: str
+    p_adjusted: float | None = Field(None, description="Smallest FDR-adjusted screening p value over focal groups")
+    selected: bool
+
+
 class Anchors(_Frozen):
     items: list[str] = Field(default_factory=list)
     method: str = Field(description="How the anchor items were chosen")
+    ranking: list[AnchorCandidate] = Field(
+        default_factory=list, description="Every screened item in rank order, so the choice can be rebuilt"
+    )
 
 
 class QuadratureSettings(_Frozen):
@@ -191,8 +216,8 @@ class ItemQuality(_Frozen):
 
 class Dimensionality(_Frozen):
     eigenvalue_ratio: float | None = Field(None, description="First to second eigenvalue of the item correlations")
-    residual_first_contrast: float | None = Field(
-        None, description="Largest eigenvalue of the PCA of standardized residuals"
+    residual_pca_first_eigenvalue: float | None = Field(
+        None, description="Largest eigenvalue of the principal components of the standardized residuals"
     )
     n_complete: int = 0
 
@@ -226,7 +251,7 @@ class ObservedDifRow(_Frozen):
     mh_d_dif_se: float | None = None
     smd: float | None = None
     smd_over_sd: float | None = None
-    category: str = Field(description="A/B/C (+/-) for right/wrong items, AA/BB/CC for graded items")
+    dif_class: str = Field(description="A/B/C (+/-) for right/wrong items, AA/BB/CC for graded items")
     logistic_chi_square: float | None = None
     logistic_p_value: float | None = None
     logistic_delta_r2: float | None = None
@@ -251,7 +276,8 @@ class IrtDifRow(_Frozen):
     p_uniform: float | None
     effect_theta: float | None = Field(description="Focal-density weighted curve difference in theta units")
     effect_signed: float | None = Field(description="Signed version; negative: harder for the focal group")
-    level: Literal["negligible", "moderate", "large"]
+    effect_theta_se: float | None = Field(None, description="Delta-method SE of effect_theta")
+    level: Literal["negligible", "moderate", "large", "uncertain"]
     flagged: bool
 
 
@@ -265,8 +291,18 @@ class DifSettingsRecord(_Frozen):
     min_anchors: int
 
 
+EFFECT_LEVEL_RULE = (
+    "The effect size is in theta units with a delta-method SE. Its level is negligible, moderate or large "
+    "only when the whole 95% interval lies in that band (cut-offs effect_moderate and effect_large); "
+    "otherwise it is uncertain. In small groups noise inflates an unsigned effect, so a point estimate "
+    "alone would overstate it. A cell is flagged only when it is significant after FDR control and its "
+    "point estimate reaches effect_moderate."
+)
+
+
 class DifReport(_Frozen):
     settings: DifSettingsRecord
+    effect_levels: str = Field(EFFECT_LEVEL_RULE, description="How effect levels are assigned")
     observed: list[ObservedDifRow]
     irt: list[IrtDifRow]
     caution: str = Field(
@@ -293,7 +329,7 @@ class LadderRow(_Frozen):
 class Bundle(_Frozen):
     """A calibration bundle. ``version`` 0 and empty ``hash`` mean "not yet published"."""
 
-    schema_version: Literal["1"] = SCHEMA_VERSION
+    schema_version: Literal["1", "2"] = SCHEMA_VERSION
     name: str = Field(pattern=NAME_PATTERN)
     version: int = Field(ge=0)
     created_at: str = Field(description="UTC time of the calibration, ISO 8601")
@@ -335,6 +371,31 @@ class Bundle(_Frozen):
     @property
     def label(self) -> str:
         return f"{self.name}@{self.version}"
+
+
+def upgrade_document(document: dict[str, Any]) -> dict[str, Any]:
+    """A schema-1 document in the schema-2 shape (renamed fields only; the statistics are unchanged).
+
+    Version 2 renamed ``category`` (an MH/Mantel class in the observed DIF rows, an effect
+    level in the policy evidence) to ``dif_class`` and ``effect_level``, and the residual
+    PCA's ``residual_first_contrast`` to ``residual_pca_first_eigenvalue``.
+    """
+    if document.get("schema_version") != "1":
+        return document
+    doc = copy.deepcopy(document)
+
+    def rename(record: dict[str, Any] | None, old: str, new: str) -> None:
+        if isinstance(record, dict) and old in record:
+            record[new] = record.pop(old)
+
+    for item in doc.get("items") or []:
+        for policy in (item.get("policy") or {}).values():
+            rename(policy.get("evidence"), "category", "effect_level")
+    for row in (doc.get("dif") or {}).get("observed") or []:
+        rename(row, "category", "dif_class")
+    for quality in ((doc.get("quality") or {}).get("by_group") or {}).values():
+        rename(quality.get("dimensionality"), "residual_first_contrast", "residual_pca_first_eigenvalue")
+    return doc
 
 
 def valid_name(name: str) -> bool:

@@ -15,8 +15,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from calibration.bundle.canonical import BundleError
 from calibration.bundle.schema import Bundle
+from calibration.errors import UnknownGroup
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
 from calibration.irt.scoring import METHODS, NormalPrior, ReportingScale, person_fit_lz, score, score_tables
@@ -27,15 +27,6 @@ FLAG_EXTREME = "extreme_pattern"
 FLAG_MISFIT = "person_misfit"
 # l_z* below the one-sided 5% normal point flags a pattern as unlikely (common practice).
 PERSON_FIT_CUTOFF = -1.645
-
-
-class UnknownGroup(BundleError):
-    """A respondent's group is not a group of the bundle; ``index`` is the 0-based respondent position."""
-
-    def __init__(self, message: str, *, index: int, group: str | None) -> None:
-        super().__init__(message)
-        self.index = index
-        self.group = group
 
 
 @dataclass(frozen=True)
@@ -126,7 +117,7 @@ class BundleScorer:
     def resolve_groups(
         self, groups: Sequence[str | None] | None, n_persons: int, *, unknown_to_reference: bool = False
     ) -> tuple[str, ...]:
-        """Check every respondent's group; raise :class:`UnknownGroup` naming the first bad one."""
+        """Check every respondent's group; raise :class:`UnknownGroup` listing every bad one."""
         known = set(self.plans)
         reference = self.bundle.metric.reference_group
         if groups is not None and known.issuperset(groups):
@@ -135,23 +126,26 @@ class BundleScorer:
         if groups is None:
             groups = [None] * n_persons
         resolved: list[str] = []
+        problems: list[tuple[int, str | None]] = []
         for i, g in enumerate(groups):
             if g is None or g == "":
                 if default is None:
-                    raise UnknownGroup(
-                        f"respondent {i + 1}: no group given and the bundle has several groups "
-                        f"({', '.join(sorted(known))})", index=i, group=None,
-                    )
-                resolved.append(default)
+                    problems.append((i, None))
+                resolved.append(default or reference)
             elif g in known:
                 resolved.append(g)
             elif unknown_to_reference:
                 resolved.append(reference)
             else:
-                raise UnknownGroup(
-                    f"respondent {i + 1}: group {g!r} is not in bundle {self.bundle.label} "
-                    f"(groups: {', '.join(sorted(known))})", index=i, group=g,
-                )
+                problems.append((i, g))
+                resolved.append(reference)
+        if problems:
+            i, g = problems[0]
+            what = "no group given and the bundle has several groups" if g is None else \
+                f"group {g!r} is not in bundle {self.bundle.label}"
+            more = f" ({len(problems) - 1} more respondents like this)" if len(problems) > 1 else ""
+            raise UnknownGroup(f"respondent {i + 1}: {what} (groups: {', '.join(sorted(known))}){more}",
+                               problems=problems)
         return tuple(resolved)
 
     def score(
@@ -178,6 +172,7 @@ class BundleScorer:
         theta = np.empty(n)
         se = np.empty(n)
         n_answered = np.zeros(n, dtype=np.int64)
+        minimum = np.zeros(n, dtype=np.int64)  # judged against the items open to each respondent's group
         extreme = np.zeros(n, dtype=bool)
         person_fit = np.full(n, np.nan)
         summed = np.full(n, np.nan)
@@ -189,6 +184,7 @@ class BundleScorer:
             result = score(plan.params, x[np.ix_(rows, plan.columns)], method=method, grid=self.grid,
                            prior=self.prior, ml_bound=self.bundle.scoring.ml_bound, tables=plan.tables)
             theta[rows], se[rows] = result.theta, result.se
+            minimum[rows] = min(self.bundle.scoring.min_items_answered, plan.columns.size)
             n_answered[rows], extreme[rows] = result.n_answered, result.extreme
             sub = x[np.ix_(rows, plan.columns)]
             finite = np.isfinite(theta[rows])
@@ -198,7 +194,6 @@ class BundleScorer:
             complete = ~np.isnan(sub).any(axis=1)
             summed[rows[complete]] = sub[complete].sum(axis=1)
         scale_score, scale_se = self.reporting_scale.transform(theta, se)
-        minimum = self.bundle.scoring.min_items_answered
         marks = (
             (n_answered == 0, FLAG_NO_ANSWERS),
             ((n_answered > 0) & (n_answered < minimum), FLAG_FEW_ITEMS),

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import contextlib
 import fcntl
+import hashlib
 import json
 import os
 import tempfile
@@ -29,7 +30,14 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Protocol
 
-from calibration.bundle.canonical import BundleError, BundleIntegrityError, from_bytes, seal, to_bytes
+from calibration.bundle.canonical import (
+    BundleError,
+    BundleIntegrityError,
+    canonical_bytes,
+    from_bytes,
+    seal,
+    to_bytes,
+)
 from calibration.bundle.schema import Bundle, valid_alias, valid_name
 
 DEFAULT_ALIAS = "production"
@@ -98,6 +106,39 @@ def resolve(store: BundleStore, reference: str) -> Bundle:
     if not versions:
         raise BundleNotFound(f"no bundle named {name!r}")
     return store.get(name, versions[-1])
+
+
+# Fields that differ between two publications of the same calibration.
+PUBLICATION_FIELDS = ("hash", "version", "created_at")
+
+
+def calibration_fingerprint(bundle: Bundle) -> str:
+    """SHA-256 of the bundle's canonical content without its publication fields.
+
+    Two bundles with the same fingerprint come from the same data, settings and software
+    and hold the same results: publishing the second would add a version that differs only
+    in its time stamp.
+    """
+    document = {k: v for k, v in bundle.model_dump(mode="json").items() if k not in PUBLICATION_FIELDS}
+    return hashlib.sha256(canonical_bytes(document)).hexdigest()
+
+
+def find_identical(store: BundleStore, bundle: Bundle) -> Bundle | None:
+    """The newest published version of the bundle's name with the same fingerprint, if any.
+
+    The one rule for "publish again?", used by the CLI and the service: an identical
+    calibration is not published twice (the caller names the existing version instead).
+    Damaged versions are skipped; they cannot be identical to anything.
+    """
+    target = calibration_fingerprint(bundle)
+    for version in reversed(store.versions(bundle.name)):
+        try:
+            existing = store.get(bundle.name, version)
+        except BundleIntegrityError:
+            continue
+        if calibration_fingerprint(existing) == target:
+            return existing
+    return None
 
 
 def _now() -> str:

@@ -16,9 +16,10 @@ and SD are re-estimated in every model. This "anchored LR with the other items
 held" is a documented approximation to refitting every parameter; the benchmark
 measures its Type I error and power.
 
-Anchors (Woods 2009): screen every item with all other items as anchors, then keep
-the k items with the smallest omnibus statistics (default k = max(4, 20% of items)),
-or use the anchors a user names. Multiple testing: Benjamini & Hochberg (1995)
+Anchors (after Woods 2009): screen every item with all other items as anchors, rank
+the items by their largest over focal groups of (G2 - df) / sqrt(2 df) (ties: its sum
+over groups, then the item id, so the column order never matters), then keep the first
+k (default k = max(4, 20% of items)), or use the anchors a user names. Multiple testing: Benjamini & Hochberg (1995)
 across items x focal groups.
 
 Effect size on the theta scale, capturing non-uniform DIF too: the focal-density
@@ -44,8 +45,11 @@ from calibration.estimation.em import (
     LatentSpec,
     MultiGroupFit,
     calibrate_groups,
+    item_gradient,
+    latent_score,
     latent_update,
     m_step,
+    observed_covariance,
     params_from_table,
     run_em,
 )
@@ -79,6 +83,10 @@ class DifSettings:
     sub_tolerance: float = 1e-3
 
 
+# Two-sided 95% normal quantile for the effect-size interval.
+EFFECT_Z = float(stats.norm.ppf(0.975))
+
+
 @dataclass(frozen=True)
 class ItemGroupTest:
     """LR tests and effect size for one item in one focal group."""
@@ -98,13 +106,29 @@ class ItemGroupTest:
     reference_table: FloatArray  # item j's (slope, intercepts) for the reference group under M2
     focal_table: FloatArray  # ... for the focal group under M2
     p_adjusted: float = float("nan")
+    effect_theta_se: float = float("nan")  # delta-method SE of effect_theta under M2
+
+    def effect_interval(self) -> tuple[float, float]:
+        """95% interval of the unsigned effect, clipped at 0 (NaN bounds without an SE)."""
+        half = EFFECT_Z * self.effect_theta_se
+        return max(self.effect_theta - half, 0.0), self.effect_theta + half
 
     def level(self, settings: DifSettings) -> str:
-        if self.effect_theta >= settings.effect_large:
+        """The effect band that the whole 95% interval lies in, else ``uncertain``.
+
+        Noise inflates an unsigned effect (its estimate is never below 0), most in small
+        groups, so the point estimate alone overstates it; without an SE the point decides.
+        """
+        low, high = self.effect_interval()
+        if not np.isfinite(high):
+            low = high = self.effect_theta
+        if low >= settings.effect_large:
             return "large"
-        if self.effect_theta >= settings.effect_moderate:
+        if low >= settings.effect_moderate and high < settings.effect_large:
             return "moderate"
-        return "negligible"
+        if high < settings.effect_moderate:
+            return "negligible"
+        return "uncertain"
 
     def flagged(self, settings: DifSettings) -> bool:
         return bool(self.p_adjusted < settings.alpha and self.effect_theta >= settings.effect_moderate)
@@ -210,6 +234,15 @@ def _single_item_e_step(
     return counts, mass, log_lik
 
 
+@dataclass(frozen=True)
+class _SingleItemFit:
+    log_likelihood: float
+    tables: FloatArray  # (2, 1, K): reference and focal (slope, intercepts)
+    vector: FloatArray  # free item slots, then the focal mean and SD
+    unpack: Callable[[FloatArray], tuple[FloatArray, FloatArray, FloatArray]]
+    score: Callable[[FloatArray], FloatArray]  # marginal score at a vector (Fisher's identity)
+
+
 def _fit_single_item(
     rows: list[_Rows],
     one: ItemParameters,
@@ -217,7 +250,7 @@ def _fit_single_item(
     latent: LatentSpec,
     group_free: np.ndarray,
     settings: EMSettings,
-) -> tuple[float, FloatArray]:
+) -> _SingleItemFit:
     """Marginal ML of one item's (shared or group-specific) parameters and the focal latent density."""
     points = settings.quadrature.points
     layout = GroupLayout.build(one, 2, group_free=group_free)
@@ -229,21 +262,49 @@ def _fit_single_item(
         mean[1], sd[1] = vec[n_item], vec[n_item + 1]
         return tables, mean, sd
 
-    def em_map(vec: FloatArray) -> tuple[FloatArray, float]:
+    def e_step(vec: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, float]:
         tables, mean, sd = unpack(vec)
         if sd[1] <= 0:
             raise ValueError("invalid parameters")
         params = [params_from_table(tables[h], one) for h in range(2)]
-        counts, mass, log_lik = _single_item_e_step(rows, params, mean, sd, points)
+        return (tables, mean, sd, *_single_item_e_step(rows, params, mean, sd, points))
+
+    def em_map(vec: FloatArray) -> tuple[FloatArray, float]:
+        tables, mean, sd, counts, mass, log_lik = e_step(vec)
         tables = m_step(tables, one, counts, points, layout, prior=None, n_iter=settings.m_step_iter)
         mean[1], sd[1] = latent_update(mass[1], points, float(mean[1]), float(sd[1]), True, True)
         return np.concatenate([layout.to_vector(tables), [mean[1], sd[1]]]), log_lik
 
+    def score(vec: FloatArray) -> FloatArray:
+        tables, mean, sd, counts, mass, _ = e_step(vec)
+        latent_part = latent_score(mass[1], points, float(mean[1]), float(sd[1]))
+        return np.concatenate([item_gradient(tables, one, counts, points, layout), latent_part])
+
     vec0 = np.concatenate([layout.to_vector(start), [latent.mean[1], latent.sd[1]]])
     vec, _, _, _ = run_em(vec0, em_map, settings, warn=False)
-    tables, mean, sd = unpack(vec)
-    params = [params_from_table(tables[h], one) for h in range(2)]
-    return _single_item_e_step(rows, params, mean, sd, points)[2], tables
+    tables, _, _, _, _, log_lik = e_step(vec)
+    return _SingleItemFit(log_lik, tables, vec, unpack, score)
+
+
+def _effect_se(fit: _SingleItemFit, one: ItemParameters, mean: float, sd: float) -> float:
+    """Delta-method SE of the unsigned effect: its numerical gradient through the observed covariance."""
+    covariance = observed_covariance(fit.vector, fit.score)
+    if covariance is None:
+        return float("nan")
+
+    def effect_at(vec: FloatArray) -> float:
+        tables = fit.unpack(vec)[0]
+        return effect_size(params_from_table(tables[0], one), params_from_table(tables[1], one), mean, sd)[0]
+
+    gradient = np.zeros(fit.vector.size)
+    for p in range(fit.vector.size):
+        h = 1e-5 * max(1.0, abs(fit.vector[p]))
+        up, down = fit.vector.copy(), fit.vector.copy()
+        up[p] += h
+        down[p] -= h
+        gradient[p] = (effect_at(up) - effect_at(down)) / (2 * h)
+    variance = float(gradient @ covariance @ gradient)
+    return float(np.sqrt(variance)) if variance >= 0 else float("nan")
 
 
 def _test_item(
@@ -276,22 +337,22 @@ def _test_item(
     designs = [np.zeros(k_j, dtype=bool), np.arange(k_j) > 0, np.ones(k_j, dtype=bool)]
     if omnibus_only:
         designs = [designs[0], designs[2]]
-    log_liks, tables = [], []
+    fits = []
     for free_slots in designs:
         group_free = np.zeros((2, 1, k_j), dtype=bool)
         group_free[1, 0] = free_slots
-        ll, tab = _fit_single_item(rows, one, start, latent, group_free, settings)
-        log_liks.append(ll)
-        tables.append(tab)
+        fits.append(_fit_single_item(rows, one, start, latent, group_free, settings))
+    log_liks = [f.log_likelihood for f in fits]
     ll0, ll2 = log_liks[0], log_liks[-1]
     ll1 = log_liks[1] if not omnibus_only else float("nan")
     g2_all = max(2 * (ll2 - ll0), 0.0)
     g2_non = max(2 * (ll2 - ll1), 0.0) if not omnibus_only else float("nan")
     g2_uni = max(2 * (ll1 - ll0), 0.0) if not omnibus_only else float("nan")
-    final = tables[-1]
+    final = fits[-1].tables
     ref_params = params_from_table(final[0], one)
     foc_params = params_from_table(final[1], one)
-    effect, signed = effect_size(ref_params, foc_params, float(fit.latent_mean[g]), float(fit.latent_sd[g]))
+    focal_mean, focal_sd = float(fit.latent_mean[g]), float(fit.latent_sd[g])
+    effect, signed = effect_size(ref_params, foc_params, focal_mean, focal_sd)
     return ItemGroupTest(
         item=j, group=g,
         g2_omnibus=g2_all, df_omnibus=k_j, p_omnibus=float(stats.chi2.sf(g2_all, k_j)),
@@ -300,6 +361,7 @@ def _test_item(
         p_uniform=float(stats.chi2.sf(g2_uni, k_j - 1)) if not omnibus_only else float("nan"),
         effect_theta=effect, effect_signed=signed,
         reference_table=final[0, 0].copy(), focal_table=final[1, 0].copy(),
+        effect_theta_se=_effect_se(fits[-1], one, focal_mean, focal_sd),
     )
 
 
@@ -335,15 +397,69 @@ def test_items(
 test_items.__test__ = False  # type: ignore[attr-defined]
 
 
-def select_anchors(screening: dict[tuple[int, int], ItemGroupTest], n_items: int, settings: DifSettings) -> list[int]:
-    """The k items with the smallest largest-over-groups omnibus statistic (scaled by its df)."""
-    k = max(settings.min_anchors, int(np.ceil(settings.anchor_fraction * n_items)))
-    k = min(k, n_items)
-    worst = np.zeros(n_items)
+@dataclass(frozen=True)
+class AnchorCandidate:
+    """One item's standing in the anchor ranking (see :func:`rank_anchor_candidates`)."""
+
+    item: int
+    statistic: float  # largest over focal groups of (G2 - df) / sqrt(2 df); +inf when never tested
+    total: float  # the same, summed over the focal groups (first tie-break)
+    worst_group: int  # -1 when never tested
+    p_adjusted: float  # smallest FDR-adjusted screening p value over the focal groups
+
+
+def rank_anchor_candidates(
+    screening: dict[tuple[int, int], ItemGroupTest], item_ids: tuple[str, ...]
+) -> list[AnchorCandidate]:
+    """Every item, cleanest first, by a rule that does not depend on the order of the columns.
+
+    The statistic is ``(G2 - df) / sqrt(2 df)``, approximately z under no DIF, so right/wrong and
+    graded items compare; an item's value is its largest over focal groups (the group where it
+    looks worst). Ties (e.g. several G2 of exactly 0) are broken by the sum over groups, then
+    by item id in text order. An item with no screening test in any group ranks last.
+    """
+    by_item: dict[int, list[ItemGroupTest]] = {}
     for (j, _g), test in screening.items():
-        # Scale by df so 2PL and graded items compare: (G2 - df) / sqrt(2 df) is approximately z.
-        worst[j] = max(worst[j], (test.g2_omnibus - test.df_omnibus) / np.sqrt(2 * test.df_omnibus))
-    return sorted(int(j) for j in np.argsort(worst, kind="stable")[:k])
+        by_item.setdefault(j, []).append(test)
+    out = []
+    for j in range(len(item_ids)):
+        tests = by_item.get(j, [])
+        if not tests:
+            out.append(AnchorCandidate(j, float("inf"), float("inf"), -1, float("nan")))
+            continue
+        z = [(t.g2_omnibus - t.df_omnibus) / np.sqrt(2 * t.df_omnibus) for t in tests]
+        worst = int(np.argmax(z))
+        out.append(AnchorCandidate(j, float(z[worst]), float(np.sum(z)), tests[worst].group,
+                                   float(np.nanmin([t.p_adjusted for t in tests]))))
+    return sorted(out, key=lambda c: (c.statistic, c.total, item_ids[c.item]))
+
+
+def n_anchors(n_items: int, settings: DifSettings) -> int:
+    """How many anchors the rule asks for: max(min_anchors, anchor_fraction of the items), at most all."""
+    return min(max(settings.min_anchors, int(np.ceil(settings.anchor_fraction * n_items))), n_items)
+
+
+def anchor_warnings(
+    ranking: list[AnchorCandidate], anchors: list[int], item_ids: tuple[str, ...], settings: DifSettings
+) -> list[str]:
+    """Say when the anchors include items the screening itself found significant."""
+    clean = [c for c in ranking if np.isfinite(c.statistic) and not c.p_adjusted < settings.alpha]
+    chosen = {c.item: c for c in ranking if c.item in anchors}
+    dirty = [c for c in chosen.values() if c.p_adjusted < settings.alpha]
+    out = []
+    if len(clean) < len(anchors):
+        out.append(
+            f"only {len(clean)} of {len(ranking)} items are clean in the all-other-items screening (FDR-adjusted "
+            f"p >= {settings.alpha:g} in every group), but the anchor rule asks for {len(anchors)}: the anchor set "
+            "may be contaminated; consider naming anchors chosen on content grounds (--anchors)"
+        )
+    if dirty:
+        out.append(
+            "anchor items that the screening found significant: "
+            + ", ".join(f"{item_ids[c.item]} (adjusted p = {c.p_adjusted:.2g})" for c in dirty)
+            + "; DIF in an anchor biases every other item's test"
+        )
+    return out
 
 
 def adjust(tests: dict[tuple[int, int], ItemGroupTest]) -> dict[tuple[int, int], ItemGroupTest]:
@@ -367,6 +483,8 @@ class DifOutcome:
     anchor_fit: MultiGroupFit
     tests: dict[tuple[int, int], ItemGroupTest]
     settings: DifSettings = field(default_factory=DifSettings)
+    ranking: list[AnchorCandidate] = field(default_factory=list)  # empty when the user named the anchors
+    warnings: tuple[str, ...] = ()
 
 
 def run_irt_dif(
@@ -393,6 +511,8 @@ def run_irt_dif(
         return lambda done, total: progress(stage, done, total) if progress is not None else None
 
     screening: dict[tuple[int, int], ItemGroupTest] = {}
+    ranking: list[AnchorCandidate] = []
+    warnings: list[str] = []
     if settings.anchors:
         unknown = [a for a in settings.anchors if a not in item_ids]
         if unknown:
@@ -400,14 +520,18 @@ def run_irt_dif(
         anchors = sorted(item_ids.index(a) for a in settings.anchors)
         method = "named by the user"
     else:
-        screening = test_items(scalar_fit, responses, group_index, list(range(n_items)),
-                               tolerance=settings.sub_tolerance, omnibus_only=True, skip=skip,
-                               progress=report("screen"))
-        anchors = select_anchors(screening, n_items, settings)
+        screening = adjust(test_items(scalar_fit, responses, group_index, list(range(n_items)),
+                                      tolerance=settings.sub_tolerance, omnibus_only=True, skip=skip,
+                                      progress=report("screen")))
+        ranking = rank_anchor_candidates(screening, item_ids)
+        k = n_anchors(n_items, settings)
+        anchors = sorted(c.item for c in ranking[:k])
+        warnings = anchor_warnings(ranking, anchors, item_ids, settings)
         method = (
-            f"all-other-items screening (anchored LR, every other item held at the scalar-model estimates), "
-            f"then the {len(anchors)} items with the smallest omnibus statistics "
-            f"(k = max({settings.min_anchors}, {settings.anchor_fraction:.0%} of {n_items} items))"
+            "all-other-items screening: an omnibus anchored LR test of every item in every focal group, every "
+            "other item held at the scalar-model estimates; items ranked by the largest over focal groups of "
+            "(G2 - df) / sqrt(2 df), ties broken by its sum over groups and then by item id; the first "
+            f"k = max({settings.min_anchors}, {settings.anchor_fraction:.0%} of {n_items} items) = {k} are the anchors"
         )
     k_max = int(n_categories.max())
     group_free = np.zeros((n_groups, n_items, k_max), dtype=bool)
@@ -422,5 +546,5 @@ def run_irt_dif(
     )
     tests = test_items(anchor_fit, responses, group_index, others, tolerance=settings.sub_tolerance, skip=skip,
                        progress=report("test"))
-    return DifOutcome(screening=adjust(screening) if screening else {}, anchors=anchors, anchor_method=method,
-                      anchor_fit=anchor_fit, tests=adjust(tests), settings=settings)
+    return DifOutcome(screening=screening, anchors=anchors, anchor_method=method, anchor_fit=anchor_fit,
+                      tests=adjust(tests), settings=settings, ranking=ranking, warnings=tuple(warnings))

@@ -100,7 +100,7 @@ def mantel_haenszel(tables: FloatArray) -> tuple[float, float, float, float]:
     return float(alpha), float(se_log), float(chi), p_value
 
 
-def ets_category(d_dif: float, d_dif_se: float, p_value: float, *, greater_than_one_z: float = 1.645) -> str:
+def mh_abc_class(d_dif: float, d_dif_se: float, p_value: float, *, greater_than_one_z: float = 1.645) -> str:
     """A/B/C with a sign (Zwick 2012 after Petersen 1988).
 
     A: not significantly different from 0 (alpha .05) or |D| < 1. C: |D| >= 1.5 and
@@ -200,7 +200,7 @@ def _item_result(
         alpha, se_log, chi, p = mantel_haenszel(tables)
         d = -D_DIF_SCALE * math.log(alpha) if 0 < alpha < math.inf else (-math.inf if alpha == math.inf else math.inf)
         d_se = D_DIF_SCALE * se_log
-        return MantelHaenszelResult(alpha, se_log, chi, p, d, d_se, ets_category(d, d_se, p,
+        return MantelHaenszelResult(alpha, se_log, chi, p, d, d_se, mh_abc_class(d, d_se, p,
                                     greater_than_one_z=greater_than_one_z), n_ref, n_foc)
     chi, p, smd = mantel_polytomous(y, focal, score)
     sd = float(np.std(y, ddof=1)) if y.size > 1 else 0.0

@@ -416,6 +416,26 @@ def m_step(
     return tables
 
 
+def item_gradient(
+    tables: FloatArray,
+    template: ItemParameters,
+    counts: FloatArray,
+    points: FloatArray,
+    layout: GroupLayout,
+    *,
+    prior: SlopePrior | None = None,
+) -> FloatArray:
+    """Gradient over the layout's free slots of the expected complete-data log-likelihood.
+
+    With ``counts`` from the E-step at ``tables`` this is the marginal score (Fisher's identity),
+    the quantity the observed information is differenced from.
+    """
+    gradient = _prior_terms(tables, layout, prior)[1]
+    for g in range(tables.shape[0]):
+        gradient[g] += _item_blocks(params_from_table(tables[g], template), points, counts[g])[1]
+    return layout.gather(gradient)
+
+
 @dataclass(frozen=True)
 class LatentSpec:
     """Latent N(mean, sd) per group and which of them are estimated (group 0 is the reference)."""
@@ -453,7 +473,7 @@ def latent_update(mass: FloatArray, points: FloatArray, mean: float, sd: float, 
     return mean, sd
 
 
-def _latent_score(mass: FloatArray, points: FloatArray, mean: float, sd: float) -> tuple[float, float]:
+def latent_score(mass: FloatArray, points: FloatArray, mean: float, sd: float) -> tuple[float, float]:
     """d/d mean and d/d sd of ``sum_q mass_q log w_q`` for the grid-normalised normal weights."""
     w = np.exp(normal_log_weights(points, mean, sd))
     total = mass.sum()
@@ -664,13 +684,10 @@ def calibrate_groups(
 
     def score(v: FloatArray) -> FloatArray:
         t, m, s_, counts, res = e_step(v)
-        gradient = _prior_terms(t, layout, prior)[1]
-        for g in range(n_groups):
-            gradient[g] += _item_blocks(params_from_table(t[g], template), points, counts[g])[1]
-        latent_grad = [_latent_score(r.point_mass, points, m[g], s_[g]) for g, r in enumerate(res)]
+        latent_grad = [latent_score(r.point_mass, points, m[g], s_[g]) for g, r in enumerate(res)]
         d_mean = np.array([d[0] for d in latent_grad])[latent.free_mean]
         d_sd = np.array([d[1] for d in latent_grad])[latent.free_sd]
-        return np.concatenate([layout.gather(gradient), d_mean, d_sd])
+        return np.concatenate([item_gradient(t, template, counts, points, layout, prior=prior), d_mean, d_sd])
 
     covariance = None
     slot_se = np.full(tabs.shape, np.nan)

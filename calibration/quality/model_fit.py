@@ -11,8 +11,8 @@
   weighted) and the model curve, over the group's latent density, divided by the
   item's maximum score.
 - Dimensionality: the first-to-second eigenvalue ratio of the item correlation
-  matrix, and the largest eigenvalue of the correlations of standardized
-  residuals (the first contrast; values above about 2 suggest a second dimension).
+  matrix, and the largest eigenvalue of a principal component analysis of the
+  standardized residuals (values above about 2 suggest a second dimension).
 """
 
 from __future__ import annotations
@@ -34,7 +34,7 @@ class Dimensionality:
     """None where there were too few complete rows (fewer than MIN_COMPLETE_ROWS) or items."""
 
     eigenvalue_ratio: float | None
-    residual_first_contrast: float | None
+    residual_pca_first_eigenvalue: float | None
     n_complete: int
 
 
@@ -143,4 +143,4 @@ def dimensionality(params: ItemParameters, responses: FloatArray, theta: FloatAr
     var = np.einsum("jkn,k->nj", prob, k * k) - mean**2
     residual = (x - mean) / np.sqrt(np.maximum(var, 1e-12))
     contrast = float(np.max(np.linalg.eigvalsh(np.corrcoef(residual, rowvar=False))))
-    return Dimensionality(eigenvalue_ratio=ratio, residual_first_contrast=contrast, n_complete=int(x.shape[0]))
+    return Dimensionality(eigenvalue_ratio=ratio, residual_pca_first_eigenvalue=contrast, n_complete=int(x.shape[0]))

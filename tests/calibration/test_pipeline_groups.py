@@ -94,7 +94,9 @@ def test_unknown_group_is_an_error_unless_sent_to_the_reference(sites: dict, tmp
     args = ["score", str(path), "--bundle", "sites@1", "--store", str(sites["store"]), "--group-column", "site",
             "--out", str(out)]
     assert main(args) == 2
-    assert "respondent 3: group 'seaview' is not in bundle sites@1" in capsys.readouterr().err
+    err = capsys.readouterr().err
+    assert "1 respondent(s) with a group that bundle sites@1 does not know" in err
+    assert "row 3 (line 4), id 'TW-000003', column 'site': group 'seaview' is not in the bundle" in err
     assert not out.exists()
     assert main([*args, "--unknown-group", "reference"]) == 0
     assert pd.read_csv(out)["group"].iloc[2] == "port-ellery"
@@ -137,11 +139,20 @@ def test_group_errors(sites: dict, tmp_path: Path) -> None:
     with pytest.raises(CalibrationInputError, match="reference group 'harbour' is not in the data"):
         calibrate_data(data, name="x", reference_group="harbour")
     small = make_demo_responses(700, seed=3)
-    small.loc[small.index[:60], "site"] = "tiny"
+    small.loc[small.index[:20], "site"] = "tiny"
     path = tmp_path / "small.csv"
     small.to_csv(path, index=False)
-    with pytest.raises(CalibrationInputError, match=r"fewer than 100 respondents .*: tiny \(60\)"):
+    # Below the hard floor of 30 a group is refused; a programme's own rule can raise the floor.
+    with pytest.raises(CalibrationInputError, match=r"fewer than 30 respondents .*: tiny \(20\)"):
         calibrate_data(read_responses(path, group_column="site"), name="x")
+    small.loc[small.index[:60], "site"] = "tiny"
+    small.to_csv(path, index=False)
+    with pytest.raises(CalibrationInputError, match=r"fewer than 100 respondents .*: tiny \(60\)"):
+        calibrate_data(read_responses(path, group_column="site"), name="x",
+                       settings=PipelineSettings(min_group_size=100))
+    with pytest.raises(CalibrationInputError, match="cannot be set below 30"):
+        calibrate_data(read_responses(path, group_column="site"), name="x",
+                       settings=PipelineSettings(min_group_size=10))
 
 
 def test_item_without_variance_in_one_group_is_excluded_there(tmp_path: Path) -> None:

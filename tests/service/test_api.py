@@ -158,7 +158,12 @@ def test_publishing_rules_over_the_api(keyed_settings: Settings) -> None:
         tampered["hash"] = ""
         conflict = client.put("/v1/bundles/pantry-checkout/versions/1", json=tampered, headers=headers)
         assert conflict.status_code == 409
-        created = client.post("/v1/bundles/pantry-checkout/versions", json=tampered, headers=headers)
+        # The same calibration again (only its time differs) is not published twice: the answer names it.
+        same = client.post("/v1/bundles/pantry-checkout/versions", json=tampered, headers=headers)
+        assert same.status_code == 200 and same.json()["version"] == 1 and same.json()["created"] is False
+        changed = json.loads(json.dumps(tampered))
+        changed["provenance"]["notes"] = ["recalibrated after a content review"]
+        created = client.post("/v1/bundles/pantry-checkout/versions", json=changed, headers=headers)
         assert created.status_code == 201 and created.json()["version"] == 2
         moved = client.put("/v1/bundles/pantry-checkout/aliases/production", json={"version": 2}, headers=headers)
         assert moved.json() == {"name": "pantry-checkout", "alias": "production", "version": 2}

@@ -58,6 +58,7 @@ def test_two_replicas_share_one_registry(shared_redis: tuple[str, str]) -> None:
         assert from_second.status_code == 200 and from_second.json() == from_first.json()
         # A new version and an alias move through the first replica are what the second one scores with.
         document["created_at"] = "2026-12-05T00:00:00Z"
+        document["provenance"]["notes"] = ["recalibrated after a content review"]  # other content: a new version
         document["hash"] = ""
         created = httpx.post(f"{first}/v1/bundles/pantry-checkout/versions", json=document, headers=auth("publisher"))
         assert created.json()["version"] == 2

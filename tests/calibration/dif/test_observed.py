@@ -9,9 +9,9 @@ import pytest
 from statsmodels.stats.contingency_tables import StratifiedTable
 
 from calibration.dif.observed import (
-    ets_category,
     mantel_haenszel,
     mantel_polytomous,
+    mh_abc_class,
     polytomous_category,
     screen_observed,
 )
@@ -54,13 +54,13 @@ def test_mh_matches_statsmodels_on_our_own_tables() -> None:
 )
 def test_abc_categories(d: float, se: float, p: float, expected: str) -> None:
     # Rule: Zwick (2012) after Petersen (1988), as stated in REFERENCES.md [published].
-    assert ets_category(d, se, p) == expected
+    assert mh_abc_class(d, se, p) == expected
 
 
 def test_greater_than_one_critical_value_is_a_setting() -> None:
     # z = (1.55 - 1) / 0.3 = 1.83: C at the one-sided 1.645, B at 1.96.
-    assert ets_category(-1.55, 0.3, 0.001, greater_than_one_z=1.645) == "C-"
-    assert ets_category(-1.55, 0.3, 0.001, greater_than_one_z=1.96) == "B-"
+    assert mh_abc_class(-1.55, 0.3, 0.001, greater_than_one_z=1.645) == "C-"
+    assert mh_abc_class(-1.55, 0.3, 0.001, greater_than_one_z=1.96) == "B-"
 
 
 def test_mantel_polytomous_against_direct_formula() -> None:

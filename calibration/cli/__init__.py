@@ -1,0 +1,211 @@
+"""The ``equitheta`` command line: the parser and the dispatch to one module per command.
+
+Exit codes: 0 success, 2 bad input (data, spec or arguments), 3 bundle or store
+problem (not found, conflict, damaged file), 1 anything unexpected.
+
+Only ``argparse`` is imported here, so ``--help`` and ``--version`` answer at once; a
+command imports numpy, pandas and the numerical packages when it runs.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+from calibration import __version__
+
+EXIT_OK, EXIT_UNEXPECTED, EXIT_INPUT, EXIT_BUNDLE = 0, 1, 2, 3
+
+
+class UsageError(Exception):
+    """A command-line argument is unusable."""
+
+
+class _Formatter(argparse.ArgumentDefaultsHelpFormatter):
+    """Shows defaults, except where an option has none worth showing."""
+
+    def _get_help_string(self, action: argparse.Action) -> str | None:
+        text = action.help or ""
+        if action.default in (None, False, "", argparse.SUPPRESS) or "%(default)" in text:
+            return text
+        return super()._get_help_string(action)
+
+
+def _positive_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"{text} is not a positive number")
+    return value
+
+
+def _positive_int(text: str) -> int:
+    if not text.strip().isdigit() or int(text) < 1:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number >= 1")
+    return int(text)
+
+
+def _subparser(sub: argparse._SubParsersAction, name: str, text: str) -> argparse.ArgumentParser:
+    return sub.add_parser(name, help=text, description=text, formatter_class=_Formatter)
+
+
+def _add_calibrate(sub: argparse._SubParsersAction) -> None:
+    cal = _subparser(sub, "calibrate", "calibrate a response file and publish the next bundle version")
+    cal.add_argument("responses", type=Path, help="CSV or Parquet: one row per respondent, an id column, items")
+    cal.add_argument("--name", required=True, help="bundle name (lower-case letters, digits, . _ -)")
+    cal.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    cal.add_argument("--id-column", default="id", help="column holding the respondent ids")
+    cal.add_argument("--items", type=Path, help="item spec CSV (item, model, categories, include, label)")
+    cal.add_argument("--model", choices=["2pl", "1pl"], default="2pl", help="model for right/wrong items")
+    cal.add_argument("--slope-prior-sd", type=_positive_float, default=None,
+                     help="log-normal slope prior, log a ~ N(0, SD^2) (default: none, pure marginal ML)")
+    cal.add_argument("--max-iter", type=_positive_int, default=1000, help="most EM iterations per model")
+    cal.add_argument("--tolerance", type=_positive_float, default=1e-5,
+                     help="largest parameter change that counts as converged")
+    cal.add_argument("--alias", help="also point this alias (e.g. production) at the new version")
+    cal.add_argument("--republish", action="store_true",
+                     help="publish a new version even when the store already holds an identical calibration "
+                          "(same data, settings and results); without it nothing changes and the existing "
+                          "version is named")
+    grp = cal.add_argument_group("groups and DIF")
+    grp.add_argument("--group-column", help="column naming each respondent's group: turns on DIF screening, "
+                     "anchors and per-group policies")
+    grp.add_argument("--reference-group", help="the group whose scale is N(0,1) (default: the largest group)")
+    grp.add_argument("--min-group-size", type=_positive_int, default=30,
+                     help="refuse a group smaller than this (30 is the hard floor; below about 500 the summary "
+                          "warns and says what suffers)")
+    grp.add_argument("--dif-action", choices=["exclude", "free"], default="exclude",
+                     help="what a DIF flag does for that group: leave the item out or give it group-specific "
+                          "parameters")
+    grp.add_argument("--anchors", default="", help="comma-separated anchor items (default: chosen by screening)")
+    grp.add_argument("--fdr", type=_positive_float, default=0.05, help="false discovery rate for DIF flags")
+    grp.add_argument("--mh-z", type=_positive_float, default=1.645,
+                     help="critical z of the 'greater than 1' test in the MH A/B/C rule (1.645 or 1.96)")
+    grp.add_argument("--policy-overrides", type=Path,
+                     help="CSV (item, group, status, note): reviewer decisions that override the proposed policy")
+    scale = cal.add_argument_group("reporting scale (score = mean + sd * theta, rounded and bounded)")
+    scale.add_argument("--report-mean", type=float, default=500.0, help="reporting score at theta = 0")
+    scale.add_argument("--report-sd", type=_positive_float, default=100.0, help="reporting points per theta unit")
+    scale.add_argument("--report-min", type=float, default=100.0, help="lowest reporting score")
+    scale.add_argument("--report-max", type=float, default=900.0, help="highest reporting score")
+    scale.add_argument("--report-decimals", type=int, choices=range(0, 7), default=0, metavar="{0..6}",
+                       help="decimal places of the reporting score (its SE keeps one more)")
+
+
+def _add_score(sub: argparse._SubParsersAction) -> None:
+    sc = _subparser(sub, "score", "score a response file with a published bundle")
+    sc.add_argument("responses", type=Path, help="CSV or Parquet: an id column and item columns")
+    sc.add_argument("--bundle", required=True, help="NAME, NAME@VERSION or NAME@ALIAS (NAME: the production "
+                    "alias, else the newest version)")
+    sc.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    sc.add_argument("--out", required=True, type=Path, help="output CSV (written to a temporary name, then renamed)")
+    sc.add_argument("--id-column", default="id", help="column holding the respondent ids")
+    sc.add_argument("--method", choices=["eap", "map", "ml"], help="default: the bundle's scoring method")
+    sc.add_argument("--ignore-columns", default="", help="comma-separated columns that are not items")
+    sc.add_argument("--group-column", help="column naming each respondent's group (needed for bundles with groups)")
+    sc.add_argument("--unknown-group", choices=["error", "reference"], default="error",
+                    help="a group the bundle does not know: an error, or score with the reference group")
+
+
+def _add_bundle(sub: argparse._SubParsersAction) -> None:
+    bun = _subparser(sub, "bundle", "list, show and manage published bundles")
+    bsub = bun.add_subparsers(dest="bundle_command", required=True, metavar="{list,show,alias,alias-back,schema}")
+    bl = _subparser(bsub, "list", "bundles, versions and aliases in a store")
+    bl.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    bs = _subparser(bsub, "show", "summary of one bundle version: parameters, policy with all DIF evidence, "
+                    "quality (or --json for the document)")
+    bs.add_argument("reference", help="NAME, NAME@VERSION or NAME@ALIAS")
+    bs.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    bs.add_argument("--json", action="store_true", help="print the verified bundle document")
+    ba = _subparser(bsub, "alias", "point an alias at a version")
+    ba.add_argument("reference", help="NAME@VERSION")
+    ba.add_argument("alias", help="alias name, e.g. production")
+    ba.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    bb = _subparser(bsub, "alias-back", "move an alias back to the version it pointed to before")
+    bb.add_argument("name", help="bundle name")
+    bb.add_argument("alias", help="alias name")
+    bb.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    _subparser(bsub, "schema", "print the bundle JSON Schema")
+
+
+def _add_serve(sub: argparse._SubParsersAction) -> None:
+    srv = _subparser(sub, "serve", "run the scoring service (uvicorn) over a bundle store")
+    srv.add_argument("--store", required=True, help="bundle directory (or a redis:// URL)")
+    srv.add_argument("--redis-url", help="shared Redis store (overrides --store)")
+    srv.add_argument("--host", default="127.0.0.1", help="address to bind")
+    srv.add_argument("--port", type=int, default=8000, help="port to bind")
+    srv.add_argument("--workers", type=_positive_int, default=1, help="uvicorn worker processes")
+
+
+def _add_demo(sub: argparse._SubParsersAction) -> None:
+    demo = _subparser(sub, "demo", "invent a workforce-skills data set, calibrate, score and summarise it")
+    demo.add_argument("--out", type=Path, default=Path("demo-output"), help="folder for the data, store and scores")
+    demo.add_argument("--respondents", type=_positive_int, default=4500, help="number of invented respondents")
+    demo.add_argument("--seed", type=int, default=20261201, help="random seed of the invented data")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="equitheta", formatter_class=_Formatter,
+        description="Calibrate IRT item banks across groups, publish versioned calibration bundles and score "
+                    "responses.",
+    )
+    parser.add_argument("--version", action="version", version=f"equitheta {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+    for add in (_add_calibrate, _add_score, _add_bundle, _add_serve, _add_demo):
+        add(sub)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    from calibration.cli.console import error_console
+
+    if args.command == "serve":  # needs no numerics: answer without importing them
+        from calibration.cli.serve import run_serve
+
+        try:
+            return run_serve(args)
+        except UsageError as exc:
+            error_console().print(f"[bold red]error:[/] {exc}", highlight=False)
+            return EXIT_INPUT
+    return _run(args)
+
+
+def _run(args: argparse.Namespace) -> int:
+    from calibration.bundle.canonical import BundleError
+    from calibration.cli.console import error_console
+    from calibration.errors import CalibrationInputError, InputError, UnknownGroup
+
+    try:
+        if args.command == "calibrate":
+            from calibration.cli.calibrate import run_calibrate
+
+            return run_calibrate(args)
+        if args.command == "score":
+            from calibration.cli.score import run_score
+
+            return run_score(args)
+        if args.command == "bundle":
+            from calibration.cli.bundle import run_bundle
+
+            return run_bundle(args)
+        if args.command == "demo":
+            from calibration.cli.demo import run_demo
+
+            return run_demo(args)
+    except (InputError, CalibrationInputError, UsageError, UnknownGroup) as exc:
+        error_console().print(f"[bold red]error:[/] {exc}", highlight=False)
+        return EXIT_INPUT
+    except BundleError as exc:
+        error_console().print(f"[bold red]bundle error:[/] {exc}", highlight=False)
+        return EXIT_BUNDLE
+    return EXIT_UNEXPECTED
+
+
+if __name__ == "__main__":
+    sys.exit(main())

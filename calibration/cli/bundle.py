@@ -1,0 +1,50 @@
+"""`equitheta bundle list|show|alias|alias-back|schema`."""
+
+from __future__ import annotations
+
+import argparse
+import json
+
+from calibration.bundle import Bundle, open_store, parse_reference, resolve
+from calibration.cli import UsageError
+from calibration.cli.console import new_table, out_console
+from calibration.cli.render import print_bundle_details, print_calibration_summary
+
+
+def run_bundle(args: argparse.Namespace) -> int:
+    console = out_console()
+    if args.bundle_command == "schema":
+        console.print_json(json.dumps(Bundle.model_json_schema()))
+        return 0
+    store = open_store(args.store)
+    if args.bundle_command == "list":
+        names = store.names()
+        if not names:
+            console.print("no bundles in this store", highlight=False)
+            return 0
+        table = new_table("bundles", ["name", "versions", "aliases"])
+        for name in names:
+            aliases = ", ".join(f"{a} -> {r.version}" for a, r in sorted(store.aliases(name).items()))
+            table.add_row(name, ", ".join(map(str, store.versions(name))), aliases or "-")
+        console.print(table)
+        return 0
+    if args.bundle_command == "show":
+        bundle = resolve(store, args.reference)
+        if args.json:
+            console.print_json(bundle.model_dump_json())
+        else:
+            print_calibration_summary(bundle)
+            print_bundle_details(bundle)
+        return 0
+    if args.bundle_command == "alias":
+        name, ref = parse_reference(args.reference)
+        if not isinstance(ref, int):
+            raise UsageError("bundle alias needs NAME@VERSION, e.g. skills@3")
+        record = store.set_alias(name, args.alias, ref)
+        console.print(f"{name}: alias {record.alias} -> {record.version}", highlight=False)
+        return 0
+    if args.bundle_command == "alias-back":
+        record = store.alias_back(args.name, args.alias)
+        console.print(f"{args.name}: alias {record.alias} moved back -> {record.version}", highlight=False)
+        return 0
+    return 1

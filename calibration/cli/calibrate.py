@@ -1,0 +1,102 @@
+"""`equitheta calibrate`: read, check, calibrate, then publish (the summary is rendered before the store is touched)."""
+
+from __future__ import annotations
+
+import argparse
+from typing import TYPE_CHECKING
+
+from calibration.bundle import Bundle, open_store, parse_reference
+from calibration.bundle.store import find_identical
+from calibration.cli.console import ProgressReporter, out_console
+from calibration.cli.render import print_calibration_summary
+from calibration.io import ResponseData, read_item_spec, read_policy_overrides, read_responses
+
+if TYPE_CHECKING:  # the numerical packages load only once the inputs have been read and checked
+    from calibration.pipeline import PipelineSettings, PolicyOverride
+
+STAGES = {
+    "screen": "observed-score and all-other-anchor DIF screening",
+    "scalar": "scalar model (all items equal across groups)",
+    "test": "anchored DIF tests and the invariance ladder",
+    "final": "final calibration under the item policy",
+    "quality": "quality checks and conversion tables",
+}
+
+
+def settings_from_args(args: argparse.Namespace) -> PipelineSettings:
+    from calibration.bundle.schema import ReportingScaleSettings
+    from calibration.dif.irt import DifSettings
+    from calibration.estimation import EMSettings, SlopePrior
+    from calibration.pipeline import PipelineSettings
+
+    anchors = tuple(a.strip() for a in args.anchors.split(",") if a.strip())
+    return PipelineSettings(
+        dif=DifSettings(alpha=args.fdr, anchors=anchors),
+        dif_action=args.dif_action,
+        mh_greater_than_one_z=args.mh_z,
+        min_group_size=args.min_group_size,
+        em=EMSettings(
+            max_iter=args.max_iter,
+            tolerance=args.tolerance,
+            slope_prior=None if args.slope_prior_sd is None else SlopePrior(0.0, args.slope_prior_sd),
+        ),
+        reporting_scale=ReportingScaleSettings(
+            location=args.report_mean, scale=args.report_sd, decimals=args.report_decimals,
+            minimum=args.report_min, maximum=args.report_max,
+        ),
+    )
+
+
+def run_calibrate(args: argparse.Namespace) -> int:
+    parse_reference(args.name)  # a bad name fails before the work, not after
+    spec = read_item_spec(args.items) if args.items else None
+    data = read_responses(args.responses, id_column=args.id_column, item_spec=spec, dichotomous_model=args.model,
+                          group_column=args.group_column)
+    rows = read_policy_overrides(args.policy_overrides) if args.policy_overrides else []
+    store = open_store(args.store)
+    from calibration.pipeline import PolicyOverride
+
+    settings = settings_from_args(args)
+    overrides = [PolicyOverride(*row) for row in rows]
+    bundle = _run_calibration(data, args.name, settings, args.reference_group, overrides)
+    console = out_console()
+    # Render first: once the store holds the version, nothing may fail any more.
+    with console.capture() as captured:
+        print_calibration_summary(bundle)
+    summary = captured.get()
+    identical = None if args.republish else find_identical(store, bundle)
+    if identical is not None:
+        console.file.write(summary)
+        console.print(f"identical to the published [bold]{identical.label}[/] (same data, settings and results; "
+                      f"sha256 {identical.hash[:16]}...): nothing published"
+                      + (f", alias {args.alias} not moved (use `equitheta bundle alias`)" if args.alias else "")
+                      + "; pass --republish to publish a new version anyway", highlight=False)
+        return 0
+    published = store.publish(bundle)
+    alias = store.set_alias(published.name, args.alias, published.version) if args.alias else None
+    console.file.write(summary)
+    console.print(f"published [bold]{published.label}[/] (sha256 {published.hash[:16]}...)"
+                  + (f"; alias {alias.alias} -> {alias.version}" if alias else ""), highlight=False)
+    return 0
+
+
+def _run_calibration(
+    data: ResponseData, name: str, settings: PipelineSettings, reference_group: str | None,
+    overrides: list[PolicyOverride],
+) -> Bundle:
+    from calibration.pipeline import calibrate_data
+
+    with ProgressReporter(f"calibrating {data.n_items} items, {data.n_persons} respondents") as progress:
+
+        def report(stage: str, step: int, value: float) -> None:
+            label = STAGES.get(stage, stage)
+            if stage in ("scalar", "final") and step:
+                label += f": EM iteration {step}, log-likelihood {value:,.3f}"
+            elif stage in ("screen", "test") and step:
+                label += f": {step} of {int(value)} item x group tests"
+            progress.update(stage, label)
+
+        # Non-convergence is reported in the bundle's warnings (the pipeline's fits do not warn).
+        outcome = calibrate_data(data, name=name, settings=settings, reference_group=reference_group,
+                                 overrides=overrides, progress=report)
+    return outcome.bundle

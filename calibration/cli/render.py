@@ -1,0 +1,210 @@
+"""Summaries of a bundle for people: what `calibrate` prints and what `bundle show` adds.
+
+Every value goes through :func:`dash`, so a statistic that does not exist (the LR test
+of a rung with no freed cell, an alpha without complete rows) prints as a dash.
+"""
+
+from __future__ import annotations
+
+from calibration.bundle.schema import Bundle, IrtDifRow, ObservedDifRow
+from calibration.cli.console import dash, new_table, out_console
+
+CAUTION = (
+    "Every score carries measurement error: report the SE with it. Scores with low reliability or few "
+    "answered items must not drive individual high-stakes decisions; follow the professional testing "
+    "standards and local rules that govern the assessment."
+)
+DIF_CAUTION = (
+    "DIF flags are statistical evidence, not verdicts: content experts review every flagged item before it is "
+    "left out or treated differently for a group. Leaving an item out for one group changes that group's "
+    "content coverage."
+)
+# Observed-score classes and logistic levels that count as "this method sees DIF".
+OBSERVED_CONCERN_CLASSES = ("B", "C")
+LOGISTIC_CONCERN_LEVELS = ("moderate", "large")
+# Theta points at which `bundle show` prints the test information.
+INFORMATION_THETAS = (-3.0, -2.0, -1.0, 0.0, 1.0, 2.0, 3.0)
+
+
+def print_calibration_summary(bundle: Bundle) -> None:
+    """Headline, item parameters, groups, anchors, policy with evidence, ladder, warnings."""
+    console = out_console()
+    reference = bundle.metric.reference_group
+    group = bundle.quality.by_group[reference]
+    grouped = len(bundle.metric.groups) > 1
+    fit = bundle.fit
+    console.print(f"[bold]{bundle.name}[/]: {len(bundle.items)} items, {bundle.provenance.n_respondents} respondents "
+                  f"({bundle.provenance.data_source})", highlight=False)
+    which = "final model under the item policy" if grouped else "model"
+    console.print(f"  {which}: log-likelihood {fit.log_likelihood:,.3f}  AIC {fit.aic:,.1f}  BIC {fit.bic:,.1f}  "
+                  f"{'converged' if fit.converged else 'NOT converged'} after {fit.n_iter} EM iterations",
+                  highlight=False)
+    if grouped:
+        console.print("  (excluded cells count as not administered in the final model, so its log-likelihood is "
+                      "not comparable with the invariance ladder's below)", highlight=False)
+    where = f"reference group {reference}" if grouped else "all respondents"
+    console.print(f"  {where}: alpha {dash(group.alpha)}  marginal reliability {dash(group.marginal_reliability)}"
+                  + ("  (every group: see the groups table)" if grouped else ""), highlight=False)
+    table = new_table("item parameters (slope-threshold form; SE in brackets)",
+                      ["item", "model", "slope", "thresholds", "item-rest r"], right=("slope", "item-rest r"))
+    for item in bundle.items:
+        thresholds = "  ".join(
+            dash(b, ".2f") + ("" if s is None else f" ({s:.2f})")
+            for b, s in zip(item.thresholds, item.threshold_se, strict=True)
+        )
+        slope = dash(item.slope) + ("" if item.slope_se is None else f" ({item.slope_se:.3f})")
+        table.add_row(item.id, item.model, slope, thresholds, dash(item.item_rest_correlation, ".2f"))
+    console.print(table)
+    for item in bundle.excluded_items:
+        console.print(f"  [yellow]left out[/] {item.id}: {item.reason}", highlight=False)
+    if grouped:
+        _print_groups(bundle)
+        print_policy_evidence(bundle)
+        _print_ladder(bundle)
+    for warning in bundle.quality.warnings:
+        console.print(f"  [yellow]warning:[/] {warning}", highlight=False)
+
+
+def _print_groups(bundle: Bundle) -> None:
+    console = out_console()
+    groups = new_table(f"groups (reference: {bundle.metric.reference_group})",
+                       ["group", "n", "latent mean (SE)", "latent SD (SE)", "alpha", "marginal reliability",
+                        "items left out"], right=("n", "alpha", "marginal reliability", "items left out"))
+    for g in bundle.metric.groups:
+        q = bundle.quality.by_group[g.name]
+        left_out = sum(1 for item in bundle.items if item.policy[g.name].status == "excluded")
+        groups.add_row(
+            g.name, str(g.n_respondents),
+            dash(g.latent_mean) + ("" if g.latent_mean_se is None else f" ({g.latent_mean_se:.3f})"),
+            dash(g.latent_sd) + ("" if g.latent_sd_se is None else f" ({g.latent_sd_se:.3f})"),
+            dash(q.alpha), dash(q.marginal_reliability), str(left_out),
+        )
+    console.print(groups)
+    anchors = bundle.anchors
+    console.print(f"  anchors: {', '.join(anchors.items) or 'none'} ({anchors.method})", highlight=False)
+
+
+def _observed_text(row: ObservedDifRow | None) -> str:
+    if row is None:
+        return "-"
+    if row.method == "mantel-haenszel":
+        return f"MH D-DIF {dash(row.mh_d_dif, '.2f')} ({row.dif_class})"
+    return f"Mantel SMD/SD {dash(row.smd_over_sd, '.2f')} ({row.dif_class})"
+
+
+def _logistic_text(row: ObservedDifRow | None) -> str:
+    if row is None or row.logistic_delta_r2 is None:
+        return "-"
+    return f"{row.logistic_delta_r2:.3f} ({row.logistic_level or '-'})"
+
+
+def _irt_text(row: IrtDifRow | None) -> tuple[str, str, str]:
+    if row is None:
+        return "-", "-", "-"
+    effect = dash(row.effect_theta, ".2f")
+    if row.effect_theta is not None and row.effect_theta_se is not None:
+        low = max(row.effect_theta - 1.96 * row.effect_theta_se, 0.0)
+        effect += f" [{low:.2f}, {row.effect_theta + 1.96 * row.effect_theta_se:.2f}]"
+    return f"{row.g2_omnibus:.1f} ({row.df_omnibus})", dash(row.p_adjusted, ".3g"), f"{effect} {row.level}"
+
+
+def agreement(irt: IrtDifRow | None, observed: ObservedDifRow | None) -> str:
+    """Whether the IRT test and the observed-score methods point the same way, in words."""
+    irt_flag = irt is not None and irt.flagged
+    observed_flag = observed is not None and (
+        observed.dif_class[:1] in OBSERVED_CONCERN_CLASSES or observed.logistic_level in LOGISTIC_CONCERN_LEVELS
+    )
+    if irt_flag and observed_flag:
+        return "agree: DIF"
+    if irt_flag:
+        return "disagree: IRT flags it, the observed-score methods call it negligible"
+    if observed_flag:
+        return "disagree: observed-score methods see DIF, the IRT test does not flag it"
+    return "agree: no DIF"
+
+
+def print_policy_evidence(bundle: Bundle) -> None:
+    """Every cell that is not invariant or that any method flags, with all the evidence side by side."""
+    console = out_console()
+    if bundle.dif is None:
+        return
+    irt = {(r.item, r.group): r for r in bundle.dif.irt if r.stage == "test"}
+    observed = {(r.item, r.group): r for r in bundle.dif.observed}
+    table = new_table(
+        "item policy and DIF evidence (cells not invariant, or flagged by any method; proposals for review)",
+        ["item", "group", "policy", "IRT G2 (df)", "FDR p", "effect, theta units [95%]", "observed score",
+         "logistic dR2", "methods"],
+        right=("IRT G2 (df)", "FDR p"),
+    )
+    for item in bundle.items:
+        for group, policy in item.policy.items():
+            if group == bundle.metric.reference_group:
+                continue
+            key = (item.id, group)
+            verdict = agreement(irt.get(key), observed.get(key))
+            if policy.status == "invariant" and verdict == "agree: no DIF":
+                continue
+            g2, p, effect = _irt_text(irt.get(key))
+            status = policy.status if policy.status == "invariant" else f"[bold]{policy.status}[/]"
+            if policy.reason.startswith("reviewer override"):
+                status += " (reviewer)"
+            table.add_row(item.id, group, status, g2, p, effect, _observed_text(observed.get(key)),
+                          _logistic_text(observed.get(key)), verdict)
+    if table.row_count:
+        console.print(table)
+        for item in bundle.items:
+            for group, policy in item.policy.items():
+                if policy.status != "invariant":
+                    console.print(f"  {item.id} in {group}: {policy.status}: {policy.reason}", highlight=False)
+    else:
+        console.print("  no item was flagged for DIF in any group by any method", highlight=False)
+    console.print(f"  [dim]{DIF_CAUTION}[/]", highlight=False)
+
+
+def _print_ladder(bundle: Bundle) -> None:
+    if not bundle.invariance:
+        return
+    ladder = new_table("invariance ladder (all rungs on the same data)",
+                       ["model", "log-likelihood", "parameters", "AIC", "BIC", "LR test"],
+                       right=("log-likelihood", "parameters", "AIC", "BIC"))
+    for row in bundle.invariance:
+        if row.lr_statistic is None or row.compared_with is None:
+            test = "-"
+        elif not row.df:
+            test = f"vs {row.compared_with}: same model (no cell freed)"
+        else:
+            test = f"vs {row.compared_with}: {row.lr_statistic:.1f} on {row.df} df, p = {dash(row.p_value, '.3g')}"
+        ladder.add_row(row.model, dash(row.log_likelihood, ",.1f"), str(row.n_parameters), dash(row.aic, ",.1f"),
+                       dash(row.bic, ",.1f"), test)
+    out_console().print(ladder)
+
+
+def print_bundle_details(bundle: Bundle) -> None:
+    """What `bundle show` adds to the summary: item quality, dimensionality, test information."""
+    console = out_console()
+    for group, quality in bundle.quality.by_group.items():
+        title = "item quality" + ("" if len(bundle.quality.by_group) == 1 else f" in group {group}")
+        table = new_table(title, ["item", "item-rest r", "alpha if deleted", "S-X2 (df)", "S-X2 p", "RMSD"],
+                          right=("item-rest r", "alpha if deleted", "S-X2 (df)", "S-X2 p", "RMSD"))
+        for item, q in quality.items.items():
+            s_x2 = "-" if q.s_x2 is None else f"{q.s_x2:.1f} ({dash(q.s_x2_df, 'd')})"
+            table.add_row(item, dash(q.item_rest_correlation, ".2f"), dash(q.alpha_if_deleted), s_x2,
+                          dash(q.s_x2_p, ".3g"), dash(q.rmsd))
+        console.print(table)
+        dims = quality.dimensionality
+        if dims is not None:
+            console.print(
+                f"  dimensionality{'' if len(bundle.quality.by_group) == 1 else f' ({group})'}: first-to-second "
+                f"eigenvalue ratio {dash(dims.eigenvalue_ratio, '.2f')}, largest eigenvalue of the residual PCA "
+                f"{dash(dims.residual_pca_first_eigenvalue, '.2f')} ({dims.n_complete} complete rows)",
+                highlight=False,
+            )
+    info = bundle.quality.test_information
+    table = new_table(f"test information, reference group {bundle.metric.reference_group}",
+                      ["theta", "information", "SE"], right=("theta", "information", "SE"))
+    for target in INFORMATION_THETAS:
+        nearest = min(range(len(info.theta)), key=lambda i: abs(info.theta[i] - target))
+        table.add_row(f"{info.theta[nearest]:.1f}", dash(info.information[nearest], ".2f"), dash(info.se[nearest]))
+    console.print(table)
+    console.print(f"  version {bundle.version}, created {bundle.created_at}, sha256 {bundle.hash}", highlight=False)
+    console.print(f"  [dim]{CAUTION}[/]", highlight=False)

@@ -1,0 +1,38 @@
+"""The errors a user can cause, in one light module (no numpy, pandas or scipy at import).
+
+The command line imports these to map them to exit codes before any numerical package
+is loaded, so a bad argument or a missing file answers at once.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+
+class InputError(ValueError):
+    """A data or spec file cannot be used; ``problems`` lists each finding."""
+
+    def __init__(self, source: str, problems: Sequence[str], *, total: int | None = None) -> None:
+        self.source = source
+        self.problems = list(problems)
+        self.total = total if total is not None else len(self.problems)
+        more = f"\n  ... and {self.total - len(self.problems)} more" if self.total > len(self.problems) else ""
+        listing = "\n".join(f"  - {p}" for p in self.problems)
+        super().__init__(f"{source}: {self.total} problem(s)\n{listing}{more}")
+
+
+class CalibrationInputError(ValueError):
+    """The data cannot support a calibration (too few respondents or items, unknown group or anchor)."""
+
+
+class UnknownGroup(ValueError):
+    """Respondents whose group is not a group of the bundle (or who name none where one is needed).
+
+    ``problems`` lists (0-based respondent position, group or None) for every such respondent;
+    ``index`` and ``group`` are the first of them.
+    """
+
+    def __init__(self, message: str, *, problems: list[tuple[int, str | None]]) -> None:
+        super().__init__(message)
+        self.problems = problems
+        self.index, self.group = problems[0]
