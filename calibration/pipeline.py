@@ -176,17 +176,34 @@ def _group_setup(data: ResponseData, reference_group: str | None) -> tuple[list[
     return ordered, np.array([lookup[str(g)] for g in labels], dtype=np.int64)
 
 
-def calibrate_data(
+@dataclass(frozen=True)
+class PreparedData:
+    """The checked data a calibration runs on: group order, items kept, categories merged."""
+
+    group_names: list[str]  # reference first
+    group_index: np.ndarray  # each row's group position
+    x: np.ndarray  # (n_persons, n_items kept), merged categories applied
+    item_ids: tuple[str, ...]
+    k: np.ndarray
+    models: tuple[str, ...]
+    category_maps: dict[int, list[int]]
+    excluded_items: list[ExcludedItem]
+    no_variance_cells: dict[tuple[int, int], str]
+    notes: list[str]
+
+
+def prepare_data(
     data: ResponseData,
     *,
-    name: str,
-    settings: PipelineSettings | None = None,
+    settings: PipelineSettings,
     reference_group: str | None = None,
     overrides: Sequence[PolicyOverride] = (),
-    progress: Callable[[str, int, float], None] | None = None,
-) -> CalibrationOutcome:
-    """Calibrate a response table (one or several groups) and build the unpublished bundle."""
-    settings = settings or PipelineSettings()
+) -> PreparedData:
+    """Every check that needs no model fit: sizes, variance, sparse categories, overrides, anchors.
+
+    Raises :class:`CalibrationInputError` naming what is wrong; cheap enough to run before a
+    progress display starts (the command line does).
+    """
     if settings.dif_action not in DIF_ACTIONS:
         raise CalibrationInputError(f"dif action {settings.dif_action!r} is not one of {', '.join(DIF_ACTIONS)}")
     group_names, group_index = _group_setup(data, reference_group)
@@ -256,6 +273,28 @@ def calibrate_data(
     _check_anchors(settings.dif.anchors, item_ids, data.item_ids, excluded_items, n_groups)
     # An item merged down to two categories becomes a 2PL item.
     models = tuple("2pl" if k[pos] == 2 and data.models[j] == "grm" else data.models[j] for pos, j in enumerate(keep))
+    return PreparedData(group_names, group_index, x, item_ids, k, models, category_maps, excluded_items,
+                        no_variance_cells, notes)
+
+
+def calibrate_data(
+    data: ResponseData,
+    *,
+    name: str,
+    settings: PipelineSettings | None = None,
+    reference_group: str | None = None,
+    overrides: Sequence[PolicyOverride] = (),
+    progress: Callable[[str, int, float], None] | None = None,
+) -> CalibrationOutcome:
+    """Calibrate a response table (one or several groups) and build the unpublished bundle."""
+    settings = settings or PipelineSettings()
+    prepared = prepare_data(data, settings=settings, reference_group=reference_group, overrides=overrides)
+    group_names, group_index, x, item_ids, k, models = (
+        prepared.group_names, prepared.group_index, prepared.x, prepared.item_ids, prepared.k, prepared.models
+    )
+    n_groups = len(group_names)
+    category_maps, excluded_items = prepared.category_maps, prepared.excluded_items
+    no_variance_cells, notes = prepared.no_variance_cells, list(prepared.notes)
     n_items = len(item_ids)
 
     def em_progress(stage: str) -> Callable[[int, float], None]:

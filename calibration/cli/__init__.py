@@ -171,7 +171,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         try:
             return run_serve(args)
         except UsageError as exc:
-            error_console().print(f"[bold red]error:[/] {exc}", highlight=False)
+            error_console().print(f"error: {exc}", style="bold", highlight=False)
             return EXIT_INPUT
     return _run(args)
 
@@ -199,10 +199,10 @@ def _run(args: argparse.Namespace) -> int:
 
             return run_demo(args)
     except (InputError, CalibrationInputError, UsageError, UnknownGroup) as exc:
-        error_console().print(f"[bold red]error:[/] {exc}", highlight=False)
+        error_console().print(f"error: {exc}", style="bold", highlight=False)
         return EXIT_INPUT
     except BundleError as exc:
-        error_console().print(f"[bold red]bundle error:[/] {exc}", highlight=False)
+        error_console().print(f"bundle error: {exc}", style="bold", highlight=False)
         return EXIT_BUNDLE
     return EXIT_UNEXPECTED
 

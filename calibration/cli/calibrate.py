@@ -54,10 +54,12 @@ def run_calibrate(args: argparse.Namespace) -> int:
                           group_column=args.group_column)
     rows = read_policy_overrides(args.policy_overrides) if args.policy_overrides else []
     store = open_store(args.store)
-    from calibration.pipeline import PolicyOverride
+    from calibration.pipeline import PolicyOverride, prepare_data
 
     settings = settings_from_args(args)
     overrides = [PolicyOverride(*row) for row in rows]
+    # Every check that needs no fit (sizes, overrides, named anchors) answers before any work starts.
+    prepare_data(data, settings=settings, reference_group=args.reference_group, overrides=overrides)
     bundle = _run_calibration(data, args.name, settings, args.reference_group, overrides)
     console = out_console()
     # Render first: once the store holds the version, nothing may fail any more.
@@ -67,7 +69,7 @@ def run_calibrate(args: argparse.Namespace) -> int:
     identical = None if args.republish else find_identical(store, bundle)
     if identical is not None:
         console.file.write(summary)
-        console.print(f"identical to the published [bold]{identical.label}[/] (same data, settings and results; "
+        console.print(f"identical to the published {identical.label} (same data, settings and results; "
                       f"sha256 {identical.hash[:16]}...): nothing published"
                       + (f", alias {args.alias} not moved (use `equitheta bundle alias`)" if args.alias else "")
                       + "; pass --republish to publish a new version anyway", highlight=False)
@@ -75,7 +77,7 @@ def run_calibrate(args: argparse.Namespace) -> int:
     published = store.publish(bundle)
     alias = store.set_alias(published.name, args.alias, published.version) if args.alias else None
     console.file.write(summary)
-    console.print(f"published [bold]{published.label}[/] (sha256 {published.hash[:16]}...)"
+    console.print(f"published {published.label} (sha256 {published.hash[:16]}...)"
                   + (f"; alias {alias.alias} -> {alias.version}" if alias else ""), highlight=False)
     return 0
 

@@ -8,7 +8,6 @@ and names) and progress becomes plain lines with the elapsed time.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
 from functools import cache
 
 from rich.console import Console
@@ -21,10 +20,11 @@ PROGRESS_INTERVAL = 5.0
 
 
 def _console(*, stderr: bool) -> Console:
-    probe = Console(stderr=stderr)
+    # No markup: ids, names and messages are printed as they are ("[x]" in an item id stays).
+    probe = Console(stderr=stderr, markup=False)
     if probe.is_terminal:
         return probe
-    return Console(stderr=stderr, width=UNBOUNDED_WIDTH, soft_wrap=True)
+    return Console(stderr=stderr, width=UNBOUNDED_WIDTH, soft_wrap=True, markup=False)
 
 
 @cache
@@ -45,11 +45,6 @@ def new_table(title: str, columns: list[str], *, right: tuple[str, ...] = ()) ->
     for column in columns:
         table.add_column(column, justify="right" if column in right else "left", overflow="fold")
     return table
-
-
-def print_table(table: Table) -> None:
-    """Print a table with its rows, or say it has none."""
-    out_console().print(table)
 
 
 class ProgressReporter:
@@ -84,7 +79,7 @@ class ProgressReporter:
 
     def _line(self, text: str) -> None:
         self._last_line = time.monotonic()
-        self.console.print(f"[{self._last_line - self.started:8.1f} s] {text}", highlight=False, markup=False)
+        self.console.print(f"[{self._last_line - self.started:8.1f} s] {text}", highlight=False)
 
     def update(self, stage: str, text: str) -> None:
         """Show ``text``; ``stage`` names the step (a new stage always prints a line)."""
@@ -108,5 +103,3 @@ def dash(value: float | int | None, spec: str = ".3f") -> str:
     except (TypeError, ValueError):
         return str(value)
 
-
-Printer = Callable[..., None]

@@ -20,7 +20,7 @@ def run_demo(args: argparse.Namespace) -> int:
     root.mkdir(parents=True, exist_ok=True)
     data_path = root / "tidewater_skills_responses.csv"
     write_csv_atomic(make_demo_responses(args.respondents, seed=args.seed), data_path)
-    console.print("[bold]equitheta demo: Tidewater Regional Skills Check (invented data)[/]", highlight=False)
+    console.print("equitheta demo: Tidewater Regional Skills Check (invented data)", highlight=False)
     console.print(f"1. invented {args.respondents} respondents at three sites x 24 items -> {data_path}",
                   highlight=False)
     store_dir = root / "store"

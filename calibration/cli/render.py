@@ -33,7 +33,7 @@ def print_calibration_summary(bundle: Bundle) -> None:
     group = bundle.quality.by_group[reference]
     grouped = len(bundle.metric.groups) > 1
     fit = bundle.fit
-    console.print(f"[bold]{bundle.name}[/]: {len(bundle.items)} items, {bundle.provenance.n_respondents} respondents "
+    console.print(f"{bundle.name}: {len(bundle.items)} items, {bundle.provenance.n_respondents} respondents "
                   f"({bundle.provenance.data_source})", highlight=False)
     which = "final model under the item policy" if grouped else "model"
     console.print(f"  {which}: log-likelihood {fit.log_likelihood:,.3f}  AIC {fit.aic:,.1f}  BIC {fit.bic:,.1f}  "
@@ -56,13 +56,13 @@ def print_calibration_summary(bundle: Bundle) -> None:
         table.add_row(item.id, item.model, slope, thresholds, dash(item.item_rest_correlation, ".2f"))
     console.print(table)
     for item in bundle.excluded_items:
-        console.print(f"  [yellow]left out[/] {item.id}: {item.reason}", highlight=False)
+        console.print(f"  left out {item.id}: {item.reason}", highlight=False)
     if grouped:
         _print_groups(bundle)
         print_policy_evidence(bundle)
         _print_ladder(bundle)
     for warning in bundle.quality.warnings:
-        console.print(f"  [yellow]warning:[/] {warning}", highlight=False)
+        console.print(f"  warning: {warning}", highlight=False)
 
 
 def _print_groups(bundle: Bundle) -> None:
@@ -145,7 +145,7 @@ def print_policy_evidence(bundle: Bundle) -> None:
             if policy.status == "invariant" and verdict == "agree: no DIF":
                 continue
             g2, p, effect = _irt_text(irt.get(key))
-            status = policy.status if policy.status == "invariant" else f"[bold]{policy.status}[/]"
+            status = policy.status if policy.status == "invariant" else f"{policy.status}"
             if policy.reason.startswith("reviewer override"):
                 status += " (reviewer)"
             table.add_row(item.id, group, status, g2, p, effect, _observed_text(observed.get(key)),
@@ -158,7 +158,7 @@ def print_policy_evidence(bundle: Bundle) -> None:
                     console.print(f"  {item.id} in {group}: {policy.status}: {policy.reason}", highlight=False)
     else:
         console.print("  no item was flagged for DIF in any group by any method", highlight=False)
-    console.print(f"  [dim]{DIF_CAUTION}[/]", highlight=False)
+    console.print(f"  {DIF_CAUTION}", style="dim", highlight=False)
 
 
 def _print_ladder(bundle: Bundle) -> None:
@@ -207,4 +207,4 @@ def print_bundle_details(bundle: Bundle) -> None:
         table.add_row(f"{info.theta[nearest]:.1f}", dash(info.information[nearest], ".2f"), dash(info.se[nearest]))
     console.print(table)
     console.print(f"  version {bundle.version}, created {bundle.created_at}, sha256 {bundle.hash}", highlight=False)
-    console.print(f"  [dim]{CAUTION}[/]", highlight=False)
+    console.print(f"  {CAUTION}", style="dim", highlight=False)

@@ -116,4 +116,4 @@ def _print_score_summary(frame: pd.DataFrame, bundle: Bundle, path: Path) -> Non
     if flagged.any():
         counts = frame.loc[flagged, "flags"].str.split(";").explode().value_counts()
         console.print("  flags: " + ", ".join(f"{k} {v}" for k, v in counts.items()), highlight=False)
-    console.print(f"  [dim]{CAUTION}[/]", highlight=False)
+    console.print(f"  {CAUTION}", style="dim", highlight=False)
