@@ -28,9 +28,14 @@ from calibration.io import ResponseData
 from calibration.pipeline import calibrate_data
 
 
-def simulate(rng: np.random.Generator, n_items: int, n_per_group: int, dif: dict[tuple[int, int], float],
-             means: tuple[float, ...] = (0.0, 0.3, -0.3), sds: tuple[float, ...] = (1.0, 1.1, 0.9)
-             ) -> tuple[np.ndarray, np.ndarray]:
+def simulate(
+    rng: np.random.Generator,
+    n_items: int,
+    n_per_group: int,
+    dif: dict[tuple[int, int], float],
+    means: tuple[float, ...] = (0.0, 0.3, -0.3),
+    sds: tuple[float, ...] = (1.0, 1.1, 0.9),
+) -> tuple[np.ndarray, np.ndarray]:
     a = rng.uniform(0.8, 2.0, n_items)
     c = -a * rng.normal(0.0, 1.0, n_items)
     blocks, labels = [], []
@@ -51,9 +56,15 @@ def pipeline_timing() -> dict[str, float]:
     dif = {(3, 1): 0.6, (11, 1): 0.6, (20, 2): 0.6, (31, 2): 0.6}
     x, groups = simulate(rng, 40, 10_000, dif)
     names = np.array(["ref", "focal-a", "focal-b"])[groups]
-    data = ResponseData(ids=tuple(map(str, range(x.shape[0]))), item_ids=tuple(f"I{j:02d}" for j in range(40)),
-                        responses=x, n_categories=np.full(40, 2), models=("2pl",) * 40, groups=tuple(names),
-                        source="simulated")
+    data = ResponseData(
+        ids=tuple(map(str, range(x.shape[0]))),
+        item_ids=tuple(f"I{j:02d}" for j in range(40)),
+        responses=x,
+        n_categories=np.full(40, 2),
+        models=("2pl",) * 40,
+        groups=tuple(names),
+        source="simulated",
+    )
     stamps: dict[str, float] = {}
     state = {"stage": None, "since": time.perf_counter()}
 
@@ -84,9 +95,17 @@ def replications(n_reps: int, n_per_group: int = 1000, n_items: int = 20, fdr: f
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ConvergenceWarning)
             scalar = calibrate_groups(x, k, groups, 3, settings=EMSettings(standard_errors=False))
-            outcome = run_irt_dif(x, k, groups, 3, scalar, item_ids=tuple(f"I{j}" for j in range(n_items)),
-                                  models=("2pl",) * n_items, settings=DifSettings(alpha=fdr),
-                                  em_settings=EMSettings())
+            outcome = run_irt_dif(
+                x,
+                k,
+                groups,
+                3,
+                scalar,
+                item_ids=tuple(f"I{j}" for j in range(n_items)),
+                models=("2pl",) * n_items,
+                settings=DifSettings(alpha=fdr),
+                em_settings=EMSettings(),
+            )
         if set(outcome.anchors) & {j for j, _ in dif}:
             contaminated += 1
         for j in range(n_items):
@@ -129,8 +148,10 @@ def main(argv: list[str] | None = None) -> int:
         print(f"  {'total':>8}: {t['total']:6.2f} s; cells not invariant: {int(t['flagged_cells'])}")
     start = time.perf_counter()
     r = replications(args.replications, fdr=args.fdr)
-    print(f"{r['replications']} replications, N = 1,000 per group, 20 items, 2 focal groups, "
-          f"0.6-logit uniform DIF in 2 items per focal group, FDR {args.fdr} ({time.perf_counter() - start:.0f} s):")
+    print(
+        f"{r['replications']} replications, N = 1,000 per group, 20 items, 2 focal groups, "
+        f"0.6-logit uniform DIF in 2 items per focal group, FDR {args.fdr} ({time.perf_counter() - start:.0f} s):"
+    )
     print(f"  Type I error of final flags (clean cells): {r['type_one_error']:.4f}")
     print(f"  power (DIF cells flagged):                 {r['power']:.4f}")
     print(f"  anchor contamination rate:                 {r['anchor_contamination']:.4f}")

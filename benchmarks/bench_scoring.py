@@ -45,8 +45,10 @@ def main() -> int:
     print(f"  equitheta, 1 thread:       {r['ours_one_thread_rate']:>12,.0f} respondents/s")
     print(f"  girth ability_eap (no SE): {r['girth_rate']:>12,.0f} respondents/s")
     print(f"  ratio (2 threads / girth): {r['ours_rate'] / r['girth_rate']:>12.1f}x")
-    print(f"  largest |theta difference| vs girth: {r['max_abs_theta_diff_vs_girth']:.4f} "
-          "(girth integrates on its own grid)")
+    print(
+        f"  largest |theta difference| vs girth: {r['max_abs_theta_diff_vs_girth']:.4f} "
+        "(girth integrates on its own grid)"
+    )
     print(f"  MAP + SE: {r['map_rate']:,.0f} respondents/s; ML + SE: {r['ml_rate']:,.0f} respondents/s")
     return 0
 

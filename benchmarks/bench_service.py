@@ -31,24 +31,32 @@ DURATION = 8
 def make_store(root: Path) -> list[str]:
     x, _, _ = two_pl_data(5000, 40, seed=4)
     items = tuple(f"I{j:02d}" for j in range(40))
-    data = ResponseData(ids=tuple(map(str, range(5000))), item_ids=items, responses=x, n_categories=np.full(40, 2),
-                        models=("2pl",) * 40, source="simulated")
+    data = ResponseData(
+        ids=tuple(map(str, range(5000))),
+        item_ids=items,
+        responses=x,
+        n_categories=np.full(40, 2),
+        models=("2pl",) * 40,
+        source="simulated",
+    )
     DirectoryStore(root).publish(calibrate_data(data, name="bench40").bundle)
     return list(items)
 
 
 def body(items: list[str], n: int, seed: int = 1) -> str:
     rng = np.random.default_rng(seed)
-    return json.dumps({"responses": [{"id": f"r{i}", "answers": {it: int(rng.integers(0, 2)) for it in items}}
-                                     for i in range(n)]})
+    return json.dumps(
+        {"responses": [{"id": f"r{i}", "answers": {it: int(rng.integers(0, 2)) for it in items}} for i in range(n)]}
+    )
 
 
 def wrk(url: str, payload: str | None, connections: int, tmp: Path) -> dict[str, float]:
     args = ["wrk", "-t2", f"-c{connections}", f"-d{DURATION}s", "--latency", url]
     if payload is not None:
         script = tmp / f"post{len(payload)}.lua"
-        script.write_text('wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n'
-                          f"wrk.body = {json.dumps(payload)}\n")
+        script.write_text(
+            f'wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\nwrk.body = {json.dumps(payload)}\n'
+        )
         args[1:1] = ["-s", str(script)]
     text = subprocess.run(args, capture_output=True, text=True, timeout=DURATION + 30).stdout
 
@@ -61,8 +69,12 @@ def wrk(url: str, payload: str | None, connections: int, tmp: Path) -> dict[str,
 
     rate = re.search(r"Requests/sec:\s+([\d.]+)", text)
     non_2xx = re.search(r"Non-2xx or 3xx responses: (\d+)", text)
-    return {"rps": float(rate.group(1)) if rate else float("nan"), "p50_ms": latency("50"),
-            "p99_ms": latency("99"), "errors": float(non_2xx.group(1)) if non_2xx else 0.0}
+    return {
+        "rps": float(rate.group(1)) if rate else float("nan"),
+        "p50_ms": latency("50"),
+        "p99_ms": latency("99"),
+        "errors": float(non_2xx.group(1)) if non_2xx else 0.0,
+    }
 
 
 def python_load(url: str, payload: str | None, seconds: float = DURATION) -> dict[str, float]:
@@ -78,8 +90,12 @@ def python_load(url: str, payload: str | None, seconds: float = DURATION) -> dic
                 client.post(url, content=payload, headers={"Content-Type": "application/json"})
             latencies.append(time.perf_counter() - start)
     lat = np.array(latencies) * 1000
-    return {"rps": len(lat) / seconds, "p50_ms": float(np.percentile(lat, 50)), "p99_ms": float(np.percentile(lat, 99)),
-            "errors": 0.0}
+    return {
+        "rps": len(lat) / seconds,
+        "p50_ms": float(np.percentile(lat, 50)),
+        "p99_ms": float(np.percentile(lat, 99)),
+        "errors": 0.0,
+    }
 
 
 def main() -> int:
@@ -87,8 +103,11 @@ def main() -> int:
     tmp = Path(tempfile.mkdtemp())
     items = make_store(tmp / "store")
     port = 18765
-    server = subprocess.Popen([sys.executable, "-m", "service.main", "--store", str(tmp / "store"), "--port", str(port),
-                               "--workers", "2"], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    server = subprocess.Popen(
+        [sys.executable, "-m", "service.main", "--store", str(tmp / "store"), "--port", str(port), "--workers", "2"],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     base = f"http://127.0.0.1:{port}"
     try:
         for _ in range(200):
@@ -102,14 +121,18 @@ def main() -> int:
         check = httpx.post(score_url, content=batch, headers={"Content-Type": "application/json"}, timeout=30)
         assert check.status_code == 200 and len(check.json()["results"]) == 1000
         load = (lambda u, p, c: wrk(u, p, c, tmp)) if shutil.which("wrk") else (lambda u, p, c: python_load(u, p))
-        print(f"load generator: {'wrk, 2 threads' if shutil.which('wrk') else 'python httpx (wrk not installed)'}; "
-              f"uvicorn with 2 workers; {DURATION} s per run")
+        print(
+            f"load generator: {'wrk, 2 threads' if shutil.which('wrk') else 'python httpx (wrk not installed)'}; "
+            f"uvicorn with 2 workers; {DURATION} s per run"
+        )
         health = load(f"{base}/healthz", None, 16)
         one = load(score_url, single, 16)
         many = load(score_url, batch, 4)
         for name, r in (("/healthz", health), ("score, 1 vector x 40 items", one), ("score, 1,000 vectors", many)):
-            print(f"  {name:<28} {r['rps']:>9,.0f} req/s  p50 {r['p50_ms']:7.2f} ms  p99 {r['p99_ms']:7.2f} ms"
-                  f"  non-2xx {int(r['errors'])}")
+            print(
+                f"  {name:<28} {r['rps']:>9,.0f} req/s  p50 {r['p50_ms']:7.2f} ms  p99 {r['p99_ms']:7.2f} ms"
+                f"  non-2xx {int(r['errors'])}"
+            )
         print(f"  single-vector score rate / healthz rate: {one['rps'] / health['rps']:.2f} (target >= 0.5)")
         print(f"  batch: {many['rps'] * 1000:,.0f} vectors scored per second (target >= 100,000)")
     finally:

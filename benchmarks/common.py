@@ -17,8 +17,10 @@ def machine() -> str:
     blas_text = ", ".join(
         f"{b['internal_api']} {b.get('version')} ({b.get('architecture')}, {b['num_threads']} threads)" for b in blas
     )
-    return (f"{platform.processor() or platform.machine()}, {os.cpu_count()} CPUs, Python {platform.python_version()}, "
-            f"numpy {np.__version__}, BLAS: {blas_text}")
+    return (
+        f"{platform.processor() or platform.machine()}, {os.cpu_count()} CPUs, Python {platform.python_version()}, "
+        f"numpy {np.__version__}, BLAS: {blas_text}"
+    )
 
 
 def two_pl_data(n_persons: int, n_items: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

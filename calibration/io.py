@@ -156,8 +156,7 @@ def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
         repeated = sorted({c.strip() for c in first if [h.strip() for h in first].count(c.strip()) > 1})
         if repeated:
             raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in repeated])
-        frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[], skipinitialspace=False,
-                            sep=delimiter)
+        frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[], skipinitialspace=False, sep=delimiter)
     except (pd.errors.ParserError, UnicodeDecodeError, OSError, ValueError) as exc:
         kind = "Parquet" if suffix in (".parquet", ".pq") else "CSV"
         raise InputError(path.name, [f"cannot be read as {kind}: {exc}"]) from exc
@@ -166,9 +165,7 @@ def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
     return frame, 1
 
 
-def _open_respondent_table(
-    path: Path, id_column: str, group_column: str | None
-) -> tuple[pd.DataFrame, int, list[str]]:
+def _open_respondent_table(path: Path, id_column: str, group_column: str | None) -> tuple[pd.DataFrame, int, list[str]]:
     """Read a respondent table and check its header: unique columns, the id (and group) column, some rows.
 
     The header is checked before the rows are parsed, so a header problem answers at once.
@@ -188,10 +185,17 @@ def _open_respondent_table(
 def _check_required_columns(path: Path, columns: list[str], id_column: str, group_column: str | None) -> None:
     if id_column not in columns:
         if len(columns) == 1:
-            raise InputError(path.name, [f"the header has a single column {columns[0]!r}: the file is not "
-                                         "delimited by a comma, semicolon, tab or bar; save it as CSV"])
-        raise InputError(path.name, [f"no id column {id_column!r}; the columns are: {', '.join(columns)} "
-                                     "(choose one with --id-column)"])
+            raise InputError(
+                path.name,
+                [
+                    f"the header has a single column {columns[0]!r}: the file is not "
+                    "delimited by a comma, semicolon, tab or bar; save it as CSV"
+                ],
+            )
+        raise InputError(
+            path.name,
+            [f"no id column {id_column!r}; the columns are: {', '.join(columns)} (choose one with --id-column)"],
+        )
     if group_column is not None and group_column not in columns:
         raise InputError(path.name, [f"no group column {group_column!r}; the columns are: {', '.join(columns)}"])
 
@@ -262,8 +266,9 @@ def read_policy_overrides(path: Path) -> list[tuple[str, str, str, str]]:
     needed = ["item", "group", "status", "note"]
     missing = [c for c in needed if c not in frame.columns]
     if missing:
-        raise InputError(path.name, [f"the policy override file needs columns {', '.join(needed)}; "
-                                     f"missing: {', '.join(missing)}"])
+        raise InputError(
+            path.name, [f"the policy override file needs columns {', '.join(needed)}; missing: {', '.join(missing)}"]
+        )
     out, problems = [], []
     for i, row in frame.iterrows():
         values = [str(row[c]).strip() for c in needed]
@@ -537,11 +542,15 @@ def _unused_categories_problem(item: str, column: FloatArray, counts: IntArray, 
         rows = np.flatnonzero(np.isin(column, outliers))
         listed = ", ".join(row_label(int(r), header_lines) for r in rows[:3])
         more = f" and {rows.size - 3} more" if rows.size > 3 else ""
-        return (f"item {item!r}: code {', '.join(map(str, outliers))} ({listed}{more}) lies far above the item's "
-                f"other codes 0..{low_run - 1}: it looks like a missing-data code; leave such cells empty "
-                "(empty = not administered) or recode them")
-    return (f"item {item!r}: category {_code_ranges(unseen)} has no responses (codes seen: {_code_ranges(seen)}); "
-            "recode the item so its categories are 0..K-1 with every category used")
+        return (
+            f"item {item!r}: code {', '.join(map(str, outliers))} ({listed}{more}) lies far above the item's "
+            f"other codes 0..{low_run - 1}: it looks like a missing-data code; leave such cells empty "
+            "(empty = not administered) or recode them"
+        )
+    return (
+        f"item {item!r}: category {_code_ranges(unseen)} has no responses (codes seen: {_code_ranges(seen)}); "
+        "recode the item so its categories are 0..K-1 with every category used"
+    )
 
 
 def _umask() -> int:

@@ -273,8 +273,9 @@ def prepare_data(
     _check_anchors(settings.dif.anchors, item_ids, data.item_ids, excluded_items, n_groups)
     # An item merged down to two categories becomes a 2PL item.
     models = tuple("2pl" if k[pos] == 2 and data.models[j] == "grm" else data.models[j] for pos, j in enumerate(keep))
-    return PreparedData(group_names, group_index, x, item_ids, k, models, category_maps, excluded_items,
-                        no_variance_cells, notes)
+    return PreparedData(
+        group_names, group_index, x, item_ids, k, models, category_maps, excluded_items, no_variance_cells, notes
+    )
 
 
 def calibrate_data(
@@ -290,7 +291,12 @@ def calibrate_data(
     settings = settings or PipelineSettings()
     prepared = prepare_data(data, settings=settings, reference_group=reference_group, overrides=overrides)
     group_names, group_index, x, item_ids, k, models = (
-        prepared.group_names, prepared.group_index, prepared.x, prepared.item_ids, prepared.k, prepared.models
+        prepared.group_names,
+        prepared.group_index,
+        prepared.x,
+        prepared.item_ids,
+        prepared.k,
+        prepared.models,
     )
     n_groups = len(group_names)
     category_maps, excluded_items = prepared.category_maps, prepared.excluded_items
@@ -306,7 +312,8 @@ def calibrate_data(
     dif_outcome: DifOutcome | None = None
     status = {(j, g): "invariant" for j in range(n_items) for g in range(n_groups)}
     reasons: dict[tuple[int, int], str] = {
-        (j, g): ("single-group calibration" if n_groups == 1 else "no DIF flag") for j in range(n_items)
+        (j, g): ("single-group calibration" if n_groups == 1 else "no DIF flag")
+        for j in range(n_items)
         for g in range(n_groups)
     }
     evidence: dict[tuple[int, int], PolicyEvidence] = {}
@@ -322,20 +329,33 @@ def calibrate_data(
             progress("screen", 0, 0.0)
         screening = screen_observed(x, k, group_index, n_groups, greater_than_one_z=settings.mh_greater_than_one_z)
         observed_rows = _observed_rows(x, k, group_index, screening, item_ids, group_names)
-        scalar = _quiet_fit(x_model, k, group_index, n_groups, models=models, settings=em_no_se,
-                            progress=em_progress("scalar"))
+        scalar = _quiet_fit(
+            x_model, k, group_index, n_groups, models=models, settings=em_no_se, progress=em_progress("scalar")
+        )
         dif_outcome = run_irt_dif(
-            x_model, k, group_index, n_groups, scalar, item_ids=item_ids, models=models, settings=settings.dif,
-            em_settings=settings.em, skip=set(no_variance_cells),
+            x_model,
+            k,
+            group_index,
+            n_groups,
+            scalar,
+            item_ids=item_ids,
+            models=models,
+            settings=settings.dif,
+            em_settings=settings.em,
+            skip=set(no_variance_cells),
             progress=(lambda stage, done, total: progress(stage, done, float(total))) if progress else None,
         )
         anchors_record = Anchors(
-            items=[item_ids[j] for j in dif_outcome.anchors], method=dif_outcome.anchor_method,
+            items=[item_ids[j] for j in dif_outcome.anchors],
+            method=dif_outcome.anchor_method,
             ranking=[
                 AnchorCandidate(
-                    item=item_ids[c.item], rank=r + 1, statistic=finite_or_none(c.statistic),
+                    item=item_ids[c.item],
+                    rank=r + 1,
+                    statistic=finite_or_none(c.statistic),
                     worst_group=group_names[c.worst_group] if c.worst_group >= 0 else "none",
-                    p_adjusted=finite_or_none(c.p_adjusted), selected=c.item in dif_outcome.anchors,
+                    p_adjusted=finite_or_none(c.p_adjusted),
+                    selected=c.item in dif_outcome.anchors,
                 )
                 for r, c in enumerate(dif_outcome.ranking)
             ],
@@ -347,8 +367,9 @@ def calibrate_data(
                 test = dif_outcome.screening.get((j, g))
                 if test is not None:
                     evidence[(j, g)] = _evidence(test, settings.dif, "screening with all other items as anchors")
-        irt_rows = [_irt_row(t, "screening", item_ids, group_names, settings.dif)
-                    for t in dif_outcome.screening.values()]
+        irt_rows = [
+            _irt_row(t, "screening", item_ids, group_names, settings.dif) for t in dif_outcome.screening.values()
+        ]
         irt_rows += [_irt_row(t, "test", item_ids, group_names, settings.dif) for t in dif_outcome.tests.values()]
         action = "excluded" if settings.dif_action == "exclude" else "group_specific"
         for (j, g), test in dif_outcome.tests.items():
@@ -365,8 +386,9 @@ def calibrate_data(
             status[(j, g)] = "excluded"
             reasons[(j, g)] = why
         _apply_overrides(overrides, status, reasons, item_ids, group_names)
-        ladder = _ladder(x_model, k, group_index, n_groups, models, em_no_se, scalar, status, dif_outcome,
-                         set(no_variance_cells))
+        ladder = _ladder(
+            x_model, k, group_index, n_groups, models, em_no_se, scalar, status, dif_outcome, set(no_variance_cells)
+        )
 
     # Final calibration under the policy: excluded cells are not administered for that group.
     k_max = int(k.max())
@@ -380,8 +402,17 @@ def calibrate_data(
     if progress is not None:
         progress("final", 0, 0.0)
     start = dif_outcome.anchor_fit.tables if dif_outcome is not None else None
-    fit = _quiet_fit(x_final, k, group_index, n_groups, models=models, settings=settings.em,
-                     group_free=group_free, start=start, progress=em_progress("final"))
+    fit = _quiet_fit(
+        x_final,
+        k,
+        group_index,
+        n_groups,
+        models=models,
+        settings=settings.em,
+        group_free=group_free,
+        start=start,
+        progress=em_progress("final"),
+    )
     if not fit.converged:
         notes.append(f"EM did not converge in {settings.em.max_iter} iterations; estimates may be unstable")
     grid = settings.em.quadrature
@@ -403,8 +434,9 @@ def calibrate_data(
         kept = [j for j in range(n_items) if status[(j, g)] != "excluded"]
         params = fit.group_params(g).subset(kept)
         xg = x[np.ix_(rows, kept)]
-        quality = _group_quality(xg, params, [item_ids[j] for j in kept], prior, settings,
-                                 float(fit.latent_mean[g]), float(fit.latent_sd[g]))
+        quality = _group_quality(
+            xg, params, [item_ids[j] for j in kept], prior, settings, float(fit.latent_mean[g]), float(fit.latent_sd[g])
+        )
         by_group[group] = quality
         notes.extend(_quality_warnings(quality, group if n_groups > 1 else None))
     flagged_cells = [(item_ids[j], group_names[g]) for (j, g), st in status.items() if st != "invariant" and g > 0]
@@ -421,19 +453,41 @@ def calibrate_data(
             notes.append(f"item {item!r}: slope {reference_params.slopes[j]:.2f} is very large (near-Heywood?)")
 
     bundle = _assemble(
-        data=data, name=name, settings=settings, fit=fit, x=x, item_ids=item_ids, models=models, k=k,
-        group_names=group_names, group_index=group_index, status=status, reasons=reasons, evidence=evidence,
-        excluded_items=excluded_items, anchors=anchors_record, by_group=by_group, notes=notes,
+        data=data,
+        name=name,
+        settings=settings,
+        fit=fit,
+        x=x,
+        item_ids=item_ids,
+        models=models,
+        k=k,
+        group_names=group_names,
+        group_index=group_index,
+        status=status,
+        reasons=reasons,
+        evidence=evidence,
+        excluded_items=excluded_items,
+        anchors=anchors_record,
+        by_group=by_group,
+        notes=notes,
         category_maps=category_maps,
-        dif=(DifReport(
-            settings=DifSettingsRecord(
-                fdr_alpha=settings.dif.alpha, effect_moderate=settings.dif.effect_moderate,
-                effect_large=settings.dif.effect_large, action=settings.dif_action,  # type: ignore[arg-type]
-                mh_greater_than_one_z=settings.mh_greater_than_one_z,
-                anchor_fraction=settings.dif.anchor_fraction, min_anchors=settings.dif.min_anchors,
-            ),
-            observed=observed_rows, irt=irt_rows,
-        ) if n_groups > 1 else None),
+        dif=(
+            DifReport(
+                settings=DifSettingsRecord(
+                    fdr_alpha=settings.dif.alpha,
+                    effect_moderate=settings.dif.effect_moderate,
+                    effect_large=settings.dif.effect_large,
+                    action=settings.dif_action,  # type: ignore[arg-type]
+                    mh_greater_than_one_z=settings.mh_greater_than_one_z,
+                    anchor_fraction=settings.dif.anchor_fraction,
+                    min_anchors=settings.dif.min_anchors,
+                ),
+                observed=observed_rows,
+                irt=irt_rows,
+            )
+            if n_groups > 1
+            else None
+        ),
         ladder=ladder,
     )
     return CalibrationOutcome(bundle=bundle, fit=fit, warnings=tuple(notes), dif=dif_outcome)
@@ -445,9 +499,7 @@ def small_group_notes(group_names: list[str], sizes: np.ndarray, *, multiple: bo
     for name, n in zip(group_names, sizes, strict=True):
         if n >= RECOMMENDED_MIN_RESPONDENTS:
             continue
-        what = (
-            "item-parameter SEs are wide; the S-X2 item fit and the residual PCA rest on sparse cells"
-        )
+        what = "item-parameter SEs are wide; the S-X2 item fit and the residual PCA rest on sparse cells"
         if multiple:
             what += (
                 "; its latent mean and SD and any group-specific parameters are imprecise; DIF tests have low "
@@ -462,8 +514,11 @@ def small_group_notes(group_names: list[str], sizes: np.ndarray, *, multiple: bo
 
 
 def _check_anchors(
-    anchors: Sequence[str], item_ids: tuple[str, ...], all_items: tuple[str, ...],
-    excluded_items: list[ExcludedItem], n_groups: int,
+    anchors: Sequence[str],
+    item_ids: tuple[str, ...],
+    all_items: tuple[str, ...],
+    excluded_items: list[ExcludedItem],
+    n_groups: int,
 ) -> None:
     """Named anchors must be calibrated items of a multiple-group calibration."""
     if not anchors:
@@ -517,8 +572,10 @@ def collapse_sparse_categories(
         low, high = min(c, into), max(c, into)
         raw = [code for code, m in enumerate(mapping) if m in (low, high)]
         where = "" if n_groups == 1 else f" in group {group_names[group]!r}"
-        merged_notes.append(f"answer codes {', '.join(map(str, raw))} merged (a category had {int(counts[group, c])} "
-                            f"answers{where}, below {MIN_CATEGORY_COUNT})")
+        merged_notes.append(
+            f"answer codes {', '.join(map(str, raw))} merged (a category had {int(counts[group, c])} "
+            f"answers{where}, below {MIN_CATEGORY_COUNT})"
+        )
         mapping = [m if m <= low else m - 1 for m in mapping]
     if not merged_notes:
         return None
@@ -543,8 +600,10 @@ def _apply_overrides(
             problems.append(f"policy override for {o.item}: group {o.group!r} is not in the data")
             continue
         if o.status not in POLICY_STATUSES:
-            problems.append(f"policy override for {o.item} in {o.group}: status {o.status!r} is not one of "
-                            f"{', '.join(POLICY_STATUSES)}")
+            problems.append(
+                f"policy override for {o.item} in {o.group}: status {o.status!r} is not one of "
+                f"{', '.join(POLICY_STATUSES)}"
+            )
             continue
         if o.group == group_names[0] and o.status != "invariant":
             problems.append(f"policy override for {o.item}: the reference group {o.group!r} keeps every item")
@@ -582,22 +641,39 @@ def _ladder(
     everything[0] = False
     for j, g in structural:
         everything[g, j, :] = False
-    configural = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em, group_free=everything,
-                            start=scalar.tables, latent=LatentSpec.reference_fixed(n_groups, free_mean=False,
-                                                                                    free_sd=False))
+    configural = _quiet_fit(
+        x,
+        k,
+        group_index,
+        n_groups,
+        models=models,
+        settings=em,
+        group_free=everything,
+        start=scalar.tables,
+        latent=LatentSpec.reference_fixed(n_groups, free_mean=False, free_sd=False),
+    )
     intercepts = everything.copy()
     intercepts[..., 0] = False
-    metric = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em, group_free=intercepts,
-                        start=scalar.tables, latent=LatentSpec.reference_fixed(n_groups, free_mean=False))
+    metric = _quiet_fit(
+        x,
+        k,
+        group_index,
+        n_groups,
+        models=models,
+        settings=em,
+        group_free=intercepts,
+        start=scalar.tables,
+        latent=LatentSpec.reference_fixed(n_groups, free_mean=False),
+    )
     partial_free = np.zeros((n_groups, n_items, k_max), dtype=bool)
     for (j, g), st in status.items():
         if st != "invariant" and (j, g) not in structural:
             partial_free[g, j, :] = True  # same data as the other rungs: excluded cells are freed here
-    partial = _quiet_fit(x, k, group_index, n_groups, models=models, settings=em, group_free=partial_free,
-                         start=dif.anchor_fit.tables)
+    partial = _quiet_fit(
+        x, k, group_index, n_groups, models=models, settings=em, group_free=partial_free, start=dif.anchor_fit.tables
+    )
 
-    def row(model: str, description: str, fit: MultiGroupFit, against: tuple[str, MultiGroupFit] | None
-            ) -> LadderRow:
+    def row(model: str, description: str, fit: MultiGroupFit, against: tuple[str, MultiGroupFit] | None) -> LadderRow:
         lr = df = p = None
         compared = None
         if against is not None:
@@ -606,16 +682,29 @@ def _ladder(
             bigger, smaller = (fit, other) if fit.n_parameters >= other.n_parameters else (other, fit)
             lr = max(2.0 * (bigger.log_likelihood - smaller.log_likelihood), 0.0)
             p = float(stats.chi2.sf(lr, df)) if df > 0 else None
-        return LadderRow(model=model, description=description, log_likelihood=fit.log_likelihood,  # type: ignore[arg-type]
-                         n_parameters=fit.n_parameters, aic=fit.aic, bic=fit.bic, compared_with=compared,
-                         lr_statistic=lr, df=df, p_value=p)
+        return LadderRow(
+            model=model,
+            description=description,
+            log_likelihood=fit.log_likelihood,  # type: ignore[arg-type]
+            n_parameters=fit.n_parameters,
+            aic=fit.aic,
+            bic=fit.bic,
+            compared_with=compared,
+            lr_statistic=lr,
+            df=df,
+            p_value=p,
+        )
 
     return [
         row("configural", "all item parameters free per group; every group N(0,1)", configural, None),
         row("metric", "slopes equal; intercepts free; focal SDs estimated", metric, ("configural", configural)),
         row("scalar", "slopes and intercepts equal; focal means and SDs estimated", scalar, ("metric", metric)),
-        row("partial", "anchors and unflagged items equal; flagged or overridden cells free", partial,
-            ("scalar", scalar)),
+        row(
+            "partial",
+            "anchors and unflagged items equal; flagged or overridden cells free",
+            partial,
+            ("scalar", scalar),
+        ),
     ]
 
 
@@ -632,23 +721,36 @@ def _evidence(test: ItemGroupTest, settings: DifSettings, note: str) -> PolicyEv
     )
 
 
-def _irt_row(test: ItemGroupTest, stage: str, item_ids: tuple[str, ...], groups: list[str],
-             settings: DifSettings) -> IrtDifRow:
+def _irt_row(
+    test: ItemGroupTest, stage: str, item_ids: tuple[str, ...], groups: list[str], settings: DifSettings
+) -> IrtDifRow:
     return IrtDifRow(
-        item=item_ids[test.item], group=groups[test.group], stage=stage,  # type: ignore[arg-type]
-        g2_omnibus=test.g2_omnibus, df_omnibus=test.df_omnibus, p_value=test.p_omnibus,
-        p_adjusted=finite_or_none(test.p_adjusted), g2_nonuniform=finite_or_none(test.g2_nonuniform),
-        p_nonuniform=finite_or_none(test.p_nonuniform), g2_uniform=finite_or_none(test.g2_uniform),
-        p_uniform=finite_or_none(test.p_uniform), effect_theta=finite_or_none(test.effect_theta),
-        effect_signed=finite_or_none(test.effect_signed), effect_theta_se=finite_or_none(test.effect_theta_se),
+        item=item_ids[test.item],
+        group=groups[test.group],
+        stage=stage,  # type: ignore[arg-type]
+        g2_omnibus=test.g2_omnibus,
+        df_omnibus=test.df_omnibus,
+        p_value=test.p_omnibus,
+        p_adjusted=finite_or_none(test.p_adjusted),
+        g2_nonuniform=finite_or_none(test.g2_nonuniform),
+        p_nonuniform=finite_or_none(test.p_nonuniform),
+        g2_uniform=finite_or_none(test.g2_uniform),
+        p_uniform=finite_or_none(test.p_uniform),
+        effect_theta=finite_or_none(test.effect_theta),
+        effect_signed=finite_or_none(test.effect_signed),
+        effect_theta_se=finite_or_none(test.effect_theta_se),
         level=test.level(settings),  # type: ignore[arg-type]
         flagged=stage == "test" and test.flagged(settings),
     )
 
 
 def _observed_rows(
-    x: np.ndarray, k: np.ndarray, group_index: np.ndarray, screening: ObservedScreening,
-    item_ids: tuple[str, ...], groups: list[str],
+    x: np.ndarray,
+    k: np.ndarray,
+    group_index: np.ndarray,
+    screening: ObservedScreening,
+    item_ids: tuple[str, ...],
+    groups: list[str],
 ) -> list[ObservedDifRow]:
     rows = []
     for g in range(1, len(groups)):
@@ -663,31 +765,55 @@ def _observed_rows(
             ok = enough & ~np.isnan(y) & ~np.isnan(score)
             logistic = logistic_dif(y[ok], score[ok], group_index[members][ok] == g, int(k[j]))
             common = {
-                "item": item_ids[j], "group": groups[g],
-                "logistic_chi_square": logistic.chi_square_omnibus, "logistic_p_value": logistic.p_omnibus,
-                "logistic_delta_r2": logistic.delta_r2, "logistic_level": logistic.level,
+                "item": item_ids[j],
+                "group": groups[g],
+                "logistic_chi_square": logistic.chi_square_omnibus,
+                "logistic_p_value": logistic.p_omnibus,
+                "logistic_delta_r2": logistic.delta_r2,
+                "logistic_level": logistic.level,
             }
             if (j, g) in screening.mh:
                 r = screening.mh[(j, g)]
-                rows.append(ObservedDifRow(
-                    method="mantel-haenszel", chi_square=r.chi_square, p_value=r.p_value,
-                    mh_odds_ratio=finite_or_none(r.alpha), mh_d_dif=finite_or_none(r.d_dif),
-                    mh_d_dif_se=finite_or_none(r.d_dif_se), dif_class=r.category,
-                    n_reference=r.n_reference, n_focal=r.n_focal, **common,
-                ))
+                rows.append(
+                    ObservedDifRow(
+                        method="mantel-haenszel",
+                        chi_square=r.chi_square,
+                        p_value=r.p_value,
+                        mh_odds_ratio=finite_or_none(r.alpha),
+                        mh_d_dif=finite_or_none(r.d_dif),
+                        mh_d_dif_se=finite_or_none(r.d_dif_se),
+                        dif_class=r.category,
+                        n_reference=r.n_reference,
+                        n_focal=r.n_focal,
+                        **common,
+                    )
+                )
             else:
                 m = screening.mantel[(j, g)]
-                rows.append(ObservedDifRow(
-                    method="mantel", chi_square=m.chi_square, p_value=m.p_value, smd=m.smd,
-                    smd_over_sd=m.smd_over_sd, dif_class=m.category, n_reference=m.n_reference,
-                    n_focal=m.n_focal, **common,
-                ))
+                rows.append(
+                    ObservedDifRow(
+                        method="mantel",
+                        chi_square=m.chi_square,
+                        p_value=m.p_value,
+                        smd=m.smd,
+                        smd_over_sd=m.smd_over_sd,
+                        dif_class=m.category,
+                        n_reference=m.n_reference,
+                        n_focal=m.n_focal,
+                        **common,
+                    )
+                )
     return rows
 
 
 def _group_quality(
-    x: np.ndarray, params: ItemParameters, item_ids: list[str], prior: NormalPrior, settings: PipelineSettings,
-    latent_mean: float, latent_sd: float,
+    x: np.ndarray,
+    params: ItemParameters,
+    item_ids: list[str],
+    prior: NormalPrior,
+    settings: PipelineSettings,
+    latent_mean: float,
+    latent_sd: float,
 ) -> GroupQuality:
     classical = classical_statistics(x)
     eap = eap_scores(params, x, grid=settings.scoring_quadrature, prior=prior)
@@ -695,15 +821,19 @@ def _group_quality(
     table = summed_score_table(params, grid=settings.scoring_quadrature, prior=prior)
     fit_stats = item_fit(params, x, latent_mean=latent_mean, latent_sd=latent_sd)
     summary = dimensionality(params, x, eap.theta)
-    dims = Dimensionality(eigenvalue_ratio=finite_or_none(summary.eigenvalue_ratio),
-                          residual_pca_first_eigenvalue=finite_or_none(summary.residual_pca_first_eigenvalue),
-                          n_complete=summary.n_complete)
+    dims = Dimensionality(
+        eigenvalue_ratio=finite_or_none(summary.eigenvalue_ratio),
+        residual_pca_first_eigenvalue=finite_or_none(summary.residual_pca_first_eigenvalue),
+        n_complete=summary.n_complete,
+    )
     items = {
         item: ItemQuality(
             item_rest_correlation=finite_or_none(float(classical.item_rest[j])),
             alpha_if_deleted=finite_or_none(float(classical.alpha_if_deleted[j])),
-            s_x2=finite_or_none(fit_stats.s_x2[j]), s_x2_df=int(fit_stats.s_x2_df[j]) if fit_stats.s_x2_df[j] > 0
-            else None, s_x2_p=finite_or_none(fit_stats.s_x2_p[j]), rmsd=finite_or_none(fit_stats.rmsd[j]),
+            s_x2=finite_or_none(fit_stats.s_x2[j]),
+            s_x2_df=int(fit_stats.s_x2_df[j]) if fit_stats.s_x2_df[j] > 0 else None,
+            s_x2_p=finite_or_none(fit_stats.s_x2_p[j]),
+            rmsd=finite_or_none(fit_stats.rmsd[j]),
         )
         for j, item in enumerate(item_ids)
     }
@@ -728,34 +858,59 @@ def _quality_warnings(quality: GroupQuality, group: str | None) -> list[str]:
         out.append(f"{where}alpha = {quality.alpha:.3f} is below {ALPHA_GROUP_USE} (common minimum for group use)")
     rel = quality.marginal_reliability
     if rel is not None and rel < ALPHA_INDIVIDUAL_DECISIONS:
-        out.append(f"{where}marginal reliability = {rel:.3f} is below {ALPHA_INDIVIDUAL_DECISIONS}: scores must not "
-                   "drive individual high-stakes decisions on their own")
+        out.append(
+            f"{where}marginal reliability = {rel:.3f} is below {ALPHA_INDIVIDUAL_DECISIONS}: scores must not "
+            "drive individual high-stakes decisions on their own"
+        )
     for item, q in quality.items.items():
         if q.item_rest_correlation is not None and q.item_rest_correlation < ITEM_REST_MINIMUM:
-            out.append(f"{where}item {item!r}: item-rest correlation {q.item_rest_correlation:.3f} is below "
-                       f"{ITEM_REST_MINIMUM} (common practice)")
+            out.append(
+                f"{where}item {item!r}: item-rest correlation {q.item_rest_correlation:.3f} is below "
+                f"{ITEM_REST_MINIMUM} (common practice)"
+            )
         if q.rmsd is not None and q.rmsd > 0.1:
-            out.append(f"{where}item {item!r}: RMSD {q.rmsd:.3f} above 0.10 (common practice): the model curve "
-                       "misses this group's observed curve")
+            out.append(
+                f"{where}item {item!r}: RMSD {q.rmsd:.3f} above 0.10 (common practice): the model curve "
+                "misses this group's observed curve"
+            )
         if q.s_x2_p is not None and q.s_x2_p < 0.001:
             out.append(f"{where}item {item!r}: S-X2 = {q.s_x2:.1f} (df {q.s_x2_df}), p < .001: item misfit")
     dims = quality.dimensionality
     if dims is not None and dims.eigenvalue_ratio is not None and dims.eigenvalue_ratio < 3:
-        out.append(f"{where}first-to-second eigenvalue ratio {dims.eigenvalue_ratio:.3f} is below 3 "
-                   "(rule of thumb, Raiche 2005 recalled from memory): check unidimensionality")
+        out.append(
+            f"{where}first-to-second eigenvalue ratio {dims.eigenvalue_ratio:.3f} is below 3 "
+            "(rule of thumb, Raiche 2005 recalled from memory): check unidimensionality"
+        )
     residual = None if dims is None else dims.residual_pca_first_eigenvalue
     if residual is not None and residual > 2:
-        out.append(f"{where}largest eigenvalue of the residual PCA {residual:.2f} is above 2 "
-                   "(rule of thumb): a second dimension may be present")
+        out.append(
+            f"{where}largest eigenvalue of the residual PCA {residual:.2f} is above 2 "
+            "(rule of thumb): a second dimension may be present"
+        )
     return out
 
 
 def _assemble(
-    *, data: ResponseData, name: str, settings: PipelineSettings, fit: MultiGroupFit, x: np.ndarray,
-    item_ids: tuple[str, ...], models: tuple[str, ...], k: np.ndarray, group_names: list[str],
-    group_index: np.ndarray, status: dict[tuple[int, int], str], reasons: dict[tuple[int, int], str],
-    evidence: dict[tuple[int, int], PolicyEvidence], excluded_items: list[ExcludedItem], anchors: Anchors,
-    by_group: dict[str, GroupQuality], notes: list[str], dif: DifReport | None, ladder: list[LadderRow],
+    *,
+    data: ResponseData,
+    name: str,
+    settings: PipelineSettings,
+    fit: MultiGroupFit,
+    x: np.ndarray,
+    item_ids: tuple[str, ...],
+    models: tuple[str, ...],
+    k: np.ndarray,
+    group_names: list[str],
+    group_index: np.ndarray,
+    status: dict[tuple[int, int], str],
+    reasons: dict[tuple[int, int], str],
+    evidence: dict[tuple[int, int], PolicyEvidence],
+    excluded_items: list[ExcludedItem],
+    anchors: Anchors,
+    by_group: dict[str, GroupQuality],
+    notes: list[str],
+    dif: DifReport | None,
+    ladder: list[LadderRow],
     category_maps: dict[int, list[int]],
 ) -> Bundle:
     reference = fit.group_params(0)
@@ -776,43 +931,57 @@ def _assemble(
                 slope=float(fit.tables[g, j, 0]) if specific else None,
                 intercepts=[float(c) for c in fit.tables[g, j, 1:kj]] if specific else None,
             )
-        items.append(ItemEntry(
-            id=item, model=models[j],  # type: ignore[arg-type]
-            n_categories=kj,
-            slope=float(reference.slopes[j]),
-            intercepts=[float(c) for c in reference.intercepts[j, : kj - 1]],
-            thresholds=[float(b) for b in reference.thresholds()[j, : kj - 1]],
-            slope_se=finite_or_none(float(fit.slot_se[0, j, 0])),
-            intercept_se=[finite_or_none(float(s)) for s in fit.slot_se[0, j, 1:kj]],
-            threshold_se=[finite_or_none(float(s)) for s in b_se[j, : kj - 1]],
-            category_map=category_maps.get(j),
-            n_responses=int(np.sum(~np.isnan(x[:, j]))),
-            mean_score=finite_or_none(float(np.nanmean(x[:, j]))),
-            item_rest_correlation=finite_or_none(float(classical.item_rest[j])),
-            policy=policy,
-        ))
+        items.append(
+            ItemEntry(
+                id=item,
+                model=models[j],  # type: ignore[arg-type]
+                n_categories=kj,
+                slope=float(reference.slopes[j]),
+                intercepts=[float(c) for c in reference.intercepts[j, : kj - 1]],
+                thresholds=[float(b) for b in reference.thresholds()[j, : kj - 1]],
+                slope_se=finite_or_none(float(fit.slot_se[0, j, 0])),
+                intercept_se=[finite_or_none(float(s)) for s in fit.slot_se[0, j, 1:kj]],
+                threshold_se=[finite_or_none(float(s)) for s in b_se[j, : kj - 1]],
+                category_map=category_maps.get(j),
+                n_responses=int(np.sum(~np.isnan(x[:, j]))),
+                mean_score=finite_or_none(float(np.nanmean(x[:, j]))),
+                item_rest_correlation=finite_or_none(float(classical.item_rest[j])),
+                policy=policy,
+            )
+        )
     grid = settings.scoring_quadrature
     curve = information_curve(reference)
     em = settings.em.quadrature
     return Bundle(
-        name=name, version=0, created_at=_now(), software_version=__version__,
+        name=name,
+        version=0,
+        created_at=_now(),
+        software_version=__version__,
         provenance=Provenance(
-            data_sha256=data.source_sha256, data_source=data.source, n_respondents=data.n_persons,
+            data_sha256=data.source_sha256,
+            data_source=data.source,
+            n_respondents=data.n_persons,
             n_respondents_by_group={g: int(sizes[i]) for i, g in enumerate(group_names)},
-            settings=settings.describe(), notes=list(data.notes),
+            settings=settings.describe(),
+            notes=list(data.notes),
         ),
         metric=Metric(
             reference_group=group_names[0],
             groups=[
                 GroupMetric(
-                    name=g, n_respondents=int(sizes[i]), latent_mean=float(fit.latent_mean[i]),
-                    latent_sd=float(fit.latent_sd[i]), latent_mean_se=finite_or_none(float(fit.latent_mean_se[i])),
+                    name=g,
+                    n_respondents=int(sizes[i]),
+                    latent_mean=float(fit.latent_mean[i]),
+                    latent_sd=float(fit.latent_sd[i]),
+                    latent_mean_se=finite_or_none(float(fit.latent_mean_se[i])),
                     latent_sd_se=finite_or_none(float(fit.latent_sd_se[i])),
                 )
                 for i, g in enumerate(group_names)
             ],
         ),
-        items=items, excluded_items=excluded_items, anchors=anchors,
+        items=items,
+        excluded_items=excluded_items,
+        anchors=anchors,
         scoring=ScoringSettings(
             method=settings.scoring_method,  # type: ignore[arg-type]
             quadrature=QuadratureSettings(n_points=grid.n_points, lower=grid.lower, upper=grid.upper),
@@ -820,23 +989,32 @@ def _assemble(
             reporting_scale=settings.reporting_scale,
         ),
         fit=FitSummary(
-            log_likelihood=fit.log_likelihood, n_parameters=fit.n_parameters, n_persons=fit.n_persons,
-            aic=fit.aic, bic=fit.bic, converged=fit.converged, n_iter=fit.n_iter,
+            log_likelihood=fit.log_likelihood,
+            n_parameters=fit.n_parameters,
+            n_persons=fit.n_persons,
+            aic=fit.aic,
+            bic=fit.bic,
+            converged=fit.converged,
+            n_iter=fit.n_iter,
             estimation=(
                 f"{'multiple-group ' if len(group_names) > 1 else ''}marginal ML, Bock-Aitkin EM over "
                 f"{em.n_points} equally spaced points on {em.lower:g}..{em.upper:g} (equitheta's default grid); "
                 "reference group N(0,1)"
                 f"{', other groups N(mean, sd) estimated' if len(group_names) > 1 else ''}; SEs from the observed "
                 "information (central differences of the analytic marginal score)"
-                + ("; the final model under the item policy: excluded cells count as not administered, so its "
-                   "log-likelihood is on other data than the invariance ladder's and is not comparable with it"
-                   if len(group_names) > 1 else "")
+                + (
+                    "; the final model under the item policy: excluded cells count as not administered, so its "
+                    "log-likelihood is on other data than the invariance ladder's and is not comparable with it"
+                    if len(group_names) > 1
+                    else ""
+                )
             ),
         ),
         quality=Quality(
             by_group=by_group,
             test_information=InformationTable(
-                theta=[float(t) for t in curve.theta], information=[float(i) for i in curve.information],
+                theta=[float(t) for t in curve.theta],
+                information=[float(i) for i in curve.information],
                 se=[float(s) for s in curve.se],
             ),
             warnings=notes,
@@ -844,4 +1022,3 @@ def _assemble(
         dif=dif,
         invariance=ladder,
     )
-

@@ -42,10 +42,15 @@ def example_bundle():  # type: ignore[no-untyped-def]
         blocks.append((rng.random(p.shape) < p).astype(float))
         modes += [mode] * 900
     x = np.vstack(blocks)
-    data = ResponseData(ids=tuple(f"P{i:04d}" for i in range(x.shape[0])),
-                        item_ids=tuple(f"T{j + 1}" for j in range(6)), responses=x,
-                        n_categories=np.full(6, 2), models=("2pl",) * 6, groups=tuple(modes),
-                        source="pantry-checkout-invented.csv")
+    data = ResponseData(
+        ids=tuple(f"P{i:04d}" for i in range(x.shape[0])),
+        item_ids=tuple(f"T{j + 1}" for j in range(6)),
+        responses=x,
+        n_categories=np.full(6, 2),
+        models=("2pl",) * 6,
+        groups=tuple(modes),
+        source="pantry-checkout-invented.csv",
+    )
     bundle = calibrate_data(data, name="pantry-checkout", reference_group="paper").bundle
     return bundle.model_copy(update={"created_at": "2026-12-01T00:00:00Z"})
 
@@ -54,25 +59,82 @@ CASES = [
     {"name": "healthz", "method": "GET", "path": "/healthz", "status": 200},
     {"name": "readyz", "method": "GET", "path": "/readyz", "status": 200},
     {"name": "bundles", "method": "GET", "path": "/v1/bundles", "key": "reader", "status": 200},
-    {"name": "versions", "method": "GET", "path": "/v1/bundles/pantry-checkout/versions", "key": "reader",
-     "status": 200},
-    {"name": "score", "method": "POST", "path": "/v1/bundles/pantry-checkout/scores", "key": "scorer",
-     "request": "score_request", "status": 200, "response": "score_response"},
-    {"name": "score_pinned", "method": "POST", "path": "/v1/bundles/pantry-checkout/versions/1/scores",
-     "key": "scorer", "request": "score_request", "status": 200, "response": "score_response"},
-    {"name": "alias", "method": "PUT", "path": "/v1/bundles/pantry-checkout/aliases/production", "key": "publisher",
-     "request": "alias_request", "status": 200, "response": "alias_response"},
-    {"name": "publish_same", "method": "PUT", "path": "/v1/bundles/pantry-checkout/versions/1", "key": "publisher",
-     "request": "bundle", "status": 200, "response": "publish_response"},
+    {
+        "name": "versions",
+        "method": "GET",
+        "path": "/v1/bundles/pantry-checkout/versions",
+        "key": "reader",
+        "status": 200,
+    },
+    {
+        "name": "score",
+        "method": "POST",
+        "path": "/v1/bundles/pantry-checkout/scores",
+        "key": "scorer",
+        "request": "score_request",
+        "status": 200,
+        "response": "score_response",
+    },
+    {
+        "name": "score_pinned",
+        "method": "POST",
+        "path": "/v1/bundles/pantry-checkout/versions/1/scores",
+        "key": "scorer",
+        "request": "score_request",
+        "status": 200,
+        "response": "score_response",
+    },
+    {
+        "name": "alias",
+        "method": "PUT",
+        "path": "/v1/bundles/pantry-checkout/aliases/production",
+        "key": "publisher",
+        "request": "alias_request",
+        "status": 200,
+        "response": "alias_response",
+    },
+    {
+        "name": "publish_same",
+        "method": "PUT",
+        "path": "/v1/bundles/pantry-checkout/versions/1",
+        "key": "publisher",
+        "request": "bundle",
+        "status": 200,
+        "response": "publish_response",
+    },
     {"name": "problem_401", "method": "GET", "path": "/v1/bundles", "status": 401},
-    {"name": "problem_403", "method": "PUT", "path": "/v1/bundles/pantry-checkout/aliases/production",
-     "key": "reader", "request": "alias_request", "status": 403},
-    {"name": "problem_404", "method": "POST", "path": "/v1/bundles/pantry-checkout/versions/9/scores",
-     "key": "scorer", "request": "score_request", "status": 404},
-    {"name": "problem_409", "method": "PUT", "path": "/v1/bundles/pantry-checkout/versions/1", "key": "publisher",
-     "request": "bundle_other", "status": 409},
-    {"name": "problem_422", "method": "POST", "path": "/v1/bundles/pantry-checkout/scores", "key": "scorer",
-     "request": "score_request_unknown_item", "status": 422},
+    {
+        "name": "problem_403",
+        "method": "PUT",
+        "path": "/v1/bundles/pantry-checkout/aliases/production",
+        "key": "reader",
+        "request": "alias_request",
+        "status": 403,
+    },
+    {
+        "name": "problem_404",
+        "method": "POST",
+        "path": "/v1/bundles/pantry-checkout/versions/9/scores",
+        "key": "scorer",
+        "request": "score_request",
+        "status": 404,
+    },
+    {
+        "name": "problem_409",
+        "method": "PUT",
+        "path": "/v1/bundles/pantry-checkout/versions/1",
+        "key": "publisher",
+        "request": "bundle_other",
+        "status": 409,
+    },
+    {
+        "name": "problem_422",
+        "method": "POST",
+        "path": "/v1/bundles/pantry-checkout/scores",
+        "key": "scorer",
+        "request": "score_request_unknown_item",
+        "status": 422,
+    },
 ]
 
 
@@ -91,10 +153,17 @@ def main() -> int:
         other = bundle.model_copy(update={"created_at": "2026-12-02T00:00:00Z", "hash": ""})
         (OUT / "bundle_other.json").write_text(json.dumps(other.model_dump(mode="json"), indent=1) + "\n")
         requests = {
-            "score_request": {"responses": [
-                {"id": "R-1001", "group": "paper", "answers": {"T1": 1, "T2": 1, "T3": 0, "T4": 1, "T5": 0, "T6": 0}},
-                {"id": "R-1002", "group": "tablet", "answers": {"T1": 1, "T2": 0, "T3": 1, "T4": 0, "T5": 1}},
-            ], "options": {"method": "eap", "include_summed_score": True}},
+            "score_request": {
+                "responses": [
+                    {
+                        "id": "R-1001",
+                        "group": "paper",
+                        "answers": {"T1": 1, "T2": 1, "T3": 0, "T4": 1, "T5": 0, "T6": 0},
+                    },
+                    {"id": "R-1002", "group": "tablet", "answers": {"T1": 1, "T2": 0, "T3": 1, "T4": 0, "T5": 1}},
+                ],
+                "options": {"method": "eap", "include_summed_score": True},
+            },
             "score_request_unknown_item": {"responses": [{"id": "R-1003", "group": "paper", "answers": {"T9": 1}}]},
             "alias_request": {"version": 1},
         }
@@ -109,15 +178,25 @@ def main() -> int:
                 body = json.loads((OUT / f"{case['request']}.json").read_text()) if "request" in case else None
                 reply = client.request(case["method"], case["path"], json=body, headers=headers)
                 if reply.status_code != case["status"]:
-                    raise SystemExit(f"{case['name']}: expected {case['status']}, got {reply.status_code}: "
-                                     f"{reply.text}")
+                    raise SystemExit(
+                        f"{case['name']}: expected {case['status']}, got {reply.status_code}: {reply.text}"
+                    )
                 response_name = case.get("response", case["name"])
                 (OUT / f"{response_name}.json").write_text(json.dumps(reply.json(), indent=1) + "\n")
                 manifest.append({**case, "response": response_name})
-        (OUT / "cases.json").write_text(json.dumps({
-            "_about": "Requests replayed by tests/service/test_examples.py against an app whose store holds "
-                      "bundle.json (invented data) and which trusts the example keys below.",
-            "keys": KEYS, "scopes": SCOPES, "cases": manifest}, indent=1) + "\n")
+        (OUT / "cases.json").write_text(
+            json.dumps(
+                {
+                    "_about": "Requests replayed by tests/service/test_examples.py against an app whose store holds "
+                    "bundle.json (invented data) and which trusts the example keys below.",
+                    "keys": KEYS,
+                    "scopes": SCOPES,
+                    "cases": manifest,
+                },
+                indent=1,
+            )
+            + "\n"
+        )
         print(f"wrote {len(manifest)} cases to {OUT}")
     finally:
         shutil.rmtree(work)

@@ -72,8 +72,15 @@ class PayloadTooLarge(ProblemError):
     status, slug, title = 413, "payload-too-large", "Request too large"
 
 
-def problem(status: int, slug: str, title: str, detail: str, instance: str | None = None,
-            headers: dict[str, str] | None = None, **extra: Any) -> JSONResponse:
+def problem(
+    status: int,
+    slug: str,
+    title: str,
+    detail: str,
+    instance: str | None = None,
+    headers: dict[str, str] | None = None,
+    **extra: Any,
+) -> JSONResponse:
     body: dict[str, Any] = {"type": PROBLEM_BASE + slug, "title": title, "status": status, "detail": detail}
     if instance:
         body["instance"] = instance
@@ -95,17 +102,28 @@ def install_handlers(app: FastAPI) -> None:
         ]
         first = errors[0] if errors else {"field": "", "message": "invalid request"}
         detail = f"{first['field']}: {first['message']}" + (f" (and {len(errors) - 1} more)" if len(errors) > 1 else "")
-        return problem(422, "validation-error", "The request does not match the schema", detail, request.url.path,
-                       errors=errors)
+        return problem(
+            422, "validation-error", "The request does not match the schema", detail, request.url.path, errors=errors
+        )
 
     @app.exception_handler(StarletteHTTPException)
     async def _http(request: Request, exc: StarletteHTTPException) -> JSONResponse:
         slug = {404: "not-found", 405: "method-not-allowed"}.get(exc.status_code, "http-error")
-        return problem(exc.status_code, slug, str(exc.detail), f"{request.method} {request.url.path}: {exc.detail}",
-                       request.url.path)
+        return problem(
+            exc.status_code,
+            slug,
+            str(exc.detail),
+            f"{request.method} {request.url.path}: {exc.detail}",
+            request.url.path,
+        )
 
     @app.exception_handler(Exception)
     async def _unexpected(request: Request, exc: Exception) -> JSONResponse:
         log.exception("unexpected error on %s %s", request.method, request.url.path)
-        return problem(500, "internal-error", "Internal server error",
-                       "The server could not complete the request; the error was logged.", request.url.path)
+        return problem(
+            500,
+            "internal-error",
+            "Internal server error",
+            "The server could not complete the request; the error was logged.",
+            request.url.path,
+        )

@@ -77,14 +77,21 @@ def _example(name: str) -> Any:
 
 def _problem_responses(*codes: int) -> dict[int | str, dict[str, Any]]:
     descriptions = {
-        401: "missing or unknown API key", 403: "the key lacks the scope", 404: "unknown bundle or version",
-        409: "version already published with other content", 413: "request too large",
-        422: "invalid request, item, answer or group", 503: "the shared store is unreachable",
+        401: "missing or unknown API key",
+        403: "the key lacks the scope",
+        404: "unknown bundle or version",
+        409: "version already published with other content",
+        413: "request too large",
+        422: "invalid request, item, answer or group",
+        503: "the shared store is unreachable",
     }
     out: dict[int | str, dict[str, Any]] = {}
     for code in codes:
-        entry: dict[str, Any] = {"model": Problem, "description": descriptions[code],
-                                 "content": {PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/Problem"}}}}
+        entry: dict[str, Any] = {
+            "model": Problem,
+            "description": descriptions[code],
+            "content": {PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/Problem"}}},
+        }
         example = _example(f"problem_{code}")
         if example is not None:
             entry["content"][PROBLEM_MEDIA_TYPE]["example"] = example
@@ -156,9 +163,13 @@ class BodyLimit:
         await self.app(scope, replayed, send)
 
     async def _reject(self, scope: Scope, receive: Receive, send: Send) -> None:
-        response = problem(413, "payload-too-large", "Request too large",
-                           f"the request body is larger than {self.max_bytes} bytes (EQUITHETA_MAX_BODY_BYTES)",
-                           scope.get("path"))
+        response = problem(
+            413,
+            "payload-too-large",
+            "Request too large",
+            f"the request body is larger than {self.max_bytes} bytes (EQUITHETA_MAX_BODY_BYTES)",
+            scope.get("path"),
+        )
         await response(scope, receive, send)
 
 
@@ -186,9 +197,18 @@ class Observe:
             elapsed = time.perf_counter() - start
             route = getattr(scope.get("route"), "path", "unmatched")
             self.metrics.observe_request(route, scope["method"], status["code"], elapsed)
-            log.info(json.dumps({"event": "request", "method": scope["method"], "route": route,
-                                 "path": scope.get("path"), "status": status["code"],
-                                 "ms": round(elapsed * 1000, 3)}))
+            log.info(
+                json.dumps(
+                    {
+                        "event": "request",
+                        "method": scope["method"],
+                        "route": route,
+                        "path": scope.get("path"),
+                        "status": status["code"],
+                        "ms": round(elapsed * 1000, 3),
+                    }
+                )
+            )
 
 
 class JsonLogFormatter(logging.Formatter):
@@ -198,8 +218,13 @@ class JsonLogFormatter(logging.Formatter):
             body = json.loads(message)
         else:
             body = {"event": "log", "message": message}
-        body.update({"level": record.levelname.lower(), "logger": record.name,
-                     "time": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created))})
+        body.update(
+            {
+                "level": record.levelname.lower(),
+                "logger": record.name,
+                "time": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created)),
+            }
+        )
         if record.exc_info:
             body["exception"] = self.formatException(record.exc_info)
         return json.dumps(body)
@@ -254,19 +279,36 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
         if (cols < 0).any():
             i = members[0]
             item = keys[int(np.flatnonzero(cols < 0)[0])]
-            problems.append((i, UnknownItem(
-                f"responses[{i}] (id {request.responses[i].id!r}): item {item!r} is not in bundle {bundle.label}",
-                field=f"responses.{i}.answers.{item}")))
+            problems.append(
+                (
+                    i,
+                    UnknownItem(
+                        f"responses[{i}] (id {request.responses[i].id!r}): item {item!r} is not in bundle "
+                        f"{bundle.label}",
+                        field=f"responses.{i}.answers.{item}",
+                    ),
+                )
+            )
             continue
-        values = np.fromiter(chain.from_iterable(request.responses[i].answers.values() for i in members),
-                             dtype=np.int64, count=len(members) * len(keys)).reshape(len(members), len(keys))
+        values = np.fromiter(
+            chain.from_iterable(request.responses[i].answers.values() for i in members),
+            dtype=np.int64,
+            count=len(members) * len(keys),
+        ).reshape(len(members), len(keys))
         outside = (values < 0) | (values >= limits[cols][None, :])
         if outside.any():
             r, c = (int(v[0]) for v in np.nonzero(outside))
             i, item, value = members[r], keys[c], int(values[r, c])
-            problems.append((i, AnswerOutOfRange(
-                f"responses[{i}] (id {request.responses[i].id!r}), item {item!r}: answer {value} is outside the "
-                f"item's categories 0..{limits[cols[c]] - 1}", field=f"responses.{i}.answers.{item}")))
+            problems.append(
+                (
+                    i,
+                    AnswerOutOfRange(
+                        f"responses[{i}] (id {request.responses[i].id!r}), item {item!r}: answer {value} is "
+                        f"outside the item's categories 0..{limits[cols[c]] - 1}",
+                        field=f"responses.{i}.answers.{item}",
+                    ),
+                )
+            )
             continue
         x[np.ix_(rows, cols)] = values
     if problems:
@@ -276,10 +318,14 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
     except UnknownGroup as exc:
         vector = request.responses[exc.index]
         known = ", ".join(sorted(scorer.plans))
-        what = "no group given and the bundle has several groups" if exc.group is None else \
-            f"group {exc.group!r} is not in bundle {bundle.label}"
-        raise UnknownGroupProblem(f"responses[{exc.index}] (id {vector.id!r}): {what} (groups: {known})",
-                                  field=f"responses.{exc.index}.group") from exc
+        what = (
+            "no group given and the bundle has several groups"
+            if exc.group is None
+            else f"group {exc.group!r} is not in bundle {bundle.label}"
+        )
+        raise UnknownGroupProblem(
+            f"responses[{exc.index}] (id {vector.id!r}): {what} (groups: {known})", field=f"responses.{exc.index}.group"
+        ) from exc
     result = scorer.score(x, groups, method=request.options.method)
     tables: dict[str, dict[int, tuple[float, float]]] = {}
     if request.options.include_summed_score:
@@ -287,25 +333,45 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
             tables[name] = {row.summed_score: (row.theta, row.se) for row in quality.summed_score_table}
     excluded = {g: [{"item": i, "reason": r} for i, r in scorer.excluded_for(g)] for g in scorer.plans}
     # Plain dicts (the ScoreResult shape) instead of one model per respondent: the batch hot path.
-    columns = [_json_floats(array) for array in
-               (result.theta, result.se, result.scale_score, result.scale_se, result.person_fit)]
+    columns = [
+        _json_floats(array)
+        for array in (result.theta, result.se, result.scale_score, result.scale_se, result.person_fit)
+    ]
     answered = result.n_answered.tolist()
     summed_scores = result.summed_score.tolist()
     results = [
-        {"id": vector.id, "group": g, "theta": theta, "se": se, "scale_score": scale, "scale_se": scale_se,
-         "items_answered": n_items, "excluded_items": excluded[g], "flags": list(flags), "person_fit_lz_star": lz,
-         "summed_score": None, "summed_score_theta": None, "summed_score_se": None}
+        {
+            "id": vector.id,
+            "group": g,
+            "theta": theta,
+            "se": se,
+            "scale_score": scale,
+            "scale_se": scale_se,
+            "items_answered": n_items,
+            "excluded_items": excluded[g],
+            "flags": list(flags),
+            "person_fit_lz_star": lz,
+            "summed_score": None,
+            "summed_score_theta": None,
+            "summed_score_se": None,
+        }
         for vector, g, theta, se, scale, scale_se, n_items, flags, lz in zip(
-            request.responses, groups, *columns[:4], answered, result.flags, columns[4], strict=True)
+            request.responses, groups, *columns[:4], answered, result.flags, columns[4], strict=True
+        )
     ]
     if request.options.include_summed_score:
         for entry, summed in zip(results, summed_scores, strict=True):
             if math.isfinite(summed):
                 theta_s, se_s = tables.get(entry["group"], {}).get(int(summed), (math.nan, math.nan))
-                entry.update(summed_score=int(summed), summed_score_theta=_finite(theta_s),
-                             summed_score_se=_finite(se_s))
-    return {"bundle": {"name": bundle.name, "version": bundle.version, "hash": bundle.hash},
-            "method": result.method, "results": results, "caution": CAUTION}
+                entry.update(
+                    summed_score=int(summed), summed_score_theta=_finite(theta_s), summed_score_se=_finite(se_s)
+                )
+    return {
+        "bundle": {"name": bundle.name, "version": bundle.version, "hash": bundle.hash},
+        "method": result.method,
+        "results": results,
+        "caution": CAUTION,
+    }
 
 
 # -- app ----------------------------------------------------------------------------------------------
@@ -337,9 +403,12 @@ def _needs(scope: str) -> Callable[[Principal], Principal]:
 ScoreScope = Annotated[Principal, Depends(_needs("score"))]
 ReadScope = Annotated[Principal, Depends(_needs("read"))]
 PublishScope = Annotated[Principal, Depends(_needs("publish"))]
-ScoreBody = Annotated[ScoreRequest, Body(
-    openapi_examples={"one respondent": {"value": _example("score_request")}} if _example("score_request") else None
-)]
+ScoreBody = Annotated[
+    ScoreRequest,
+    Body(
+        openapi_examples={"one respondent": {"value": _example("score_request")}} if _example("score_request") else None
+    ),
+]
 
 
 def create_app(settings: Settings) -> FastAPI:
@@ -356,10 +425,24 @@ def create_app(settings: Settings) -> FastAPI:
         registry.start_listener()
         app.state.registry = registry
         if keyring.open:
-            log.warning(json.dumps({"event": "startup", "message": "no API keys configured: open access, bound to "
-                                    f"loopback only ({settings.host})"}))
-        log.info(json.dumps({"event": "startup", "store": repr(store), "bundles_loaded": registry.loaded_count,
-                             "keys": len(keyring.records)}))
+            log.warning(
+                json.dumps(
+                    {
+                        "event": "startup",
+                        "message": f"no API keys configured: open access, bound to loopback only ({settings.host})",
+                    }
+                )
+            )
+        log.info(
+            json.dumps(
+                {
+                    "event": "startup",
+                    "store": repr(store),
+                    "bundles_loaded": registry.loaded_count,
+                    "keys": len(keyring.records),
+                }
+            )
+        )
         yield
         registry.stop()
 
@@ -391,8 +474,10 @@ def create_app(settings: Settings) -> FastAPI:
 
     def run_scoring(loaded: LoadedBundle, body: ScoreRequest) -> Any:
         if len(body.responses) > settings.max_vectors:
-            raise PayloadTooLarge(f"{len(body.responses)} response vectors; at most {settings.max_vectors} per "
-                                  "request (EQUITHETA_MAX_VECTORS)")
+            raise PayloadTooLarge(
+                f"{len(body.responses)} response vectors; at most {settings.max_vectors} per "
+                "request (EQUITHETA_MAX_VECTORS)"
+            )
         document = score_vectors(loaded, body)
         metrics.count_vectors(loaded.bundle.label, len(body.responses))
         # Built in the ScoreResponse shape (tests check it against the schema); sent without re-validation.
@@ -402,48 +487,76 @@ def create_app(settings: Settings) -> FastAPI:
     def healthz() -> Health:
         return Health(status="ok")
 
-    @app.get("/readyz", response_model=Readiness, tags=["operations"],
-             responses={200: _ok_example("readyz"), 503: {"model": Readiness, "description": "not ready"}})
+    @app.get(
+        "/readyz",
+        response_model=Readiness,
+        tags=["operations"],
+        responses={200: _ok_example("readyz"), 503: {"model": Readiness, "description": "not ready"}},
+    )
     def readyz(registry: RegistryDep) -> Any:
         reachable = registry.reachable()
         metrics.set_gauge("equitheta_bundles_loaded", registry.loaded_count)
         metrics.set_gauge("equitheta_store_up", 1.0 if reachable else 0.0)
         if reachable:
             return Readiness(status="ready", store="reachable", bundles_loaded=registry.loaded_count)
-        body = Readiness(status="degraded" if registry.loaded_count else "not_ready", store="unreachable",
-                         bundles_loaded=registry.loaded_count, detail=registry.degraded_reason)
+        body = Readiness(
+            status="degraded" if registry.loaded_count else "not_ready",
+            store="unreachable",
+            bundles_loaded=registry.loaded_count,
+            detail=registry.degraded_reason,
+        )
         if registry.loaded_count:
             return body
         return JSONResponse(body.model_dump(), status_code=503)
 
-    @app.get("/metrics", response_class=PlainTextResponse, tags=["operations"],
-             responses={200: {"content": {"text/plain": {"example": "equitheta_requests_total{...} 1\n"}}}})
+    @app.get(
+        "/metrics",
+        response_class=PlainTextResponse,
+        tags=["operations"],
+        responses={200: {"content": {"text/plain": {"example": "equitheta_requests_total{...} 1\n"}}}},
+    )
     def metrics_route(registry: RegistryDep) -> PlainTextResponse:
         metrics.set_gauge("equitheta_bundles_loaded", registry.loaded_count)
         return PlainTextResponse(metrics.render(), media_type="text/plain; version=0.0.4")
 
-    @app.post("/v1/bundles/{name}/scores", response_model=ScoreResponse, tags=["scoring"],
-              responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 503)})
-    def score_default(name: NameParam, body: ScoreBody, registry: RegistryDep,
-                      _: ScoreScope) -> Any:
+    @app.post(
+        "/v1/bundles/{name}/scores",
+        response_model=ScoreResponse,
+        tags=["scoring"],
+        responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 503)},
+    )
+    def score_default(name: NameParam, body: ScoreBody, registry: RegistryDep, _: ScoreScope) -> Any:
         """Score with the version the ``production`` alias points at, else the newest version."""
         return run_scoring(resolve(registry, name, None), body)
 
-    @app.post("/v1/bundles/{name}/versions/{version}/scores", response_model=ScoreResponse, tags=["scoring"],
-              responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 503)})
-    def score_version(name: NameParam, version: VersionParam, body: ScoreBody,
-                      registry: RegistryDep, _: ScoreScope) -> Any:
+    @app.post(
+        "/v1/bundles/{name}/versions/{version}/scores",
+        response_model=ScoreResponse,
+        tags=["scoring"],
+        responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 503)},
+    )
+    def score_version(
+        name: NameParam, version: VersionParam, body: ScoreBody, registry: RegistryDep, _: ScoreScope
+    ) -> Any:
         """Score with one pinned version."""
         return run_scoring(resolve(registry, name, version), body)
 
-    @app.get("/v1/bundles", response_model=BundleList, tags=["bundles"],
-             responses={200: _ok_example("bundles"), **_problem_responses(401, 403)})
+    @app.get(
+        "/v1/bundles",
+        response_model=BundleList,
+        tags=["bundles"],
+        responses={200: _ok_example("bundles"), **_problem_responses(401, 403)},
+    )
     def list_bundles(registry: RegistryDep, _: ReadScope) -> BundleList:
         listing = registry.listing()
         return BundleList(bundles=[BundleSummary(name=n, versions=v, aliases=a) for n, (v, a) in listing.items()])
 
-    @app.get("/v1/bundles/{name}/versions", response_model=BundleSummary, tags=["bundles"],
-             responses={200: _ok_example("versions"), **_problem_responses(401, 403, 404, 503)})
+    @app.get(
+        "/v1/bundles/{name}/versions",
+        response_model=BundleSummary,
+        tags=["bundles"],
+        responses={200: _ok_example("versions"), **_problem_responses(401, 403, 404, 503)},
+    )
     def list_versions(name: NameParam, registry: RegistryDep, _: ReadScope) -> BundleSummary:
         try:
             versions, aliases = registry.versions(name)
@@ -453,8 +566,12 @@ def create_app(settings: Settings) -> FastAPI:
             raise StoreUnavailableProblem(str(exc)) from exc
         return BundleSummary(name=name, versions=versions, aliases=aliases)
 
-    @app.get("/v1/bundles/{name}/versions/{version}", response_model=Bundle, tags=["bundles"],
-             responses={**_problem_responses(401, 403, 404, 503)})
+    @app.get(
+        "/v1/bundles/{name}/versions/{version}",
+        response_model=Bundle,
+        tags=["bundles"],
+        responses={**_problem_responses(401, 403, 404, 503)},
+    )
     def get_version(name: NameParam, version: VersionParam, registry: RegistryDep, _: ReadScope) -> Bundle:
         """The whole verified bundle: groups, items, policy per item and group with evidence, anchors, quality."""
         return resolve(registry, name, version).bundle
@@ -471,25 +588,44 @@ def create_app(settings: Settings) -> FastAPI:
         except BundleNotFound as exc:
             raise BundleNotFoundProblem(str(exc)) from exc
 
-    @app.put("/v1/bundles/{name}/versions/{version}", response_model=PublishResult, status_code=201,
-             tags=["bundles"], responses={200: {"model": PublishResult, "description": "identical content was "
-                                                "already published"}, **_problem_responses(401, 403, 409, 413,
-                                                                                            422, 503)})
-    def put_version(name: NameParam, version: VersionParam, bundle: Bundle, registry: RegistryDep,
-                    _: PublishScope) -> Any:
+    @app.put(
+        "/v1/bundles/{name}/versions/{version}",
+        response_model=PublishResult,
+        status_code=201,
+        tags=["bundles"],
+        responses={
+            200: {"model": PublishResult, "description": "identical content was already published"},
+            **_problem_responses(401, 403, 409, 413, 422, 503),
+        },
+    )
+    def put_version(
+        name: NameParam, version: VersionParam, bundle: Bundle, registry: RegistryDep, _: PublishScope
+    ) -> Any:
         """Publish a bundle at this version; a published version never changes (other content: 409)."""
         if bundle.name != name or bundle.version != version:
-            raise InvalidBundle(f"the document is {bundle.name}@{bundle.version} but the path names {name}@{version}",
-                                field="body.version" if bundle.name == name else "body.name")
+            raise InvalidBundle(
+                f"the document is {bundle.name}@{bundle.version} but the path names {name}@{version}",
+                field="body.version" if bundle.name == name else "body.name",
+            )
         stored, created = publish_guard(lambda: registry.put_version(bundle))
         result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
         return result if created else JSONResponse(result.model_dump(), status_code=200)
 
-    @app.post("/v1/bundles/{name}/versions", response_model=PublishResult, status_code=201, tags=["bundles"],
-              responses={200: {"model": PublishResult, "description": "an identical calibration (same content "
-                                                                      "but for version, time and hash) is already "
-                                                                      "published: nothing changed"},
-                         **_problem_responses(401, 403, 413, 422, 503)})
+    @app.post(
+        "/v1/bundles/{name}/versions",
+        response_model=PublishResult,
+        status_code=201,
+        tags=["bundles"],
+        responses={
+            200: {
+                "model": PublishResult,
+                "description": "an identical calibration (same content "
+                "but for version, time and hash) is already "
+                "published: nothing changed",
+            },
+            **_problem_responses(401, 403, 413, 422, 503),
+        },
+    )
     def publish_next(name: NameParam, bundle: Bundle, registry: RegistryDep, _: PublishScope) -> Any:
         """Publish a bundle as the next version of ``name`` (the version in the document is ignored).
 
@@ -501,10 +637,15 @@ def create_app(settings: Settings) -> FastAPI:
         result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
         return result if created else JSONResponse(result.model_dump(), status_code=200)
 
-    @app.put("/v1/bundles/{name}/aliases/{alias}", response_model=AliasResult, tags=["bundles"],
-             responses={200: _ok_example("alias_response"), **_problem_responses(401, 403, 404, 422, 503)})
-    def move_alias(name: NameParam, alias: AliasParam, body: AliasRequest, registry: RegistryDep,
-                   _: PublishScope) -> AliasResult:
+    @app.put(
+        "/v1/bundles/{name}/aliases/{alias}",
+        response_model=AliasResult,
+        tags=["bundles"],
+        responses={200: _ok_example("alias_response"), **_problem_responses(401, 403, 404, 422, 503)},
+    )
+    def move_alias(
+        name: NameParam, alias: AliasParam, body: AliasRequest, registry: RegistryDep, _: PublishScope
+    ) -> AliasResult:
         """Point an alias (e.g. ``production``) at a published version; move it back the same way."""
         version = publish_guard(lambda: registry.set_alias(name, alias, body.version))
         return AliasResult(name=name, alias=alias, version=version)
@@ -542,8 +683,15 @@ def serve(argv: list[str] | None = None) -> int:
         return 2
     if not settings.has_keys:
         print(f"no API keys configured: open access, bound to loopback only ({settings.host})", file=sys.stderr)
-    uvicorn.run("service.main:app_from_env", factory=True, host=settings.host, port=settings.port,
-                workers=settings.workers, log_level=settings.log_level, access_log=False)
+    uvicorn.run(
+        "service.main:app_from_env",
+        factory=True,
+        host=settings.host,
+        port=settings.port,
+        workers=settings.workers,
+        log_level=settings.log_level,
+        access_log=False,
+    )
     return 0
 
 

@@ -50,20 +50,32 @@ class Metrics:
         ]
         with self._lock:
             lines += [f"equitheta_requests_total{_labels(k)} {v:g}" for k, v in sorted(self.requests.items())]
-            lines += ["# HELP equitheta_request_duration_seconds Request latency by route.",
-                      "# TYPE equitheta_request_duration_seconds histogram"]
+            lines += [
+                "# HELP equitheta_request_duration_seconds Request latency by route.",
+                "# TYPE equitheta_request_duration_seconds histogram",
+            ]
             for route in sorted(self.latency_count):
                 for bound, count in zip(BUCKETS, self.latency_buckets[route], strict=True):
-                    lines.append(f"equitheta_request_duration_seconds_bucket"
-                                 f"{_labels((('route', route), ('le', f'{bound:g}')))} {count:g}")
-                lines.append(f"equitheta_request_duration_seconds_bucket{_labels((('route', route), ('le', '+Inf')))} "
-                             f"{self.latency_count[route]:g}")
-                lines.append(f"equitheta_request_duration_seconds_sum{_labels((('route', route),))} "
-                             f"{self.latency_sum[route]:.6f}")
-                lines.append(f"equitheta_request_duration_seconds_count{_labels((('route', route),))} "
-                             f"{self.latency_count[route]:g}")
-            lines += ["# HELP equitheta_vectors_scored_total Response vectors scored, by bundle.",
-                      "# TYPE equitheta_vectors_scored_total counter"]
+                    lines.append(
+                        f"equitheta_request_duration_seconds_bucket"
+                        f"{_labels((('route', route), ('le', f'{bound:g}')))} {count:g}"
+                    )
+                lines.append(
+                    f"equitheta_request_duration_seconds_bucket{_labels((('route', route), ('le', '+Inf')))} "
+                    f"{self.latency_count[route]:g}"
+                )
+                lines.append(
+                    f"equitheta_request_duration_seconds_sum{_labels((('route', route),))} "
+                    f"{self.latency_sum[route]:.6f}"
+                )
+                lines.append(
+                    f"equitheta_request_duration_seconds_count{_labels((('route', route),))} "
+                    f"{self.latency_count[route]:g}"
+                )
+            lines += [
+                "# HELP equitheta_vectors_scored_total Response vectors scored, by bundle.",
+                "# TYPE equitheta_vectors_scored_total counter",
+            ]
             lines += [f"equitheta_vectors_scored_total{_labels(k)} {v:g}" for k, v in sorted(self.vectors.items())]
             for name, value in sorted(self.gauges.items()):
                 lines += [f"# TYPE {name} gauge", f"{name} {value:g}"]

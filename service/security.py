@@ -102,8 +102,10 @@ class KeyRing:
     @staticmethod
     def require(principal: Principal, scope: str) -> None:
         if scope not in principal.scopes:
-            raise Forbidden(f"key {principal.name!r} lacks the {scope!r} scope this route needs "
-                            f"(it has: {', '.join(sorted(principal.scopes)) or 'none'})")
+            raise Forbidden(
+                f"key {principal.name!r} lacks the {scope!r} scope this route needs "
+                f"(it has: {', '.join(sorted(principal.scopes)) or 'none'})"
+            )
 
 
 def main(argv: list[str]) -> int:

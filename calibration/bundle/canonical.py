@@ -26,9 +26,9 @@ class BundleIntegrityError(BundleError):
 
 
 def canonical_bytes(document: dict[str, Any]) -> bytes:
-    return json.dumps(
-        document, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
-    ).encode("utf-8")
+    return json.dumps(document, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False).encode(
+        "utf-8"
+    )
 
 
 def content_hash(document: dict[str, Any]) -> str:

@@ -114,8 +114,9 @@ class RedisStore:
 
     def _write(self, bundle: Bundle) -> bool:
         """SET NX the document, then index it; False when the version already exists."""
-        created = self._call(self.client.set, self.key("bundle", bundle.name, bundle.version), to_bytes(bundle),
-                             nx=True)
+        created = self._call(
+            self.client.set, self.key("bundle", bundle.name, bundle.version), to_bytes(bundle), nx=True
+        )
         if not created:
             return False
         pipe = self.client.pipeline()
@@ -143,8 +144,10 @@ class RedisStore:
             raise BundleIntegrityError(f"{bundle.label}: the stated hash does not match the content; refused")
         if self._write(sealed):
             # Keep the counter ahead of explicitly placed versions.
-            script = "if tonumber(redis.call('GET', KEYS[1]) or '0') < tonumber(ARGV[1]) then " \
-                     "redis.call('SET', KEYS[1], ARGV[1]) end return 1"
+            script = (
+                "if tonumber(redis.call('GET', KEYS[1]) or '0') < tonumber(ARGV[1]) then "
+                "redis.call('SET', KEYS[1], ARGV[1]) end return 1"
+            )
             self._call(self.client.eval, script, 1, self.key("next", bundle.name), bundle.version)
             return sealed
         existing = self.get(bundle.name, bundle.version)
@@ -170,20 +173,32 @@ class RedisStore:
         if not valid_alias(alias):
             raise InvalidReference(f"alias {alias!r} is not valid: a lower-case letter, then letters, digits, _ or -")
         self.get(name, version)
-        self._call(self._set_alias, keys=[self.key("aliases", name), self.key("alias-history", name, alias)],
-                   args=[alias, version, _now()])
-        self._call(self.client.publish, self.channel,
-                   json.dumps({"kind": "alias", "name": name, "alias": alias, "version": version}))
+        self._call(
+            self._set_alias,
+            keys=[self.key("aliases", name), self.key("alias-history", name, alias)],
+            args=[alias, version, _now()],
+        )
+        self._call(
+            self.client.publish,
+            self.channel,
+            json.dumps({"kind": "alias", "name": name, "alias": alias, "version": version}),
+        )
         return self.aliases(name)[alias]
 
     def alias_back(self, name: str, alias: str) -> AliasRecord:
         self._check_name(name)
         if alias not in self.aliases(name):
             raise BundleNotFound(f"bundle {name!r} has no alias {alias!r}")
-        version = self._call(self._alias_back, keys=[self.key("aliases", name),
-                                                     self.key("alias-history", name, alias)], args=[alias, _now()])
+        version = self._call(
+            self._alias_back,
+            keys=[self.key("aliases", name), self.key("alias-history", name, alias)],
+            args=[alias, _now()],
+        )
         if int(version) < 0:
             raise BundleError(f"alias {alias!r} of {name!r} has no earlier version to move back to")
-        self._call(self.client.publish, self.channel,
-                   json.dumps({"kind": "alias", "name": name, "alias": alias, "version": int(version)}))
+        self._call(
+            self.client.publish,
+            self.channel,
+            json.dumps({"kind": "alias", "name": name, "alias": alias, "version": int(version)}),
+        )
         return self.aliases(name)[alias]

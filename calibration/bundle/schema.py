@@ -74,7 +74,8 @@ class PolicyEvidence(_Frozen):
     effect_size: float | None = None
     effect_size_se: float | None = Field(None, description="Delta-method SE of the effect size (theta units)")
     effect_level: str | None = Field(
-        None, description="negligible / moderate / large when the effect's 95% interval lies in one band, else "
+        None,
+        description="negligible / moderate / large when the effect's 95% interval lies in one band, else "
         "uncertain (see DifReport.effect_levels)",
     )
     note: str = ""
@@ -119,8 +120,9 @@ class ItemEntry(_Frozen):
             sorted(set(self.category_map)) != list(range(self.n_categories))
             or any(b < a for a, b in zip(self.category_map, self.category_map[1:], strict=False))
         ):
-            raise ValueError(f"item {self.id!r}: category_map must map answer codes onto 0..{self.n_categories - 1} "
-                             "in order")
+            raise ValueError(
+                f"item {self.id!r}: category_map must map answer codes onto 0..{self.n_categories - 1} in order"
+            )
         return self
 
     @property

@@ -79,7 +79,8 @@ class BundleScorer:
         # Answer code -> model category, for items whose sparse categories were merged at calibration.
         self.recode: dict[int, np.ndarray] = {
             j: np.array(item.category_map, dtype=np.float64)
-            for j, item in enumerate(bundle.items) if item.category_map is not None
+            for j, item in enumerate(bundle.items)
+            if item.category_map is not None
         }
         settings = bundle.scoring
         self.grid = QuadratureGrid(settings.quadrature.n_points, settings.quadrature.lower, settings.quadrature.upper)
@@ -103,10 +104,12 @@ class BundleScorer:
                     intercepts[j, : item.n_categories - 1] = policy.intercepts
                 keep.append(j)
             columns = np.array(keep, dtype=np.int64)
-            params = ItemParameters(slopes=slopes, intercepts=intercepts, n_categories=shared.n_categories,
-                                    models=shared.models).subset(columns)
-            self.plans[group.name] = GroupScoringPlan(group.name, columns, params, tuple(excluded),
-                                                      score_tables(params, self.grid))
+            params = ItemParameters(
+                slopes=slopes, intercepts=intercepts, n_categories=shared.n_categories, models=shared.models
+            ).subset(columns)
+            self.plans[group.name] = GroupScoringPlan(
+                group.name, columns, params, tuple(excluded), score_tables(params, self.grid)
+            )
 
     @property
     def default_group(self) -> str | None:
@@ -141,11 +144,15 @@ class BundleScorer:
                 resolved.append(reference)
         if problems:
             i, g = problems[0]
-            what = "no group given and the bundle has several groups" if g is None else \
-                f"group {g!r} is not in bundle {self.bundle.label}"
+            what = (
+                "no group given and the bundle has several groups"
+                if g is None
+                else f"group {g!r} is not in bundle {self.bundle.label}"
+            )
             more = f" ({len(problems) - 1} more respondents like this)" if len(problems) > 1 else ""
-            raise UnknownGroup(f"respondent {i + 1}: {what} (groups: {', '.join(sorted(known))}){more}",
-                               problems=problems)
+            raise UnknownGroup(
+                f"respondent {i + 1}: {what} (groups: {', '.join(sorted(known))}){more}", problems=problems
+            )
         return tuple(resolved)
 
     def score(
@@ -181,16 +188,28 @@ class BundleScorer:
             rows = np.flatnonzero(group_array == name)
             if rows.size == 0:
                 continue
-            result = score(plan.params, x[np.ix_(rows, plan.columns)], method=method, grid=self.grid,
-                           prior=self.prior, ml_bound=self.bundle.scoring.ml_bound, tables=plan.tables)
+            result = score(
+                plan.params,
+                x[np.ix_(rows, plan.columns)],
+                method=method,
+                grid=self.grid,
+                prior=self.prior,
+                ml_bound=self.bundle.scoring.ml_bound,
+                tables=plan.tables,
+            )
             theta[rows], se[rows] = result.theta, result.se
             minimum[rows] = min(self.bundle.scoring.min_items_answered, plan.columns.size)
             n_answered[rows], extreme[rows] = result.n_answered, result.extreme
             sub = x[np.ix_(rows, plan.columns)]
             finite = np.isfinite(theta[rows])
             # l_z* with the estimating equation of the method: ML has no prior term, MAP and EAP the prior's.
-            person_fit[rows[finite]] = person_fit_lz(plan.params, sub[finite], theta[rows][finite], corrected=True,
-                                                     prior=None if method == "ml" else self.prior)
+            person_fit[rows[finite]] = person_fit_lz(
+                plan.params,
+                sub[finite],
+                theta[rows][finite],
+                corrected=True,
+                prior=None if method == "ml" else self.prior,
+            )
             complete = ~np.isnan(sub).any(axis=1)
             summed[rows[complete]] = sub[complete].sum(axis=1)
         scale_score, scale_se = self.reporting_scale.transform(theta, se)
@@ -204,8 +223,16 @@ class BundleScorer:
         for i in np.flatnonzero(np.logical_or.reduce([mask for mask, _ in marks])):
             flags[i] = tuple(name for mask, name in marks if mask[i])
         return ScoredBatch(
-            theta=theta, se=se, scale_score=scale_score, scale_se=scale_se, n_answered=n_answered,
-            groups=tuple(groups), flags=tuple(flags), method=method, person_fit=person_fit, summed_score=summed,
+            theta=theta,
+            se=se,
+            scale_score=scale_score,
+            scale_se=scale_se,
+            n_answered=n_answered,
+            groups=tuple(groups),
+            flags=tuple(flags),
+            method=method,
+            person_fit=person_fit,
+            summed_score=summed,
         )
 
     def excluded_for(self, group: str) -> tuple[tuple[str, str], ...]:

@@ -220,9 +220,7 @@ class DirectoryStore:
         directory.mkdir(parents=True, exist_ok=True)
         sealed = seal(bundle)
         if bundle.hash and bundle.hash != sealed.hash:
-            raise BundleIntegrityError(
-                f"{bundle.label}: the stated hash does not match the content; refused"
-            )
+            raise BundleIntegrityError(f"{bundle.label}: the stated hash does not match the content; refused")
         try:
             self._write_new(directory, sealed)
         except FileExistsError:

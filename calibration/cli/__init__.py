@@ -61,54 +61,91 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:
     cal.add_argument("--id-column", default="id", help="column holding the respondent ids")
     cal.add_argument("--items", type=Path, help="item spec CSV (item, model, categories, include, label)")
     cal.add_argument("--model", choices=["2pl", "1pl"], default="2pl", help="model for right/wrong items")
-    cal.add_argument("--slope-prior-sd", type=_positive_float, default=None,
-                     help="log-normal slope prior, log a ~ N(0, SD^2) (default: none, pure marginal ML)")
+    cal.add_argument(
+        "--slope-prior-sd",
+        type=_positive_float,
+        default=None,
+        help="log-normal slope prior, log a ~ N(0, SD^2) (default: none, pure marginal ML)",
+    )
     cal.add_argument("--max-iter", type=_positive_int, default=1000, help="most EM iterations per model")
-    cal.add_argument("--tolerance", type=_positive_float, default=1e-5,
-                     help="largest parameter change that counts as converged")
+    cal.add_argument(
+        "--tolerance", type=_positive_float, default=1e-5, help="largest parameter change that counts as converged"
+    )
     cal.add_argument("--alias", help="also point this alias (e.g. production) at the new version")
-    cal.add_argument("--republish", action="store_true",
-                     help="publish a new version even when the store already holds an identical calibration "
-                          "(same data, settings and results); without it nothing changes and the existing "
-                          "version is named")
+    cal.add_argument(
+        "--republish",
+        action="store_true",
+        help="publish a new version even when the store already holds an identical calibration "
+        "(same data, settings and results); without it nothing changes and the existing "
+        "version is named",
+    )
     grp = cal.add_argument_group("groups and DIF")
-    grp.add_argument("--group-column", help="column naming each respondent's group: turns on DIF screening, "
-                     "anchors and per-group policies")
+    grp.add_argument(
+        "--group-column",
+        help="column naming each respondent's group: turns on DIF screening, anchors and per-group policies",
+    )
     grp.add_argument("--reference-group", help="the group whose scale is N(0,1) (default: the largest group)")
-    grp.add_argument("--min-group-size", type=_positive_int, default=30,
-                     help="refuse a group smaller than this (30 is the hard floor; below about 500 the summary "
-                          "warns and says what suffers)")
-    grp.add_argument("--dif-action", choices=["exclude", "free"], default="exclude",
-                     help="what a DIF flag does for that group: leave the item out or give it group-specific "
-                          "parameters")
+    grp.add_argument(
+        "--min-group-size",
+        type=_positive_int,
+        default=30,
+        help="refuse a group smaller than this (30 is the hard floor; below about 500 the summary "
+        "warns and says what suffers)",
+    )
+    grp.add_argument(
+        "--dif-action",
+        choices=["exclude", "free"],
+        default="exclude",
+        help="what a DIF flag does for that group: leave the item out or give it group-specific parameters",
+    )
     grp.add_argument("--anchors", default="", help="comma-separated anchor items (default: chosen by screening)")
     grp.add_argument("--fdr", type=_positive_float, default=0.05, help="false discovery rate for DIF flags")
-    grp.add_argument("--mh-z", type=_positive_float, default=1.645,
-                     help="critical z of the 'greater than 1' test in the MH A/B/C rule (1.645 or 1.96)")
-    grp.add_argument("--policy-overrides", type=Path,
-                     help="CSV (item, group, status, note): reviewer decisions that override the proposed policy")
+    grp.add_argument(
+        "--mh-z",
+        type=_positive_float,
+        default=1.645,
+        help="critical z of the 'greater than 1' test in the MH A/B/C rule (1.645 or 1.96)",
+    )
+    grp.add_argument(
+        "--policy-overrides",
+        type=Path,
+        help="CSV (item, group, status, note): reviewer decisions that override the proposed policy",
+    )
     scale = cal.add_argument_group("reporting scale (score = mean + sd * theta, rounded and bounded)")
     scale.add_argument("--report-mean", type=float, default=500.0, help="reporting score at theta = 0")
     scale.add_argument("--report-sd", type=_positive_float, default=100.0, help="reporting points per theta unit")
     scale.add_argument("--report-min", type=float, default=100.0, help="lowest reporting score")
     scale.add_argument("--report-max", type=float, default=900.0, help="highest reporting score")
-    scale.add_argument("--report-decimals", type=int, choices=range(0, 7), default=0, metavar="{0..6}",
-                       help="decimal places of the reporting score (its SE keeps one more)")
+    scale.add_argument(
+        "--report-decimals",
+        type=int,
+        choices=range(0, 7),
+        default=0,
+        metavar="{0..6}",
+        help="decimal places of the reporting score (its SE keeps one more)",
+    )
 
 
 def _add_score(sub: argparse._SubParsersAction) -> None:
     sc = _subparser(sub, "score", "score a response file with a published bundle")
     sc.add_argument("responses", type=Path, help="CSV or Parquet: an id column and item columns")
-    sc.add_argument("--bundle", required=True, help="NAME, NAME@VERSION or NAME@ALIAS (NAME: the production "
-                    "alias, else the newest version)")
+    sc.add_argument(
+        "--bundle",
+        required=True,
+        help="NAME, NAME@VERSION or NAME@ALIAS (NAME: the production alias, else the newest version)",
+    )
     sc.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
     sc.add_argument("--out", required=True, type=Path, help="output CSV (written to a temporary name, then renamed)")
     sc.add_argument("--id-column", default="id", help="column holding the respondent ids")
     sc.add_argument("--method", choices=["eap", "map", "ml"], help="default: the bundle's scoring method")
     sc.add_argument("--ignore-columns", default="", help="comma-separated columns that are not items")
     sc.add_argument("--group-column", help="column naming each respondent's group (needed for bundles with groups)")
-    sc.add_argument("--unknown-group", choices=["error", "reference"], default="error",
-                    help="a group the bundle does not know: an error, or score with the reference group")
+    sc.add_argument(
+        "--unknown-group",
+        choices=["error", "reference"],
+        default="error",
+        help="a group the bundle does not know: an error, or score with the reference group",
+    )
 
 
 def _add_bundle(sub: argparse._SubParsersAction) -> None:
@@ -116,8 +153,11 @@ def _add_bundle(sub: argparse._SubParsersAction) -> None:
     bsub = bun.add_subparsers(dest="bundle_command", required=True, metavar="{list,show,alias,alias-back,schema}")
     bl = _subparser(bsub, "list", "bundles, versions and aliases in a store")
     bl.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
-    bs = _subparser(bsub, "show", "summary of one bundle version: parameters, policy with all DIF evidence, "
-                    "quality (or --json for the document)")
+    bs = _subparser(
+        bsub,
+        "show",
+        "summary of one bundle version: parameters, policy with all DIF evidence, quality (or --json for the document)",
+    )
     bs.add_argument("reference", help="NAME, NAME@VERSION or NAME@ALIAS")
     bs.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
     bs.add_argument("--json", action="store_true", help="print the verified bundle document")
@@ -150,9 +190,10 @@ def _add_demo(sub: argparse._SubParsersAction) -> None:
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
-        prog="equitheta", formatter_class=_Formatter,
+        prog="equitheta",
+        formatter_class=_Formatter,
         description="Calibrate IRT item banks across groups, publish versioned calibration bundles and score "
-                    "responses.",
+        "responses.",
     )
     parser.add_argument("--version", action="version", version=f"equitheta {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)

@@ -41,8 +41,11 @@ def settings_from_args(args: argparse.Namespace) -> PipelineSettings:
             slope_prior=None if args.slope_prior_sd is None else SlopePrior(0.0, args.slope_prior_sd),
         ),
         reporting_scale=ReportingScaleSettings(
-            location=args.report_mean, scale=args.report_sd, decimals=args.report_decimals,
-            minimum=args.report_min, maximum=args.report_max,
+            location=args.report_mean,
+            scale=args.report_sd,
+            decimals=args.report_decimals,
+            minimum=args.report_min,
+            maximum=args.report_max,
         ),
     )
 
@@ -50,8 +53,13 @@ def settings_from_args(args: argparse.Namespace) -> PipelineSettings:
 def run_calibrate(args: argparse.Namespace) -> int:
     parse_reference(args.name)  # a bad name fails before the work, not after
     spec = read_item_spec(args.items) if args.items else None
-    data = read_responses(args.responses, id_column=args.id_column, item_spec=spec, dichotomous_model=args.model,
-                          group_column=args.group_column)
+    data = read_responses(
+        args.responses,
+        id_column=args.id_column,
+        item_spec=spec,
+        dichotomous_model=args.model,
+        group_column=args.group_column,
+    )
     rows = read_policy_overrides(args.policy_overrides) if args.policy_overrides else []
     store = open_store(args.store)
     from calibration.pipeline import PolicyOverride, prepare_data
@@ -69,21 +77,30 @@ def run_calibrate(args: argparse.Namespace) -> int:
     identical = None if args.republish else find_identical(store, bundle)
     if identical is not None:
         console.file.write(summary)
-        console.print(f"identical to the published {identical.label} (same data, settings and results; "
-                      f"sha256 {identical.hash[:16]}...): nothing published"
-                      + (f", alias {args.alias} not moved (use `equitheta bundle alias`)" if args.alias else "")
-                      + "; pass --republish to publish a new version anyway", highlight=False)
+        console.print(
+            f"identical to the published {identical.label} (same data, settings and results; "
+            f"sha256 {identical.hash[:16]}...): nothing published"
+            + (f", alias {args.alias} not moved (use `equitheta bundle alias`)" if args.alias else "")
+            + "; pass --republish to publish a new version anyway",
+            highlight=False,
+        )
         return 0
     published = store.publish(bundle)
     alias = store.set_alias(published.name, args.alias, published.version) if args.alias else None
     console.file.write(summary)
-    console.print(f"published {published.label} (sha256 {published.hash[:16]}...)"
-                  + (f"; alias {alias.alias} -> {alias.version}" if alias else ""), highlight=False)
+    console.print(
+        f"published {published.label} (sha256 {published.hash[:16]}...)"
+        + (f"; alias {alias.alias} -> {alias.version}" if alias else ""),
+        highlight=False,
+    )
     return 0
 
 
 def _run_calibration(
-    data: ResponseData, name: str, settings: PipelineSettings, reference_group: str | None,
+    data: ResponseData,
+    name: str,
+    settings: PipelineSettings,
+    reference_group: str | None,
     overrides: list[PolicyOverride],
 ) -> Bundle:
     from calibration.pipeline import calibrate_data
@@ -99,6 +116,7 @@ def _run_calibration(
             progress.update(stage, label)
 
         # Non-convergence is reported in the bundle's warnings (the pipeline's fits do not warn).
-        outcome = calibrate_data(data, name=name, settings=settings, reference_group=reference_group,
-                                 overrides=overrides, progress=report)
+        outcome = calibrate_data(
+            data, name=name, settings=settings, reference_group=reference_group, overrides=overrides, progress=report
+        )
     return outcome.bundle

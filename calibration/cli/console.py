@@ -63,8 +63,13 @@ class ProgressReporter:
         if self.console.is_terminal:
             from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
-            self._progress = Progress(SpinnerColumn(), TextColumn("{task.description}"), TimeElapsedColumn(),
-                                      console=self.console, transient=True)
+            self._progress = Progress(
+                SpinnerColumn(),
+                TextColumn("{task.description}"),
+                TimeElapsedColumn(),
+                console=self.console,
+                transient=True,
+            )
             self._progress.__enter__()
             self._task = self._progress.add_task(self.title, total=None)
         else:
@@ -102,4 +107,3 @@ def dash(value: float | int | None, spec: str = ".3f") -> str:
         return format(value, spec)
     except (TypeError, ValueError):
         return str(value)
-

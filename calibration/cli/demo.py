@@ -21,30 +21,71 @@ def run_demo(args: argparse.Namespace) -> int:
     data_path = root / "tidewater_skills_responses.csv"
     write_csv_atomic(make_demo_responses(args.respondents, seed=args.seed), data_path)
     console.print("equitheta demo: Tidewater Regional Skills Check (invented data)", highlight=False)
-    console.print(f"1. invented {args.respondents} respondents at three sites x 24 items -> {data_path}",
-                  highlight=False)
+    console.print(
+        f"1. invented {args.respondents} respondents at three sites x 24 items -> {data_path}", highlight=False
+    )
     store_dir = root / "store"
-    console.print(f"2. calibrating by site (DIF screening, anchors, item policy) and publishing to {store_dir}",
-                  highlight=False)
-    code = main(["calibrate", str(data_path), "--name", "tidewater-skills", "--store", str(store_dir),
-                 "--group-column", "site", "--reference-group", "port-ellery",
-                 "--alias", "production", "--report-mean", "250", "--report-sd", "50",
-                 "--report-min", "0", "--report-max", "500"])
+    console.print(
+        f"2. calibrating by site (DIF screening, anchors, item policy) and publishing to {store_dir}", highlight=False
+    )
+    code = main(
+        [
+            "calibrate",
+            str(data_path),
+            "--name",
+            "tidewater-skills",
+            "--store",
+            str(store_dir),
+            "--group-column",
+            "site",
+            "--reference-group",
+            "port-ellery",
+            "--alias",
+            "production",
+            "--report-mean",
+            "250",
+            "--report-sd",
+            "50",
+            "--report-min",
+            "0",
+            "--report-max",
+            "500",
+        ]
+    )
     if code != 0:
         return code
     scores_path = root / "tidewater_skills_scores.csv"
     console.print("3. scoring every respondent with tidewater-skills@production", highlight=False)
-    code = main(["score", str(data_path), "--bundle", "tidewater-skills@production", "--store", str(store_dir),
-                 "--group-column", "site", "--out", str(scores_path)])
+    code = main(
+        [
+            "score",
+            str(data_path),
+            "--bundle",
+            "tidewater-skills@production",
+            "--store",
+            str(store_dir),
+            "--group-column",
+            "site",
+            "--out",
+            str(scores_path),
+        ]
+    )
     if code != 0:
         return code
     preview = pd.read_csv(scores_path, dtype={"scale_score": str, "scale_se": str}, keep_default_na=False).head(5)
     columns = ["id", "group", "theta", "se", "scale_score", "scale_se", "items_answered", "excluded_items"]
     table = new_table("first rows of the score file", columns)
     for _, row in preview.iterrows():
-        table.add_row(str(row["id"]), str(row["group"]), f"{row['theta']:.3f}", f"{row['se']:.3f}",
-                      str(row["scale_score"]), str(row["scale_se"]), str(row["items_answered"]),
-                      str(row["excluded_items"]))
+        table.add_row(
+            str(row["id"]),
+            str(row["group"]),
+            f"{row['theta']:.3f}",
+            f"{row['se']:.3f}",
+            str(row["scale_score"]),
+            str(row["scale_se"]),
+            str(row["items_answered"]),
+            str(row["excluded_items"]),
+        )
     console.print(table)
     console.print(f"done. Try: equitheta bundle show tidewater-skills --store {store_dir}", highlight=False)
     return 0

@@ -33,20 +33,34 @@ def print_calibration_summary(bundle: Bundle) -> None:
     group = bundle.quality.by_group[reference]
     grouped = len(bundle.metric.groups) > 1
     fit = bundle.fit
-    console.print(f"{bundle.name}: {len(bundle.items)} items, {bundle.provenance.n_respondents} respondents "
-                  f"({bundle.provenance.data_source})", highlight=False)
+    console.print(
+        f"{bundle.name}: {len(bundle.items)} items, {bundle.provenance.n_respondents} respondents "
+        f"({bundle.provenance.data_source})",
+        highlight=False,
+    )
     which = "final model under the item policy" if grouped else "model"
-    console.print(f"  {which}: log-likelihood {fit.log_likelihood:,.3f}  AIC {fit.aic:,.1f}  BIC {fit.bic:,.1f}  "
-                  f"{'converged' if fit.converged else 'NOT converged'} after {fit.n_iter} EM iterations",
-                  highlight=False)
+    console.print(
+        f"  {which}: log-likelihood {fit.log_likelihood:,.3f}  AIC {fit.aic:,.1f}  BIC {fit.bic:,.1f}  "
+        f"{'converged' if fit.converged else 'NOT converged'} after {fit.n_iter} EM iterations",
+        highlight=False,
+    )
     if grouped:
-        console.print("  (excluded cells count as not administered in the final model, so its log-likelihood is "
-                      "not comparable with the invariance ladder's below)", highlight=False)
+        console.print(
+            "  (excluded cells count as not administered in the final model, so its log-likelihood is "
+            "not comparable with the invariance ladder's below)",
+            highlight=False,
+        )
     where = f"reference group {reference}" if grouped else "all respondents"
-    console.print(f"  {where}: alpha {dash(group.alpha)}  marginal reliability {dash(group.marginal_reliability)}"
-                  + ("  (every group: see the groups table)" if grouped else ""), highlight=False)
-    table = new_table("item parameters (slope-threshold form; SE in brackets)",
-                      ["item", "model", "slope", "thresholds", "item-rest r"], right=("slope", "item-rest r"))
+    console.print(
+        f"  {where}: alpha {dash(group.alpha)}  marginal reliability {dash(group.marginal_reliability)}"
+        + ("  (every group: see the groups table)" if grouped else ""),
+        highlight=False,
+    )
+    table = new_table(
+        "item parameters (slope-threshold form; SE in brackets)",
+        ["item", "model", "slope", "thresholds", "item-rest r"],
+        right=("slope", "item-rest r"),
+    )
     for item in bundle.items:
         thresholds = "  ".join(
             dash(b, ".2f") + ("" if s is None else f" ({s:.2f})")
@@ -67,17 +81,22 @@ def print_calibration_summary(bundle: Bundle) -> None:
 
 def _print_groups(bundle: Bundle) -> None:
     console = out_console()
-    groups = new_table(f"groups (reference: {bundle.metric.reference_group})",
-                       ["group", "n", "latent mean (SE)", "latent SD (SE)", "alpha", "marginal reliability",
-                        "items left out"], right=("n", "alpha", "marginal reliability", "items left out"))
+    groups = new_table(
+        f"groups (reference: {bundle.metric.reference_group})",
+        ["group", "n", "latent mean (SE)", "latent SD (SE)", "alpha", "marginal reliability", "items left out"],
+        right=("n", "alpha", "marginal reliability", "items left out"),
+    )
     for g in bundle.metric.groups:
         q = bundle.quality.by_group[g.name]
         left_out = sum(1 for item in bundle.items if item.policy[g.name].status == "excluded")
         groups.add_row(
-            g.name, str(g.n_respondents),
+            g.name,
+            str(g.n_respondents),
             dash(g.latent_mean) + ("" if g.latent_mean_se is None else f" ({g.latent_mean_se:.3f})"),
             dash(g.latent_sd) + ("" if g.latent_sd_se is None else f" ({g.latent_sd_se:.3f})"),
-            dash(q.alpha), dash(q.marginal_reliability), str(left_out),
+            dash(q.alpha),
+            dash(q.marginal_reliability),
+            str(left_out),
         )
     console.print(groups)
     anchors = bundle.anchors
@@ -132,8 +151,17 @@ def print_policy_evidence(bundle: Bundle) -> None:
     observed = {(r.item, r.group): r for r in bundle.dif.observed}
     table = new_table(
         "item policy and DIF evidence (cells not invariant, or flagged by any method; proposals for review)",
-        ["item", "group", "policy", "IRT G2 (df)", "FDR p", "effect, theta units [95%]", "observed score",
-         "logistic dR2", "methods"],
+        [
+            "item",
+            "group",
+            "policy",
+            "IRT G2 (df)",
+            "FDR p",
+            "effect, theta units [95%]",
+            "observed score",
+            "logistic dR2",
+            "methods",
+        ],
         right=("IRT G2 (df)", "FDR p"),
     )
     for item in bundle.items:
@@ -148,8 +176,17 @@ def print_policy_evidence(bundle: Bundle) -> None:
             status = policy.status if policy.status == "invariant" else f"{policy.status}"
             if policy.reason.startswith("reviewer override"):
                 status += " (reviewer)"
-            table.add_row(item.id, group, status, g2, p, effect, _observed_text(observed.get(key)),
-                          _logistic_text(observed.get(key)), verdict)
+            table.add_row(
+                item.id,
+                group,
+                status,
+                g2,
+                p,
+                effect,
+                _observed_text(observed.get(key)),
+                _logistic_text(observed.get(key)),
+                verdict,
+            )
     if table.row_count:
         console.print(table)
         for item in bundle.items:
@@ -164,9 +201,11 @@ def print_policy_evidence(bundle: Bundle) -> None:
 def _print_ladder(bundle: Bundle) -> None:
     if not bundle.invariance:
         return
-    ladder = new_table("invariance ladder (all rungs on the same data)",
-                       ["model", "log-likelihood", "parameters", "AIC", "BIC", "LR test"],
-                       right=("log-likelihood", "parameters", "AIC", "BIC"))
+    ladder = new_table(
+        "invariance ladder (all rungs on the same data)",
+        ["model", "log-likelihood", "parameters", "AIC", "BIC", "LR test"],
+        right=("log-likelihood", "parameters", "AIC", "BIC"),
+    )
     for row in bundle.invariance:
         if row.lr_statistic is None or row.compared_with is None:
             test = "-"
@@ -174,8 +213,14 @@ def _print_ladder(bundle: Bundle) -> None:
             test = f"vs {row.compared_with}: same model (no cell freed)"
         else:
             test = f"vs {row.compared_with}: {row.lr_statistic:.1f} on {row.df} df, p = {dash(row.p_value, '.3g')}"
-        ladder.add_row(row.model, dash(row.log_likelihood, ",.1f"), str(row.n_parameters), dash(row.aic, ",.1f"),
-                       dash(row.bic, ",.1f"), test)
+        ladder.add_row(
+            row.model,
+            dash(row.log_likelihood, ",.1f"),
+            str(row.n_parameters),
+            dash(row.aic, ",.1f"),
+            dash(row.bic, ",.1f"),
+            test,
+        )
     out_console().print(ladder)
 
 
@@ -184,12 +229,21 @@ def print_bundle_details(bundle: Bundle) -> None:
     console = out_console()
     for group, quality in bundle.quality.by_group.items():
         title = "item quality" + ("" if len(bundle.quality.by_group) == 1 else f" in group {group}")
-        table = new_table(title, ["item", "item-rest r", "alpha if deleted", "S-X2 (df)", "S-X2 p", "RMSD"],
-                          right=("item-rest r", "alpha if deleted", "S-X2 (df)", "S-X2 p", "RMSD"))
+        table = new_table(
+            title,
+            ["item", "item-rest r", "alpha if deleted", "S-X2 (df)", "S-X2 p", "RMSD"],
+            right=("item-rest r", "alpha if deleted", "S-X2 (df)", "S-X2 p", "RMSD"),
+        )
         for item, q in quality.items.items():
             s_x2 = "-" if q.s_x2 is None else f"{q.s_x2:.1f} ({dash(q.s_x2_df, 'd')})"
-            table.add_row(item, dash(q.item_rest_correlation, ".2f"), dash(q.alpha_if_deleted), s_x2,
-                          dash(q.s_x2_p, ".3g"), dash(q.rmsd))
+            table.add_row(
+                item,
+                dash(q.item_rest_correlation, ".2f"),
+                dash(q.alpha_if_deleted),
+                s_x2,
+                dash(q.s_x2_p, ".3g"),
+                dash(q.rmsd),
+            )
         console.print(table)
         dims = quality.dimensionality
         if dims is not None:
@@ -200,8 +254,11 @@ def print_bundle_details(bundle: Bundle) -> None:
                 highlight=False,
             )
     info = bundle.quality.test_information
-    table = new_table(f"test information, reference group {bundle.metric.reference_group}",
-                      ["theta", "information", "SE"], right=("theta", "information", "SE"))
+    table = new_table(
+        f"test information, reference group {bundle.metric.reference_group}",
+        ["theta", "information", "SE"],
+        right=("theta", "information", "SE"),
+    )
     for target in INFORMATION_THETAS:
         nearest = min(range(len(info.theta)), key=lambda i: abs(info.theta[i] - target))
         table.add_row(f"{info.theta[nearest]:.1f}", dash(info.information[nearest], ".2f"), dash(info.se[nearest]))

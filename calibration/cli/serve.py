@@ -28,8 +28,19 @@ def run_serve(args: argparse.Namespace) -> int:
             f"(missing: {', '.join(missing) or 'the service package'}); install them with: "
             "pip install 'equitheta[service]'"
         )
-    argv = [sys.executable, "-m", "service.main", "--store", str(args.store), "--host", args.host,
-            "--port", str(args.port), "--workers", str(args.workers)]
+    argv = [
+        sys.executable,
+        "-m",
+        "service.main",
+        "--store",
+        str(args.store),
+        "--host",
+        args.host,
+        "--port",
+        str(args.port),
+        "--workers",
+        str(args.workers),
+    ]
     if args.redis_url:
         argv += ["--redis-url", args.redis_url]
     os.execv(sys.executable, argv)

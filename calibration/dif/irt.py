@@ -354,13 +354,20 @@ def _test_item(
     focal_mean, focal_sd = float(fit.latent_mean[g]), float(fit.latent_sd[g])
     effect, signed = effect_size(ref_params, foc_params, focal_mean, focal_sd)
     return ItemGroupTest(
-        item=j, group=g,
-        g2_omnibus=g2_all, df_omnibus=k_j, p_omnibus=float(stats.chi2.sf(g2_all, k_j)),
-        g2_nonuniform=g2_non, p_nonuniform=float(stats.chi2.sf(g2_non, 1)) if not omnibus_only else float("nan"),
-        g2_uniform=g2_uni, df_uniform=k_j - 1,
+        item=j,
+        group=g,
+        g2_omnibus=g2_all,
+        df_omnibus=k_j,
+        p_omnibus=float(stats.chi2.sf(g2_all, k_j)),
+        g2_nonuniform=g2_non,
+        p_nonuniform=float(stats.chi2.sf(g2_non, 1)) if not omnibus_only else float("nan"),
+        g2_uniform=g2_uni,
+        df_uniform=k_j - 1,
         p_uniform=float(stats.chi2.sf(g2_uni, k_j - 1)) if not omnibus_only else float("nan"),
-        effect_theta=effect, effect_signed=signed,
-        reference_table=final[0, 0].copy(), focal_table=final[1, 0].copy(),
+        effect_theta=effect,
+        effect_signed=signed,
+        reference_table=final[0, 0].copy(),
+        focal_table=final[1, 0].copy(),
         effect_theta_se=_effect_se(fits[-1], one, focal_mean, focal_sd),
     )
 
@@ -378,8 +385,12 @@ def test_items(
     progress: Callable[[int, int], None] | None = None,
 ) -> dict[tuple[int, int], ItemGroupTest]:
     """Anchored LR tests of ``items`` in every focal group against the base ``fit`` (``skip``: cells left out)."""
-    settings = EMSettings(tolerance=tolerance, standard_errors=False,
-                          quadrature=quadrature or fit.settings.quadrature, compress_patterns=False)
+    settings = EMSettings(
+        tolerance=tolerance,
+        standard_errors=False,
+        quadrature=quadrature or fit.settings.quadrature,
+        compress_patterns=False,
+    )
     base = _base_logliks(fit, responses, group_index, settings.quadrature.points)
     out: dict[tuple[int, int], ItemGroupTest] = {}
     n_groups = fit.tables.shape[0]
@@ -429,8 +440,15 @@ def rank_anchor_candidates(
             continue
         z = [(t.g2_omnibus - t.df_omnibus) / np.sqrt(2 * t.df_omnibus) for t in tests]
         worst = int(np.argmax(z))
-        out.append(AnchorCandidate(j, float(z[worst]), float(np.sum(z)), tests[worst].group,
-                                   float(np.nanmin([t.p_adjusted for t in tests]))))
+        out.append(
+            AnchorCandidate(
+                j,
+                float(z[worst]),
+                float(np.sum(z)),
+                tests[worst].group,
+                float(np.nanmin([t.p_adjusted for t in tests])),
+            )
+        )
     return sorted(out, key=lambda c: (c.statistic, c.total, item_ids[c.item]))
 
 
@@ -520,9 +538,18 @@ def run_irt_dif(
         anchors = sorted(item_ids.index(a) for a in settings.anchors)
         method = "named by the user"
     else:
-        screening = adjust(test_items(scalar_fit, responses, group_index, list(range(n_items)),
-                                      tolerance=settings.sub_tolerance, omnibus_only=True, skip=skip,
-                                      progress=report("screen")))
+        screening = adjust(
+            test_items(
+                scalar_fit,
+                responses,
+                group_index,
+                list(range(n_items)),
+                tolerance=settings.sub_tolerance,
+                omnibus_only=True,
+                skip=skip,
+                progress=report("screen"),
+            )
+        )
         ranking = rank_anchor_candidates(screening, item_ids)
         k = n_anchors(n_items, settings)
         anchors = sorted(c.item for c in ranking[:k])
@@ -540,11 +567,26 @@ def run_irt_dif(
     for j, g in skip or ():
         group_free[g, j, :] = False  # no data to free the cell with
     anchor_fit = calibrate_groups(
-        responses, n_categories, group_index, n_groups, models=models,
-        settings=replace(em_settings, standard_errors=False), group_free=group_free, start=scalar_fit.tables,
+        responses,
+        n_categories,
+        group_index,
+        n_groups,
+        models=models,
+        settings=replace(em_settings, standard_errors=False),
+        group_free=group_free,
+        start=scalar_fit.tables,
         warn=False,
     )
-    tests = test_items(anchor_fit, responses, group_index, others, tolerance=settings.sub_tolerance, skip=skip,
-                       progress=report("test"))
-    return DifOutcome(screening=screening, anchors=anchors, anchor_method=method, anchor_fit=anchor_fit,
-                      tests=adjust(tests), settings=settings, ranking=ranking, warnings=tuple(warnings))
+    tests = test_items(
+        anchor_fit, responses, group_index, others, tolerance=settings.sub_tolerance, skip=skip, progress=report("test")
+    )
+    return DifOutcome(
+        screening=screening,
+        anchors=anchors,
+        anchor_method=method,
+        anchor_fit=anchor_fit,
+        tests=adjust(tests),
+        settings=settings,
+        ranking=ranking,
+        warnings=tuple(warnings),
+    )

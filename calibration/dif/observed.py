@@ -116,9 +116,7 @@ def mh_abc_class(d_dif: float, d_dif_se: float, p_value: float, *, greater_than_
     return "B" + sign
 
 
-def mantel_polytomous(
-    scores: FloatArray, is_focal: np.ndarray, strata: IntArray
-) -> tuple[float, float, float]:
+def mantel_polytomous(scores: FloatArray, is_focal: np.ndarray, strata: IntArray) -> tuple[float, float, float]:
     """Mantel (1963) chi-square (1 df), its p value and the SMD (Dorans & Schmitt 1991).
 
     ``SMD = sum_k (n_Fk / n_F) (mean_Fk - mean_Rk)`` over strata with both groups present;
@@ -200,8 +198,17 @@ def _item_result(
         alpha, se_log, chi, p = mantel_haenszel(tables)
         d = -D_DIF_SCALE * math.log(alpha) if 0 < alpha < math.inf else (-math.inf if alpha == math.inf else math.inf)
         d_se = D_DIF_SCALE * se_log
-        return MantelHaenszelResult(alpha, se_log, chi, p, d, d_se, mh_abc_class(d, d_se, p,
-                                    greater_than_one_z=greater_than_one_z), n_ref, n_foc)
+        return MantelHaenszelResult(
+            alpha,
+            se_log,
+            chi,
+            p,
+            d,
+            d_se,
+            mh_abc_class(d, d_se, p, greater_than_one_z=greater_than_one_z),
+            n_ref,
+            n_foc,
+        )
     chi, p, smd = mantel_polytomous(y, focal, score)
     sd = float(np.std(y, ddof=1)) if y.size > 1 else 0.0
     ratio = smd / sd if sd > 0 else 0.0
@@ -230,8 +237,10 @@ def screen_observed(
         rows = (group_index == 0) | (group_index == g)
         is_focal = group_index[rows] == g
         all_items = np.ones(n_items, dtype=bool)
-        first = [_item_result(responses, n_categories, j, rows, is_focal, all_items, greater_than_one_z)
-                 for j in range(n_items)]
+        first = [
+            _item_result(responses, n_categories, j, rows, is_focal, all_items, greater_than_one_z)
+            for j in range(n_items)
+        ]
         flagged = tuple(j for j, r in enumerate(first) if _flagged(r))
         stage1[g] = flagged
         matching = all_items.copy()

@@ -78,7 +78,6 @@ class SlopePrior:
         return 1.0 / (self.sd**2 * safe * safe)
 
 
-
 @dataclass(frozen=True)
 class EMSettings:
     """Settings of the EM calibration.
@@ -96,7 +95,6 @@ class EMSettings:
     accelerate: bool = True
     standard_errors: bool = True
     compress_patterns: bool = True
-
 
 
 @dataclass(frozen=True)
@@ -460,8 +458,9 @@ class LatentSpec:
         return int(self.free_mean.sum() + self.free_sd.sum())
 
 
-def latent_update(mass: FloatArray, points: FloatArray, mean: float, sd: float, free_mean: bool, free_sd: bool
-                   ) -> tuple[float, float]:
+def latent_update(
+    mass: FloatArray, points: FloatArray, mean: float, sd: float, free_mean: bool, free_sd: bool
+) -> tuple[float, float]:
     """Normal latent density from the posterior mass on the grid (Bock & Zimowski 1997 moments)."""
     total = mass.sum()
     if total <= 0:
@@ -663,8 +662,14 @@ def calibrate_groups(
         if not _valid_tables(tabs, k).all() or np.any(sd <= 0) or not np.all(np.isfinite(mean)):
             raise ValueError("invalid parameters")
         results = [
-            expected_counts(params_from_table(tabs[g], template), data.design, points,
-                            normal_log_weights(points, mean[g], sd[g]), data.weights, data.offset)
+            expected_counts(
+                params_from_table(tabs[g], template),
+                data.design,
+                points,
+                normal_log_weights(points, mean[g], sd[g]),
+                data.weights,
+                data.offset,
+            )
             for g, data in enumerate(groups)
         ]
         return tabs, mean, sd, np.stack([r.counts for r in results]), results
@@ -673,12 +678,14 @@ def calibrate_groups(
         tabs, mean, sd, counts, results = e_step(vec)
         tabs = m_step(tabs, template, counts, points, layout, prior=prior, n_iter=settings.m_step_iter)
         for g, r in enumerate(results):
-            mean[g], sd[g] = latent_update(r.point_mass, points, mean[g], sd[g],
-                                            bool(latent.free_mean[g]), bool(latent.free_sd[g]))
+            mean[g], sd[g] = latent_update(
+                r.point_mass, points, mean[g], sd[g], bool(latent.free_mean[g]), bool(latent.free_sd[g])
+            )
         return pack(tabs, mean, sd), float(sum(r.log_likelihood for r in results))
 
-    vec, converged, n_iter, history = run_em(pack(tables, latent.mean, latent.sd), em_map, settings,
-                                             progress=progress, warn=warn)
+    vec, converged, n_iter, history = run_em(
+        pack(tables, latent.mean, latent.sd), em_map, settings, progress=progress, warn=warn
+    )
     tabs, mean, sd, _, results = e_step(vec)
     group_ll = np.array([r.log_likelihood for r in results])
 
@@ -848,8 +855,12 @@ def calibrate_single_group(
     if start is not None and not models:
         models = start.models
     fit = calibrate_groups(
-        x, k, np.zeros(x.shape[0], dtype=np.int64), 1,
-        models=models, settings=settings,
+        x,
+        k,
+        np.zeros(x.shape[0], dtype=np.int64),
+        1,
+        models=models,
+        settings=settings,
         fixed=None if fixed is None else np.asarray(fixed, dtype=bool)[None],
         start=None if start is None else slot_table(start)[None],
         latent=LatentSpec.reference_fixed(1),
@@ -872,9 +883,7 @@ def calibrate_single_group(
     )
 
 
-def starting_values(
-    responses: FloatArray, n_categories: IntArray, models: tuple[str, ...]
-) -> ItemParameters:
+def starting_values(responses: FloatArray, n_categories: IntArray, models: tuple[str, ...]) -> ItemParameters:
     """Deterministic starting values from classical item statistics.
 
     Slope from the item-rest correlation r (normal-ogive approximation,
@@ -927,7 +936,6 @@ def compress_patterns(responses: FloatArray) -> tuple[FloatArray, FloatArray, In
     return unique, counts.astype(np.float64), inverse.reshape(-1)
 
 
-
 def _squarem_step(
     vec: FloatArray,
     em_map: Callable[[FloatArray], tuple[FloatArray, float]],
@@ -951,7 +959,6 @@ def _squarem_step(
     if np.all(np.isfinite(v3)) and ll3 >= ll2 - 1e-9:
         return v3, ll3, 3
     return v2, ll2, 3
-
 
 
 def marginal_log_likelihood(

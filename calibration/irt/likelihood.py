@@ -136,7 +136,6 @@ class ResponseDesign:
         return int(self.indicators.shape[0])
 
 
-
 @functools.lru_cache(maxsize=256)
 def design_columns(n_categories: tuple[int, ...]) -> tuple[IntArray, IntArray]:
     """Item and category (>= 1) of every indicator column; cached per test layout (read-only arrays)."""

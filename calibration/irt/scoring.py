@@ -37,7 +37,6 @@ METHOD_ML = "ml"
 METHODS = (METHOD_EAP, METHOD_MAP, METHOD_ML)
 
 
-
 @dataclass(frozen=True)
 class NormalPrior:
     """The latent density used for scoring: N(mean, sd^2)."""

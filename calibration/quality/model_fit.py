@@ -67,8 +67,9 @@ def item_fit(
     return ItemFit(s_x2=s_x2, s_x2_df=df, s_x2_p=p, rmsd=_rmsd(params, responses, points, latent_mean, latent_sd))
 
 
-def _s_x2(params: ItemParameters, x: FloatArray, points: FloatArray, weights: FloatArray
-          ) -> tuple[FloatArray, IntArray, FloatArray]:
+def _s_x2(
+    params: ItemParameters, x: FloatArray, points: FloatArray, weights: FloatArray
+) -> tuple[FloatArray, IntArray, FloatArray]:
     n_items = params.n_items
     totals = x.sum(axis=1).astype(np.int64)
     max_score = int(np.sum(params.n_categories - 1))
@@ -88,8 +89,9 @@ def _s_x2(params: ItemParameters, x: FloatArray, points: FloatArray, weights: Fl
                     expected[row, k] = (prob[j, k] * rest[s - k]) @ weights
             expected[row] /= max(full[s], 1e-300)
         n_s = np.array([(totals == s).sum() for s in scores], dtype=np.float64)
-        observed = np.array([[np.sum((totals == s) & (x[:, j] == k)) for k in range(k_j)] for s in scores],
-                            dtype=np.float64)
+        observed = np.array(
+            [[np.sum((totals == s) & (x[:, j] == k)) for k in range(k_j)] for s in scores], dtype=np.float64
+        )
         # Merge adjacent score groups from each end until every expected count is at least 1.
         groups: list[tuple[float, FloatArray, FloatArray]] = []
         acc_n, acc_e, acc_o = 0.0, np.zeros(k_j), np.zeros(k_j)

@@ -40,12 +40,28 @@ def dif_free(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return path
 
 
-def test_dif_free_groups_through_the_cli_exit_0_and_print_dashes(dif_free: Path, tmp_path: Path,
-                                                                 capsys: pytest.CaptureFixture) -> None:
+def test_dif_free_groups_through_the_cli_exit_0_and_print_dashes(
+    dif_free: Path, tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
     # Before: the partial rung has no LR p value and the printer died with a TypeError after publishing.
     store = tmp_path / "store"
-    assert main(["calibrate", str(dif_free), "--name", "nodif", "--store", str(store), "--group-column", "site",
-                 "--reference-group", "port-ellery"]) == 0
+    assert (
+        main(
+            [
+                "calibrate",
+                str(dif_free),
+                "--name",
+                "nodif",
+                "--store",
+                str(store),
+                "--group-column",
+                "site",
+                "--reference-group",
+                "port-ellery",
+            ]
+        )
+        == 0
+    )
     out = capsys.readouterr().out
     bundle = DirectoryStore(store).get("nodif", 1)
     partial = next(r for r in bundle.invariance if r.model == "partial")
@@ -54,8 +70,9 @@ def test_dif_free_groups_through_the_cli_exit_0_and_print_dashes(dif_free: Path,
     assert "invariance ladder" in out and "published nodif@1" in out
 
 
-def test_the_summary_is_rendered_before_the_store_is_touched(dif_free: Path, tmp_path: Path,
-                                                             monkeypatch: pytest.MonkeyPatch) -> None:
+def test_the_summary_is_rendered_before_the_store_is_touched(
+    dif_free: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     import calibration.cli.calibrate as command
 
     def broken(bundle: object) -> None:
@@ -64,8 +81,20 @@ def test_the_summary_is_rendered_before_the_store_is_touched(dif_free: Path, tmp
     monkeypatch.setattr(command, "print_calibration_summary", broken)
     store = tmp_path / "store"
     with pytest.raises(RuntimeError, match="printer failed"):
-        main(["calibrate", str(dif_free), "--name", "nodif", "--store", str(store), "--group-column", "site",
-              "--alias", "production"])
+        main(
+            [
+                "calibrate",
+                str(dif_free),
+                "--name",
+                "nodif",
+                "--store",
+                str(store),
+                "--group-column",
+                "site",
+                "--alias",
+                "production",
+            ]
+        )
     assert DirectoryStore(store).names() == []  # nothing published, no alias moved
 
 
@@ -82,8 +111,9 @@ def test_small_group_is_calibrated_with_warnings_and_refused_only_below_the_floo
 
 
 def test_no_cell_is_called_large_unless_its_whole_interval_is(dif_free: Path) -> None:
-    bundle = calibrate_data(read_responses(dif_free, group_column="site"), name="nodif",
-                            reference_group="port-ellery").bundle
+    bundle = calibrate_data(
+        read_responses(dif_free, group_column="site"), name="nodif", reference_group="port-ellery"
+    ).bundle
     assert bundle.dif is not None
     settings = bundle.dif.settings
     for row in bundle.dif.irt:
@@ -152,8 +182,9 @@ def test_few_items_is_judged_against_the_items_open_to_the_group(tmp_path: Path)
     path = tmp_path / "five.csv"
     frame.to_csv(path, index=False)
     override = [PolicyOverride("Q3", "west", "excluded", "the item's picture differs in the west edition")]
-    bundle = calibrate_data(read_responses(path, group_column="site"), name="five", reference_group="east",
-                            overrides=override).bundle
+    bundle = calibrate_data(
+        read_responses(path, group_column="site"), name="five", reference_group="east", overrides=override
+    ).bundle
     assert bundle.scoring.min_items_answered == 5
     scorer = BundleScorer(bundle)
     x = frame[[f"Q{j + 1}" for j in range(5)]].to_numpy(dtype=float).copy()
@@ -165,8 +196,23 @@ def test_few_items_is_judged_against_the_items_open_to_the_group(tmp_path: Path)
 
 
 def test_headline_figures_say_whose_they_are(dif_free: Path, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
-    assert main(["calibrate", str(dif_free), "--name", "nodif", "--store", str(tmp_path / "s"), "--group-column",
-                 "site", "--reference-group", "port-ellery"]) == 0
+    assert (
+        main(
+            [
+                "calibrate",
+                str(dif_free),
+                "--name",
+                "nodif",
+                "--store",
+                str(tmp_path / "s"),
+                "--group-column",
+                "site",
+                "--reference-group",
+                "port-ellery",
+            ]
+        )
+        == 0
+    )
     out = capsys.readouterr().out
     assert "reference group port-ellery: alpha" in out
     assert "final model under the item policy: log-likelihood" in out
@@ -177,8 +223,23 @@ def test_evidence_side_by_side_and_bundle_show_prints_quality(tmp_path: Path, ca
     data = tmp_path / "demo.csv"
     make_demo_responses(2400, seed=20261201).to_csv(data, index=False)
     store = tmp_path / "store"
-    assert main(["calibrate", str(data), "--name", "demo", "--store", str(store), "--group-column", "site",
-                 "--reference-group", "port-ellery"]) == 0
+    assert (
+        main(
+            [
+                "calibrate",
+                str(data),
+                "--name",
+                "demo",
+                "--store",
+                str(store),
+                "--group-column",
+                "site",
+                "--reference-group",
+                "port-ellery",
+            ]
+        )
+        == 0
+    )
     out = capsys.readouterr().out
     # The built-in uniform DIF item: the IRT test and MH both see it.
     row = next(line for line in out.splitlines() if "NUM06" in line and "marsh-creek" in line and "MH D-DIF" in line)
@@ -186,9 +247,15 @@ def test_evidence_side_by_side_and_bundle_show_prints_quality(tmp_path: Path, ca
     assert "logistic dR2" in out
     assert main(["bundle", "show", "demo@1", "--store", str(store)]) == 0
     shown = capsys.readouterr().out
-    for heading in ("item quality in group marsh-creek", "alpha if deleted", "S-X2 (df)", "RMSD",
-                    "largest eigenvalue of the residual PCA", "test information, reference group port-ellery",
-                    "MH D-DIF"):
+    for heading in (
+        "item quality in group marsh-creek",
+        "alpha if deleted",
+        "S-X2 (df)",
+        "RMSD",
+        "largest eigenvalue of the residual PCA",
+        "test information, reference group port-ellery",
+        "MH D-DIF",
+    ):
         assert heading in shown
 
 
@@ -197,9 +264,23 @@ def test_output_to_a_file_keeps_full_names_and_progress_goes_to_stderr(tmp_path:
     frame = frame.rename(columns={"NUM01": "numeracy-unit-conversion-with-local-measures-long-name"})
     data = tmp_path / "long.csv"
     frame.to_csv(data, index=False)
-    done = subprocess.run([sys.executable, "-m", "calibration.cli", "calibrate", str(data), "--name", "long",
-                           "--store", str(tmp_path / "store")], capture_output=True, text=True, check=False,
-                          env={**os.environ, "COLUMNS": "80"})
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "calibration.cli",
+            "calibrate",
+            str(data),
+            "--name",
+            "long",
+            "--store",
+            str(tmp_path / "store"),
+        ],
+        capture_output=True,
+        text=True,
+        check=False,
+        env={**os.environ, "COLUMNS": "80"},
+    )
     assert done.returncode == 0, done.stderr
     assert "numeracy-unit-conversion-with-local-measures-long-name" in done.stdout
     assert "\u2026" not in done.stdout  # no ellipsis anywhere
@@ -223,19 +304,35 @@ def test_missing_data_code_is_named_as_such(tmp_path: Path, capsys: pytest.Captu
     frame.to_csv(data, index=False)
     assert main(["calibrate", str(data), "--name", "c", "--store", str(tmp_path / "s")]) == 2
     err = capsys.readouterr().err
-    assert ("item 'DIG02': code 99 (row 5 (line 6), row 18 (line 19)) lies far above the item's other codes 0..3: "
-            "it looks like a missing-data code") in err
+    assert (
+        "item 'DIG02': code 99 (row 5 (line 6), row 18 (line 19)) lies far above the item's other codes 0..3: "
+        "it looks like a missing-data code"
+    ) in err
     assert "4-98" not in err and "95" not in err  # before: 95 unused categories listed
 
 
-def test_scoring_a_grouped_bundle_without_group_column_names_the_option(tmp_path: Path,
-                                                                        capsys: pytest.CaptureFixture) -> None:
+def test_scoring_a_grouped_bundle_without_group_column_names_the_option(
+    tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
     _old_store(tmp_path / "store")
     frame = pd.DataFrame({"id": ["a", "b"], "region": ["north", "south"], "Q1": [1, 0], "Q2": [0, 1]})
     path = tmp_path / "new.csv"
     frame.to_csv(path, index=False)
-    assert main(["score", str(path), "--bundle", "two-regions@1", "--store", str(tmp_path / "store"),
-                 "--out", str(tmp_path / "o.csv")]) == 2
+    assert (
+        main(
+            [
+                "score",
+                str(path),
+                "--bundle",
+                "two-regions@1",
+                "--store",
+                str(tmp_path / "store"),
+                "--out",
+                str(tmp_path / "o.csv"),
+            ]
+        )
+        == 2
+    )
     err = capsys.readouterr().err
     assert "name the column that holds each respondent's group with --group-column" in err
     assert "perhaps --group-column region" in err and "--ignore-columns" not in err
@@ -246,18 +343,46 @@ def test_unknown_groups_are_all_listed_with_id_and_line(tmp_path: Path, capsys: 
     frame = pd.DataFrame({"id": ["a", "b", "c"], "region": ["north", "west", "east"], "Q1": [1, 0, 1]})
     path = tmp_path / "new.csv"
     frame.to_csv(path, index=False)
-    assert main(["score", str(path), "--bundle", "two-regions@1", "--store", str(tmp_path / "store"),
-                 "--group-column", "region", "--out", str(tmp_path / "o.csv")]) == 2
+    assert (
+        main(
+            [
+                "score",
+                str(path),
+                "--bundle",
+                "two-regions@1",
+                "--store",
+                str(tmp_path / "store"),
+                "--group-column",
+                "region",
+                "--out",
+                str(tmp_path / "o.csv"),
+            ]
+        )
+        == 2
+    )
     err = capsys.readouterr().err
     assert "2 respondent(s) with a group that bundle two-regions@1 does not know" in err
     assert "row 2 (line 3), id 'b', column 'region': group 'west' is not in the bundle" in err
     assert "row 3 (line 4), id 'c', column 'region': group 'east' is not in the bundle" in err
 
 
-def test_unknown_anchor_is_an_input_error_before_any_work(dif_free: Path, tmp_path: Path,
-                                                          capsys: pytest.CaptureFixture) -> None:
-    code = main(["calibrate", str(dif_free), "--name", "x", "--store", str(tmp_path / "s"), "--group-column",
-                 "site", "--anchors", "NUM01,num02,NOPE"])
+def test_unknown_anchor_is_an_input_error_before_any_work(
+    dif_free: Path, tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    code = main(
+        [
+            "calibrate",
+            str(dif_free),
+            "--name",
+            "x",
+            "--store",
+            str(tmp_path / "s"),
+            "--group-column",
+            "site",
+            "--anchors",
+            "NUM01,num02,NOPE",
+        ]
+    )
     assert code == 2
     err = capsys.readouterr().err
     assert "anchor 'num02' is not an item of the data (did you mean 'NUM02'?)" in err
@@ -302,28 +427,36 @@ def test_score_file_details(tmp_path: Path) -> None:
     assert (frame.loc[misfit, "person_fit_lz_star"] < -1.645).all()
 
 
-def test_serve_without_the_service_extras_says_what_to_install(monkeypatch: pytest.MonkeyPatch,
-                                                               capsys: pytest.CaptureFixture) -> None:
+def test_serve_without_the_service_extras_says_what_to_install(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture
+) -> None:
     monkeypatch.setitem(sys.modules, "fastapi", None)  # as if the extra were not installed
     assert main(["serve", "--store", "somewhere"]) == 2
     assert "pip install 'equitheta[service]'" in capsys.readouterr().err
 
 
 def test_help_and_version_load_no_numerical_package() -> None:
-    probe = ("import sys, contextlib, io\n"
-             "from calibration.cli import main\n"
-             "with contextlib.suppress(SystemExit), contextlib.redirect_stdout(io.StringIO()):\n"
-             "    main(['--version'])\n"
-             "with contextlib.suppress(SystemExit), contextlib.redirect_stdout(io.StringIO()):\n"
-             "    main(['calibrate', '--help'])\n"
-             "print(sorted(m for m in ('numpy', 'pandas', 'scipy', 'pydantic') if m in sys.modules))\n")
+    probe = (
+        "import sys, contextlib, io\n"
+        "from calibration.cli import main\n"
+        "with contextlib.suppress(SystemExit), contextlib.redirect_stdout(io.StringIO()):\n"
+        "    main(['--version'])\n"
+        "with contextlib.suppress(SystemExit), contextlib.redirect_stdout(io.StringIO()):\n"
+        "    main(['calibrate', '--help'])\n"
+        "print(sorted(m for m in ('numpy', 'pandas', 'scipy', 'pydantic') if m in sys.modules))\n"
+    )
     done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
     assert done.stdout.strip() == "[]"
 
 
 def test_options_show_help_and_defaults() -> None:
-    done = subprocess.run([sys.executable, "-m", "calibration.cli", "calibrate", "--help"], capture_output=True,
-                          text=True, check=True, env={**os.environ, "COLUMNS": "200"})
+    done = subprocess.run(
+        [sys.executable, "-m", "calibration.cli", "calibrate", "--help"],
+        capture_output=True,
+        text=True,
+        check=True,
+        env={**os.environ, "COLUMNS": "200"},
+    )
     assert "--report-mean REPORT_MEAN" in done.stdout and "(default: 500.0)" in done.stdout
     assert "--min-group-size" in done.stdout and "(default: 30)" in done.stdout
     assert "--scale-location" not in done.stdout

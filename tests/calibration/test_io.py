@@ -100,8 +100,7 @@ def test_scoring_input_refuses_unknown_columns_and_out_of_range_codes(tmp_path: 
         read_for_scoring(write(tmp_path, "id,Q1,Q9\na,1,0\n"), item_categories=categories)
     with pytest.raises(InputError, match=r"row 1 \(line 2\), column 'Q2': category code 3 is outside .* 0..2"):
         read_for_scoring(write(tmp_path, "id,Q1,Q2\na,1,3\n"), item_categories=categories)
-    data = read_for_scoring(write(tmp_path, "id,Q2,site\na,2,x\n"), item_categories=categories,
-                            ignore_columns=["site"])
+    data = read_for_scoring(write(tmp_path, "id,Q2,site\na,2,x\n"), item_categories=categories, ignore_columns=["site"])
     assert data.item_ids == ("Q1", "Q2")
     assert np.isnan(data.responses[0, 0]) and data.responses[0, 1] == 2
     assert any("Q1" in n for n in data.notes)

@@ -23,8 +23,20 @@ def sites(tmp_path_factory: pytest.TempPathFactory) -> dict:
     data_path = root / "responses.csv"
     make_demo_responses(3600, seed=11).to_csv(data_path, index=False)
     store = root / "store"
-    code = main(["calibrate", str(data_path), "--name", "sites", "--store", str(store), "--group-column", "site",
-                 "--reference-group", "port-ellery"])
+    code = main(
+        [
+            "calibrate",
+            str(data_path),
+            "--name",
+            "sites",
+            "--store",
+            str(store),
+            "--group-column",
+            "site",
+            "--reference-group",
+            "port-ellery",
+        ]
+    )
     assert code == 0
     return {"data": data_path, "store": store, "bundle": DirectoryStore(store).get("sites", 1), "root": root}
 
@@ -59,8 +71,23 @@ def test_bundle_records_groups_anchors_policy_and_ladder(sites: dict) -> None:
 
 def test_scoring_honours_the_policy_with_one_common_prior(sites: dict, tmp_path: Path) -> None:
     out = tmp_path / "scores.csv"
-    assert main(["score", str(sites["data"]), "--bundle", "sites", "--store", str(sites["store"]),
-                 "--group-column", "site", "--out", str(out)]) == 0
+    assert (
+        main(
+            [
+                "score",
+                str(sites["data"]),
+                "--bundle",
+                "sites",
+                "--store",
+                str(sites["store"]),
+                "--group-column",
+                "site",
+                "--out",
+                str(out),
+            ]
+        )
+        == 0
+    )
     frame = pd.read_csv(out, keep_default_na=False)
     assert set(frame.loc[frame["group"] == "marsh-creek", "excluded_items"]) == {"NUM06"}
     assert set(frame.loc[frame["group"] == "port-ellery", "excluded_items"]) == {""}
@@ -84,15 +111,26 @@ def test_same_answers_same_items_same_score_in_every_group(sites: dict) -> None:
     assert scores[1] == pytest.approx(scores[0], abs=1e-12) and scores[2] == pytest.approx(scores[0], abs=1e-12)
 
 
-def test_unknown_group_is_an_error_unless_sent_to_the_reference(sites: dict, tmp_path: Path,
-                                                                capsys: pytest.CaptureFixture) -> None:
+def test_unknown_group_is_an_error_unless_sent_to_the_reference(
+    sites: dict, tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
     frame = pd.read_csv(sites["data"]).head(5)
     frame.loc[2, "site"] = "seaview"
     path = tmp_path / "new.csv"
     frame.to_csv(path, index=False)
     out = tmp_path / "o.csv"
-    args = ["score", str(path), "--bundle", "sites@1", "--store", str(sites["store"]), "--group-column", "site",
-            "--out", str(out)]
+    args = [
+        "score",
+        str(path),
+        "--bundle",
+        "sites@1",
+        "--store",
+        str(sites["store"]),
+        "--group-column",
+        "site",
+        "--out",
+        str(out),
+    ]
     assert main(args) == 2
     err = capsys.readouterr().err
     assert "1 respondent(s) with a group that bundle sites@1 does not know" in err
@@ -127,11 +165,19 @@ def test_reviewer_overrides_and_their_errors(sites: dict) -> None:
     assert cell.reason == "reviewer override: local unit of measure is taught in the programme"
     assert cell.evidence.p_adjusted is not None  # the evidence stays on record
     with pytest.raises(CalibrationInputError, match="a reviewer note is required"):
-        calibrate_data(data, name="ov", reference_group="port-ellery",
-                       overrides=[PolicyOverride("NUM06", "marsh-creek", "excluded", " ")])
+        calibrate_data(
+            data,
+            name="ov",
+            reference_group="port-ellery",
+            overrides=[PolicyOverride("NUM06", "marsh-creek", "excluded", " ")],
+        )
     with pytest.raises(CalibrationInputError, match="the reference group 'port-ellery' keeps every item"):
-        calibrate_data(data, name="ov", reference_group="port-ellery",
-                       overrides=[PolicyOverride("NUM01", "port-ellery", "excluded", "x")])
+        calibrate_data(
+            data,
+            name="ov",
+            reference_group="port-ellery",
+            overrides=[PolicyOverride("NUM01", "port-ellery", "excluded", "x")],
+        )
 
 
 def test_group_errors(sites: dict, tmp_path: Path) -> None:
@@ -148,11 +194,13 @@ def test_group_errors(sites: dict, tmp_path: Path) -> None:
     small.loc[small.index[:60], "site"] = "tiny"
     small.to_csv(path, index=False)
     with pytest.raises(CalibrationInputError, match=r"fewer than 100 respondents .*: tiny \(60\)"):
-        calibrate_data(read_responses(path, group_column="site"), name="x",
-                       settings=PipelineSettings(min_group_size=100))
+        calibrate_data(
+            read_responses(path, group_column="site"), name="x", settings=PipelineSettings(min_group_size=100)
+        )
     with pytest.raises(CalibrationInputError, match="cannot be set below 30"):
-        calibrate_data(read_responses(path, group_column="site"), name="x",
-                       settings=PipelineSettings(min_group_size=10))
+        calibrate_data(
+            read_responses(path, group_column="site"), name="x", settings=PipelineSettings(min_group_size=10)
+        )
 
 
 def test_item_without_variance_in_one_group_is_excluded_there(tmp_path: Path) -> None:
@@ -160,8 +208,7 @@ def test_item_without_variance_in_one_group_is_excluded_there(tmp_path: Path) ->
     frame.loc[frame["site"] == "ridgeview", "NUM01"] = 1
     path = tmp_path / "nv.csv"
     frame.to_csv(path, index=False)
-    bundle = calibrate_data(read_responses(path, group_column="site"), name="nv",
-                            reference_group="port-ellery").bundle
+    bundle = calibrate_data(read_responses(path, group_column="site"), name="nv", reference_group="port-ellery").bundle
     cell = next(i for i in bundle.items if i.id == "NUM01").policy["ridgeview"]
     assert cell.status == "excluded" and cell.reason.startswith("no variance in group 'ridgeview'")
 
@@ -173,8 +220,7 @@ def test_sparse_graded_category_is_merged_and_scoring_recodes(tmp_path: Path) ->
     frame.loc[ridge[top.to_numpy()][3:], "DIG01"] = 2  # leave only 3 answers in category 3 at ridgeview
     path = tmp_path / "sparse.csv"
     frame.to_csv(path, index=False)
-    bundle = calibrate_data(read_responses(path, group_column="site"), name="sp",
-                            reference_group="port-ellery").bundle
+    bundle = calibrate_data(read_responses(path, group_column="site"), name="sp", reference_group="port-ellery").bundle
     item = next(i for i in bundle.items if i.id == "DIG01")
     assert item.category_map == [0, 1, 2, 2] and item.n_categories == 3
     assert any("DIG01" in w and "ridgeview" in w and "merged" in w for w in bundle.quality.warnings)

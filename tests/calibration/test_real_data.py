@@ -77,8 +77,9 @@ def _eap_by_quad(params, answers: np.ndarray) -> tuple[float, float]:  # type: i
         return float(np.prod([p[j, int(answers[j])] for j in answered]))
 
     def moment(power: int) -> float:
-        return integrate.quad(lambda t: t**power * likelihood(t) * stats.norm.pdf(t), -10, 10, limit=200,
-                              epsabs=1e-13)[0]
+        return integrate.quad(lambda t: t**power * likelihood(t) * stats.norm.pdf(t), -10, 10, limit=200, epsabs=1e-13)[
+            0
+        ]
 
     mass = moment(0)
     mean = moment(1) / mass
@@ -116,8 +117,23 @@ def test_verbagg_small_group_calibrates_and_scores(verbagg: dict, tmp_path: Path
     tested = [r for r in bundle.dif.irt if r.stage == "test"]
     assert not [r for r in tested if r.level == "large" and (r.p_adjusted or 1.0) >= 0.05]
     out = tmp_path / "scores.csv"
-    assert main(["score", str(verbagg["data"]), "--bundle", "verbagg@1", "--store", str(verbagg["store"]),
-                 "--group-column", "gender", "--out", str(out)]) == 0
+    assert (
+        main(
+            [
+                "score",
+                str(verbagg["data"]),
+                "--bundle",
+                "verbagg@1",
+                "--store",
+                str(verbagg["store"]),
+                "--group-column",
+                "gender",
+                "--out",
+                str(out),
+            ]
+        )
+        == 0
+    )
     scores = pd.read_csv(out, keep_default_na=False)
     assert len(scores) == 316
     raw = pd.read_csv(verbagg["data"])
@@ -194,8 +210,23 @@ def test_bfi_polytomous_with_missing_values(bfi: dict, tmp_path: Path) -> None:
     ll = _gauss_hermite_log_likelihood(bundle, data.responses, np.asarray(data.groups))
     assert bundle.fit.log_likelihood == pytest.approx(ll, abs=0.01)
     out = tmp_path / "scores.csv"
-    assert main(["score", str(bfi["data"]), "--bundle", "bfi-n", "--store", str(bfi["store"]), "--group-column",
-                 "gender", "--out", str(out)]) == 0
+    assert (
+        main(
+            [
+                "score",
+                str(bfi["data"]),
+                "--bundle",
+                "bfi-n",
+                "--store",
+                str(bfi["store"]),
+                "--group-column",
+                "gender",
+                "--out",
+                str(out),
+            ]
+        )
+        == 0
+    )
     scores = pd.read_csv(out, keep_default_na=False)
     scorer = BundleScorer(bundle)
     with_missing = np.flatnonzero(np.isnan(data.responses).any(axis=1) & ~np.isnan(data.responses).all(axis=1))

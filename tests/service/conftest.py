@@ -109,8 +109,23 @@ def private_redis(tmp_path: Path) -> Iterator[tuple[str, subprocess.Popen[bytes]
             pytest.fail("EQUITHETA_REQUIRE_REDIS=1 but redis-server is not installed")
         pytest.skip("redis-server is not installed")
     port = free_port()
-    process = subprocess.Popen([binary, "--port", str(port), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no",
-                                "--dir", str(tmp_path)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    process = subprocess.Popen(
+        [
+            binary,
+            "--port",
+            str(port),
+            "--bind",
+            "127.0.0.1",
+            "--save",
+            "",
+            "--appendonly",
+            "no",
+            "--dir",
+            str(tmp_path),
+        ],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     url = f"redis://127.0.0.1:{port}/0"
     deadline = time.time() + 10
     while not _redis_answers(url):

@@ -21,17 +21,24 @@ from tests.service.conftest import auth, example_bundle
 SCORE = {"responses": [{"id": "a", "group": "tablet", "answers": {"T1": 1, "T2": 0, "T3": 1, "T5": 1}}]}
 
 
-def test_api_theta_and_se_equal_the_library_and_the_cli(keyed_settings: Settings, example_store: Path,
-                                                        tmp_path: Path) -> None:
+def test_api_theta_and_se_equal_the_library_and_the_cli(
+    keyed_settings: Settings, example_store: Path, tmp_path: Path
+) -> None:
     rng = np.random.default_rng(3)
     answers = rng.integers(0, 2, size=(40, 6)).astype(float)
     answers[rng.random(answers.shape) < 0.2] = np.nan
     groups = ["paper" if i % 2 else "tablet" for i in range(40)]
     items = [f"T{j + 1}" for j in range(6)]
-    body = {"responses": [
-        {"id": f"r{i}", "group": groups[i],
-         "answers": {items[j]: int(answers[i, j]) for j in range(6) if not np.isnan(answers[i, j])}}
-        for i in range(40)]}
+    body = {
+        "responses": [
+            {
+                "id": f"r{i}",
+                "group": groups[i],
+                "answers": {items[j]: int(answers[i, j]) for j in range(6) if not np.isnan(answers[i, j])},
+            }
+            for i in range(40)
+        ]
+    }
     with TestClient(create_app(keyed_settings)) as client:
         reply = client.post("/v1/bundles/pantry-checkout/scores", json=body, headers=auth("scorer"))
     assert reply.status_code == 200
@@ -45,8 +52,23 @@ def test_api_theta_and_se_equal_the_library_and_the_cli(keyed_settings: Settings
     frame.insert(0, "id", [f"r{i}" for i in range(40)])
     frame.insert(1, "mode", groups)
     frame.to_csv(tmp_path / "in.csv", index=False)
-    assert cli_main(["score", str(tmp_path / "in.csv"), "--bundle", "pantry-checkout@1", "--store",
-                     str(example_store), "--group-column", "mode", "--out", str(tmp_path / "out.csv")]) == 0
+    assert (
+        cli_main(
+            [
+                "score",
+                str(tmp_path / "in.csv"),
+                "--bundle",
+                "pantry-checkout@1",
+                "--store",
+                str(example_store),
+                "--group-column",
+                "mode",
+                "--out",
+                str(tmp_path / "out.csv"),
+            ]
+        )
+        == 0
+    )
     cli = pd.read_csv(tmp_path / "out.csv")
     np.testing.assert_allclose(cli["theta"], library.theta, atol=5e-7)
     np.testing.assert_allclose(cli["se"], library.se, atol=5e-7)
@@ -65,8 +87,9 @@ ROUTES = [
 
 
 @pytest.mark.parametrize(("method", "path", "body", "scope"), ROUTES, ids=[f"{m} {p}" for m, p, _, _ in ROUTES])
-def test_every_route_with_and_without_the_right_scope(method: str, path: str, body: object, scope: str,
-                                                      keyed_settings: Settings) -> None:
+def test_every_route_with_and_without_the_right_scope(
+    method: str, path: str, body: object, scope: str, keyed_settings: Settings
+) -> None:
     payload = json.loads(example_bundle().model_dump_json()) if body == "bundle" else body
     holder = {"score": "scorer", "read": "reader", "publish": "publisher"}[scope]
     wrong = "reader" if scope != "read" else "scorer"
@@ -98,8 +121,9 @@ def test_operations_routes_need_no_key(keyed_settings: Settings) -> None:
 def test_limits_answer_413_problems(example_store: Path) -> None:
     from tests.service.conftest import example_keys
 
-    settings = Settings(store=str(example_store), api_keys=example_keys(), max_vectors=3, max_body_bytes=2048,
-                        log_level="warning")
+    settings = Settings(
+        store=str(example_store), api_keys=example_keys(), max_vectors=3, max_body_bytes=2048, log_level="warning"
+    )
     with TestClient(create_app(settings)) as client:
         many = {"responses": [{"id": str(i), "group": "paper", "answers": {"T1": 1}} for i in range(4)]}
         reply = client.post("/v1/bundles/pantry-checkout/scores", json=many, headers=auth("scorer"))
@@ -113,15 +137,19 @@ def test_limits_answer_413_problems(example_store: Path) -> None:
 def test_errors_name_the_field_item_or_value(keyed_settings: Settings) -> None:
     headers = auth("scorer")
     with TestClient(create_app(keyed_settings)) as client:
+
         def post(body: object) -> dict:
             reply = client.post("/v1/bundles/pantry-checkout/scores", json=body, headers=headers)
             assert reply.headers["content-type"] == "application/problem+json"
             return reply.json()
 
-        assert post({"responses": [{"id": "a", "group": "paper", "answers": {"T1": 2}}]})["detail"] == \
-            "responses[0] (id 'a'), item 'T1': answer 2 is outside the item's categories 0..1"
-        unknown_group = post({"responses": [{"id": "a", "answers": {"T1": 1}}, {"id": "b", "group": "phone",
-                                                                                 "answers": {"T1": 1}}]})
+        assert (
+            post({"responses": [{"id": "a", "group": "paper", "answers": {"T1": 2}}]})["detail"]
+            == "responses[0] (id 'a'), item 'T1': answer 2 is outside the item's categories 0..1"
+        )
+        unknown_group = post(
+            {"responses": [{"id": "a", "answers": {"T1": 1}}, {"id": "b", "group": "phone", "answers": {"T1": 1}}]}
+        )
         assert unknown_group["detail"].startswith("responses[0] (id 'a'): no group given")
         validation = post({"responses": [{"id": "a", "answers": {"T1": "yes"}}]})
         assert validation["status"] == 422 and validation["errors"][0]["field"] == "body.responses.0.answers.T1"

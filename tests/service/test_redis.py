@@ -48,13 +48,16 @@ def test_two_replicas_share_one_registry(shared_redis: tuple[str, str]) -> None:
     document = json.loads(example_bundle().model_dump_json())
     first_app, second_app = create_app(_settings(url, prefix)), create_app(_settings(url, prefix))
     with live_server(first_app) as first, live_server(second_app) as second:
-        published = httpx.put(f"{first}/v1/bundles/pantry-checkout/versions/1", json=document,
-                              headers=auth("publisher"))
+        published = httpx.put(
+            f"{first}/v1/bundles/pantry-checkout/versions/1", json=document, headers=auth("publisher")
+        )
         assert published.status_code == 201
-        from_second = httpx.post(f"{second}/v1/bundles/pantry-checkout/versions/1/scores", json=SCORE,
-                                 headers=auth("scorer"))
-        from_first = httpx.post(f"{first}/v1/bundles/pantry-checkout/versions/1/scores", json=SCORE,
-                                headers=auth("scorer"))
+        from_second = httpx.post(
+            f"{second}/v1/bundles/pantry-checkout/versions/1/scores", json=SCORE, headers=auth("scorer")
+        )
+        from_first = httpx.post(
+            f"{first}/v1/bundles/pantry-checkout/versions/1/scores", json=SCORE, headers=auth("scorer")
+        )
         assert from_second.status_code == 200 and from_second.json() == from_first.json()
         # A new version and an alias move through the first replica are what the second one scores with.
         document["created_at"] = "2026-12-05T00:00:00Z"
@@ -62,8 +65,9 @@ def test_two_replicas_share_one_registry(shared_redis: tuple[str, str]) -> None:
         document["hash"] = ""
         created = httpx.post(f"{first}/v1/bundles/pantry-checkout/versions", json=document, headers=auth("publisher"))
         assert created.json()["version"] == 2
-        httpx.put(f"{first}/v1/bundles/pantry-checkout/aliases/production", json={"version": 2},
-                  headers=auth("publisher"))
+        httpx.put(
+            f"{first}/v1/bundles/pantry-checkout/aliases/production", json={"version": 2}, headers=auth("publisher")
+        )
         scored = httpx.post(f"{second}/v1/bundles/pantry-checkout/scores", json=SCORE, headers=auth("scorer"))
         assert scored.json()["bundle"]["version"] == 2
         listing = httpx.get(f"{second}/v1/bundles", headers=auth("reader")).json()
@@ -77,6 +81,7 @@ def test_concurrent_publishes_of_one_version_exactly_one_wins(shared_redis: tupl
     seen: list[tuple[int, str]] = []
     stop = threading.Event()
     with live_server(create_app(_settings(url, prefix))) as server:
+
         def reader() -> None:
             with httpx.Client() as client:
                 while not stop.is_set():
@@ -84,8 +89,14 @@ def test_concurrent_publishes_of_one_version_exactly_one_wins(shared_redis: tupl
                     seen.append((reply.status_code, reply.json().get("hash", "")))
 
         def publish(document: dict, out: list) -> None:
-            out.append(httpx.put(f"{server}/v1/bundles/pantry-checkout/versions/1", json=document,
-                                 headers=auth("publisher"), timeout=30).status_code)
+            out.append(
+                httpx.put(
+                    f"{server}/v1/bundles/pantry-checkout/versions/1",
+                    json=document,
+                    headers=auth("publisher"),
+                    timeout=30,
+                ).status_code
+            )
 
         watcher = threading.Thread(target=reader)
         watcher.start()
@@ -118,12 +129,12 @@ def test_redis_outage_keeps_scoring_and_flips_readiness(private_redis: tuple[str
         assert ready.status_code == 200 and ready.json()["status"] == "degraded"
         after = httpx.post(f"{server}/v1/bundles/pantry-checkout/scores", json=SCORE, headers=auth("scorer"))
         assert after.status_code == 200 and after.json() == before.json()
-        pinned = httpx.post(f"{server}/v1/bundles/pantry-checkout/versions/1/scores", json=SCORE,
-                            headers=auth("scorer"))
+        pinned = httpx.post(
+            f"{server}/v1/bundles/pantry-checkout/versions/1/scores", json=SCORE, headers=auth("scorer")
+        )
         assert pinned.status_code == 200
         document = json.loads(example_bundle().model_dump_json())
-        refused = httpx.post(f"{server}/v1/bundles/pantry-checkout/versions", json=document,
-                             headers=auth("publisher"))
+        refused = httpx.post(f"{server}/v1/bundles/pantry-checkout/versions", json=document, headers=auth("publisher"))
         assert refused.status_code == 503
         assert refused.headers["content-type"] == "application/problem+json"
         assert refused.json()["type"].endswith("/store-unavailable")
@@ -147,8 +158,9 @@ def test_change_feed_warms_the_other_replica(shared_redis: tuple[str, str]) -> N
         assert second_app.state.registry.loaded_count == 1
 
 
-def test_cli_publishes_to_redis_and_the_service_scores_it(shared_redis: tuple[str, str], tmp_path: Path,
-                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+def test_cli_publishes_to_redis_and_the_service_scores_it(
+    shared_redis: tuple[str, str], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     from calibration.cli import main as cli_main
     from calibration.demo import make_demo_responses
 
@@ -158,6 +170,9 @@ def test_cli_publishes_to_redis_and_the_service_scores_it(shared_redis: tuple[st
     make_demo_responses(600, seed=2, with_sites=False).to_csv(data, index=False)
     assert cli_main(["calibrate", str(data), "--name", "skills", "--store", url, "--alias", "production"]) == 0
     with live_server(create_app(_settings(url, prefix))) as server:
-        reply = httpx.post(f"{server}/v1/bundles/skills/scores", headers=auth("scorer"),
-                           json={"responses": [{"id": "x", "answers": {"NUM01": 1, "DIG01": 2}}]})
+        reply = httpx.post(
+            f"{server}/v1/bundles/skills/scores",
+            headers=auth("scorer"),
+            json={"responses": [{"id": "x", "answers": {"NUM01": 1, "DIG01": 2}}]},
+        )
     assert reply.status_code == 200 and reply.json()["bundle"]["version"] == 1

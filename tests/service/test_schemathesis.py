@@ -28,8 +28,9 @@ def server() -> Iterator[str]:
     with tempfile.TemporaryDirectory() as root:
         store = Path(root) / "store"
         DirectoryStore(store).put_version(example_bundle())
-        app = create_app(Settings(store=str(store), api_keys=example_keys(), log_level="warning",
-                                  max_body_bytes=256 * 1024))
+        app = create_app(
+            Settings(store=str(store), api_keys=example_keys(), log_level="warning", max_body_bytes=256 * 1024)
+        )
         with live_server(app) as url:
             yield url
 

@@ -33,7 +33,11 @@ def test_serve_runs_uvicorn_over_a_directory_store(example_store: Path) -> None:
 
 
 def test_serve_refuses_an_open_public_bind(example_store: Path) -> None:
-    done = subprocess.run([sys.executable, "-m", "service.main", "--store", str(example_store), "--host", "0.0.0.0"],
-                          capture_output=True, text=True, timeout=60)
+    done = subprocess.run(
+        [sys.executable, "-m", "service.main", "--store", str(example_store), "--host", "0.0.0.0"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert done.returncode == 2
     assert "EQUITHETA_HOST=0.0.0.0 with no API keys configured" in done.stderr

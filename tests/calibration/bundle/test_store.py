@@ -115,11 +115,11 @@ def test_concurrent_publishes_of_one_version_exactly_one_wins(tmp_path: Path, ls
     ctx = multiprocessing.get_context("fork")
     queue = ctx.Queue()
     docs = [
-        seal(lsat6_bundle.model_copy(update={"created_at": f"2026-01-0{i + 1}T00:00:00Z"}), version=1)
-        for i in range(8)
+        seal(lsat6_bundle.model_copy(update={"created_at": f"2026-01-0{i + 1}T00:00:00Z"}), version=1) for i in range(8)
     ]
-    procs = [ctx.Process(target=_publish_in_process, args=(str(tmp_path), d.model_dump_json().encode(), queue))
-             for d in docs]
+    procs = [
+        ctx.Process(target=_publish_in_process, args=(str(tmp_path), d.model_dump_json().encode(), queue)) for d in docs
+    ]
     for p in procs:
         p.start()
     for p in procs:

@@ -13,8 +13,15 @@ from calibration.irt.models import ItemParameters, log_category_probabilities
 from tests.conftest import simulate_responses
 
 
-def _groups_data(rng: np.random.Generator, a: np.ndarray, b: np.ndarray, n: int, shifts: dict,
-                 means: tuple[float, ...], sds: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray]:
+def _groups_data(
+    rng: np.random.Generator,
+    a: np.ndarray,
+    b: np.ndarray,
+    n: int,
+    shifts: dict,
+    means: tuple[float, ...],
+    sds: tuple[float, ...],
+) -> tuple[np.ndarray, np.ndarray]:
     """Responses of len(means) groups; ``shifts[(item, group)]`` = ('uniform', logits) or ('slope', factor)."""
     blocks, labels = [], []
     for g, (mean, sd) in enumerate(zip(means, sds, strict=True)):
@@ -108,8 +115,17 @@ def known_dif() -> dict:
     x[rng.random(x.shape) < 0.10] = np.nan
     k = np.full(n_items, 2)
     scalar = calibrate_groups(x, k, groups, 3, settings=EMSettings(standard_errors=False))
-    outcome = run_irt_dif(x, k, groups, 3, scalar, item_ids=tuple(f"Q{j}" for j in range(n_items)),
-                          models=("2pl",) * n_items, settings=DifSettings(), em_settings=EMSettings())
+    outcome = run_irt_dif(
+        x,
+        k,
+        groups,
+        3,
+        scalar,
+        item_ids=tuple(f"Q{j}" for j in range(n_items)),
+        models=("2pl",) * n_items,
+        settings=DifSettings(),
+        em_settings=EMSettings(),
+    )
     return {"outcome": outcome, "shifts": shifts}
 
 
@@ -140,10 +156,28 @@ def test_user_named_anchors_are_used() -> None:
     k = np.full(8, 2)
     scalar = calibrate_groups(x, k, groups, 2, settings=EMSettings(standard_errors=False))
     ids = tuple(f"Q{j}" for j in range(8))
-    outcome = run_irt_dif(x, k, groups, 2, scalar, item_ids=ids, models=("2pl",) * 8,
-                          settings=DifSettings(anchors=("Q1", "Q4", "Q6", "Q7")), em_settings=EMSettings())
+    outcome = run_irt_dif(
+        x,
+        k,
+        groups,
+        2,
+        scalar,
+        item_ids=ids,
+        models=("2pl",) * 8,
+        settings=DifSettings(anchors=("Q1", "Q4", "Q6", "Q7")),
+        em_settings=EMSettings(),
+    )
     assert outcome.anchors == [1, 4, 6, 7] and outcome.anchor_method == "named by the user"
     assert set(j for j, _ in outcome.tests) == {0, 2, 3, 5}
     with pytest.raises(ValueError, match="anchor items not in the data: Q9"):
-        run_irt_dif(x, k, groups, 2, scalar, item_ids=ids, models=("2pl",) * 8,
-                    settings=DifSettings(anchors=("Q9",)), em_settings=EMSettings())
+        run_irt_dif(
+            x,
+            k,
+            groups,
+            2,
+            scalar,
+            item_ids=ids,
+            models=("2pl",) * 8,
+            settings=DifSettings(anchors=("Q9",)),
+            em_settings=EMSettings(),
+        )

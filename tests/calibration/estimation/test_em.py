@@ -85,7 +85,9 @@ def test_lsat6_standard_errors_match_numerical_hessian(lsat6: dict) -> None:
         for j in range(i, n):
             e_i, e_j = np.eye(n)[i] * h, np.eye(n)[j] * h
             hess[i, j] = hess[j, i] = (
-                loglik(base + e_i + e_j) - loglik(base + e_i - e_j) - loglik(base - e_i + e_j)
+                loglik(base + e_i + e_j)
+                - loglik(base + e_i - e_j)
+                - loglik(base - e_i + e_j)
                 + loglik(base - e_i - e_j)
             ) / (4 * h * h)
     se = np.sqrt(np.diag(np.linalg.inv(-hess)))

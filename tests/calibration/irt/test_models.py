@@ -20,8 +20,12 @@ def mixed_items() -> ItemParameters:
     # Two 2PL items, a 3-category and a 5-category graded item (a test may mix them).
     return ItemParameters.from_thresholds(
         [1.2, 0.6, 1.5, 2.1],
-        [[0.3, np.nan, np.nan, np.nan], [-1.0, np.nan, np.nan, np.nan], [-0.5, 0.8, np.nan, np.nan],
-         [-1.5, -0.2, 0.4, 1.9]],
+        [
+            [0.3, np.nan, np.nan, np.nan],
+            [-1.0, np.nan, np.nan, np.nan],
+            [-0.5, 0.8, np.nan, np.nan],
+            [-1.5, -0.2, 0.4, 1.9],
+        ],
     )
 
 
@@ -30,8 +34,7 @@ def test_graded_check_value() -> None:
     ref = load_reference("grm_check.json")
     params = ItemParameters.from_thresholds([ref["slope"]], [ref["thresholds"]])
     theta = np.array([ref["theta"]])
-    np.testing.assert_allclose(category_probabilities(params, theta)[0, :, 0], ref["category_probabilities"],
-                               atol=1e-6)
+    np.testing.assert_allclose(category_probabilities(params, theta)[0, :, 0], ref["category_probabilities"], atol=1e-6)
     np.testing.assert_allclose(item_information(params, theta)[0, 0], ref["item_information"], atol=1e-6)
 
 

@@ -28,8 +28,7 @@ def items() -> ItemParameters:
     # Three 2PL items and two graded items (3 and 4 categories).
     return ItemParameters.from_thresholds(
         [1.1, 0.7, 1.8, 1.3, 0.9],
-        [[-0.4, np.nan, np.nan], [0.9, np.nan, np.nan], [0.2, np.nan, np.nan], [-1.0, 0.6, np.nan],
-         [-1.2, 0.1, 1.4]],
+        [[-0.4, np.nan, np.nan], [0.9, np.nan, np.nan], [0.2, np.nan, np.nan], [-1.0, 0.6, np.nan], [-1.2, 0.1, 1.4]],
     )
 
 
@@ -108,7 +107,9 @@ def test_map_matches_scipy_optimiser(items: ItemParameters) -> None:
     for i, pattern in enumerate(PATTERNS):
         res = optimize.minimize_scalar(
             lambda t, p=pattern: -_log_likelihood(items, p, t) - stats.norm.logpdf(t, prior.mean, prior.sd),
-            bounds=(-8, 8), method="bounded", options={"xatol": 1e-10},
+            bounds=(-8, 8),
+            method="bounded",
+            options={"xatol": 1e-10},
         )
         assert scores.theta[i] == pytest.approx(res.x, abs=1e-6)
     assert np.all(scores.se < prior.sd)
@@ -119,7 +120,9 @@ def test_ml_matches_scipy_and_applies_the_extreme_rule(items: ItemParameters) ->
     for i in (0, 3, 4):
         pattern = PATTERNS[i]
         res = optimize.minimize_scalar(
-            lambda t, p=pattern: -_log_likelihood(items, p, t), bounds=(-4, 4), method="bounded",
+            lambda t, p=pattern: -_log_likelihood(items, p, t),
+            bounds=(-4, 4),
+            method="bounded",
             options={"xatol": 1e-10},
         )
         assert scores.theta[i] == pytest.approx(res.x, abs=1e-5)
@@ -136,13 +139,15 @@ def test_ml_se_is_inverse_root_information(items: ItemParameters) -> None:
     # approximately, so use a pattern long enough that both agree to 5%: common practice).
     x = np.tile(PATTERNS[0], 6)[None, :]
     long = ItemParameters(
-        slopes=np.tile(items.slopes, 6), intercepts=np.tile(items.intercepts, (6, 1)),
+        slopes=np.tile(items.slopes, 6),
+        intercepts=np.tile(items.intercepts, (6, 1)),
         n_categories=np.tile(items.n_categories, 6),
     )
     scores = ml_scores(long, x)
     t, h = scores.theta[0], 1e-4
-    second = (_log_likelihood(long, x[0], t + h) - 2 * _log_likelihood(long, x[0], t)
-              + _log_likelihood(long, x[0], t - h)) / h**2
+    second = (
+        _log_likelihood(long, x[0], t + h) - 2 * _log_likelihood(long, x[0], t) + _log_likelihood(long, x[0], t - h)
+    ) / h**2
     assert scores.se[0] == pytest.approx((-second) ** -0.5, rel=0.05)
 
 
