@@ -17,7 +17,7 @@ import tempfile
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -25,6 +25,7 @@ from calibration.errors import InputError
 
 if TYPE_CHECKING:
     import pandas as pd
+
 from calibration.irt.models import MODEL_1PL, MODEL_2PL, MODEL_GRM, MODELS, FloatArray, IntArray
 
 MAX_PROBLEMS = 12
@@ -135,37 +136,87 @@ def _check_file(path: Path) -> None:
         raise InputError(path.name, ["the file is empty (no header, no respondents)"])
 
 
-def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
-    """Read a CSV or Parquet file with every cell as text; returns the table and the header offset.
+@dataclass(frozen=True)
+class TextTable:
+    """A file's cells as text columns (Arrow string arrays), as read; no cell converted yet.
+
+    ``header_lines`` is 1 for CSV (the header line), 0 for Parquet, for row and line numbers
+    in messages.
+    """
+
+    columns: list[str]
+    cells: dict[str, Any]  # column -> pyarrow ChunkedArray of strings, no nulls
+    n_rows: int
+    header_lines: int
+
+    def text(self, column: str) -> list[str]:
+        """A column's cells with surrounding white space removed."""
+        import pyarrow.compute as pc
+
+        return pc.utf8_trim_whitespace(self.cells[column]).to_pylist()  # type: ignore[no-any-return]
+
+
+def _read_table(path: Path) -> TextTable:
+    """Read a CSV or Parquet file with every cell as text (Arrow, no Python object per cell).
 
     The CSV delimiter is taken from the header line (comma, semicolon, tab or bar,
     whichever occurs most), so a semicolon-delimited export reads as it is.
     """
     _check_file(path)
-    import pandas as pd  # here, not at import: a missing file or a bad header answers without it
+    import pyarrow as pa  # here, not at import: a missing file or a bad header answers without it
 
-    suffix = path.suffix.lower()
+    if _is_parquet(path):
+        return _read_parquet_text(path)
+    import pyarrow.csv as pa_csv
+
+    first, delimiter = _header_fields(path)
+    names = [c.strip() for c in first]
+    # A repeated header would be read as one column or renamed: refuse instead.
+    repeated = sorted({c for c in names if names.count(c) > 1})
+    if repeated:
+        raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in repeated])
     try:
-        if _is_parquet(path):
-            frame = pd.read_parquet(path)
-            frame = frame.astype(object).where(frame.notna(), "")
-            frame = frame.map(_cell_text)
-            return frame, 0
-        first, delimiter = _header_fields(path)
-        # pandas would rename a repeated header to "X.1" and read it as another column: refuse instead.
-        repeated = sorted({c.strip() for c in first if [h.strip() for h in first].count(c.strip()) > 1})
-        if repeated:
-            raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in repeated])
-        frame = pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[], skipinitialspace=False, sep=delimiter)
-    except (pd.errors.ParserError, UnicodeDecodeError, OSError, ValueError) as exc:
-        kind = "Parquet" if suffix in (".parquet", ".pq") else "CSV"
-        raise InputError(path.name, [f"cannot be read as {kind}: {exc}"]) from exc
-    except pd.errors.EmptyDataError as exc:
-        raise InputError(path.name, ["the file is empty (no header, no respondents)"]) from exc
-    return frame, 1
+        table = pa_csv.read_csv(
+            path,
+            parse_options=pa_csv.ParseOptions(delimiter=delimiter),
+            convert_options=pa_csv.ConvertOptions(
+                column_types={name: pa.string() for name in first}, strings_can_be_null=False
+            ),
+        )
+    except (pa.ArrowInvalid, UnicodeDecodeError, OSError) as exc:
+        raise InputError(path.name, [f"cannot be read as CSV: {_arrow_message(exc)}"]) from exc
+    cells = {name.strip(): table.column(i) for i, name in enumerate(table.column_names)}
+    return TextTable(names, cells, table.num_rows, 1)
 
 
-def _open_respondent_table(path: Path, id_column: str, group_column: str | None) -> tuple[pd.DataFrame, int, list[str]]:
+def _arrow_message(exc: Exception) -> str:
+    """Arrow's parse errors without the library's own prefix."""
+    return str(exc).removeprefix("CSV parse error: ")
+
+
+def _read_parquet_text(path: Path) -> TextTable:
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    try:
+        table = pq.read_table(path)
+    except (pa.ArrowInvalid, OSError) as exc:
+        raise InputError(path.name, [f"cannot be read as Parquet: {exc}"]) from exc
+    cells = {}
+    for name, column in zip(table.column_names, table.columns, strict=True):
+        if pa.types.is_floating(column.type):
+            # 3.0 from a float column is the code 3: drop an integral value's ".0".
+            as_int = pc.cast(column, pa.int64(), safe=False)
+            integral = pc.equal(pc.cast(as_int, column.type), column)
+            column = pc.if_else(integral, pc.cast(as_int, pa.string()), pc.cast(column, pa.string()))
+        elif not pa.types.is_string(column.type):
+            column = pc.cast(column, pa.string())
+        cells[str(name).strip()] = pc.fill_null(column, "")
+    return TextTable([str(c).strip() for c in table.column_names], cells, table.num_rows, 0)
+
+
+def _open_respondent_table(path: Path, id_column: str, group_column: str | None) -> TextTable:
     """Read a respondent table and check its header: unique columns, the id (and group) column, some rows.
 
     The header is checked before the rows are parsed, so a header problem answers at once.
@@ -175,11 +226,10 @@ def _open_respondent_table(path: Path, id_column: str, group_column: str | None)
     if duplicated:
         raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in duplicated])
     _check_required_columns(path, columns, id_column, group_column)
-    frame, header = _read_table(path)
-    frame.columns = [str(c).strip() for c in frame.columns]
-    if len(frame) == 0:
+    table = _read_table(path)
+    if table.n_rows == 0:
         raise InputError(path.name, ["the file has a header but no respondents"])
-    return frame, header, list(frame.columns)
+    return table
 
 
 def _check_required_columns(path: Path, columns: list[str], id_column: str, group_column: str | None) -> None:
@@ -200,12 +250,6 @@ def _check_required_columns(path: Path, columns: list[str], id_column: str, grou
         raise InputError(path.name, [f"no group column {group_column!r}; the columns are: {', '.join(columns)}"])
 
 
-def _cell_text(value: object) -> str:
-    if isinstance(value, float) and value.is_integer():
-        return str(int(value))
-    return str(value)
-
-
 def row_label(index: int, header_lines: int) -> str:
     """1-based data row, and the file line for text files."""
     if header_lines:
@@ -213,30 +257,35 @@ def row_label(index: int, header_lines: int) -> str:
     return f"row {index + 1}"
 
 
+def _rows(table: TextTable, columns: list[str]) -> list[dict[str, str]]:
+    """A small table's rows as dicts of trimmed text ("" for a column the file does not have)."""
+    present = {c: table.text(c) for c in columns if c in table.cells}
+    return [{c: present[c][i] if c in present else "" for c in columns} for i in range(table.n_rows)]
+
+
 def read_item_spec(path: Path) -> list[ItemSpec]:
     """Read an item spec CSV: columns ``item`` (required), ``model``, ``categories``, ``include``, ``label``."""
-    frame, header = _read_table(path)
-    columns = [c.strip() for c in frame.columns]
-    frame.columns = columns
+    table = _read_table(path)
+    columns, header = table.columns, table.header_lines
     if "item" not in columns:
         raise InputError(path.name, [f"the item spec needs an 'item' column; found {', '.join(columns)}"])
     known = {"item", "model", "categories", "include", "label"}
     problems = [f"unknown column {c!r} (known: {', '.join(sorted(known))})" for c in columns if c not in known]
     specs: list[ItemSpec] = []
     seen: set[str] = set()
-    for i, row in frame.iterrows():
-        where = row_label(int(i), header)  # type: ignore[arg-type]
-        item = str(row["item"]).strip()
+    for i, row in enumerate(_rows(table, list(known))):
+        where = row_label(i, header)
+        item = row["item"]
         if not item:
             problems.append(f"{where}: empty item id")
             continue
         if item in seen:
             problems.append(f"{where}: item {item!r} is listed twice")
         seen.add(item)
-        model = str(row.get("model", "")).strip().lower() or None
+        model = row["model"].lower() or None
         if model is not None and model not in MODELS:
             problems.append(f"{where}, column 'model': {model!r} is not one of {', '.join(MODELS)}")
-        raw_k = str(row.get("categories", "")).strip()
+        raw_k = row["categories"]
         n_categories = None
         if raw_k:
             if not raw_k.isdigit() or int(raw_k) < 2:
@@ -245,11 +294,11 @@ def read_item_spec(path: Path) -> list[ItemSpec]:
                 n_categories = int(raw_k)
         if model in (MODEL_2PL, MODEL_1PL) and n_categories not in (None, 2):
             problems.append(f"{where}: model {model} needs 2 categories, the spec says {n_categories}")
-        include_raw = str(row.get("include", "")).strip().lower()
+        include_raw = row["include"].lower()
         if include_raw not in ("", "yes", "no", "true", "false", "1", "0"):
             problems.append(f"{where}, column 'include': {include_raw!r} is not yes/no")
         include = include_raw not in ("no", "false", "0")
-        specs.append(ItemSpec(item, model, n_categories, include, str(row.get("label", "")).strip()))
+        specs.append(ItemSpec(item, model, n_categories, include, row["label"]))
     if problems:
         raise InputError(path.name, problems[:MAX_PROBLEMS], total=len(problems))
     return specs
@@ -261,20 +310,19 @@ def read_policy_overrides(path: Path) -> list[tuple[str, str, str, str]]:
     Returns (item, group, status, note) tuples; statuses and names are checked
     against the calibration by the pipeline, which knows the items and groups.
     """
-    frame, header = _read_table(path)
-    frame.columns = [c.strip() for c in frame.columns]
+    table = _read_table(path)
     needed = ["item", "group", "status", "note"]
-    missing = [c for c in needed if c not in frame.columns]
+    missing = [c for c in needed if c not in table.columns]
     if missing:
         raise InputError(
             path.name, [f"the policy override file needs columns {', '.join(needed)}; missing: {', '.join(missing)}"]
         )
     out, problems = [], []
-    for i, row in frame.iterrows():
-        values = [str(row[c]).strip() for c in needed]
+    for i, row in enumerate(_rows(table, needed)):
+        values = [row[c] for c in needed]
         empty = [c for c, v in zip(needed, values, strict=True) if not v]
         if empty:
-            problems.append(f"{row_label(int(i), header)}: empty {', '.join(empty)}")  # type: ignore[arg-type]
+            problems.append(f"{row_label(i, table.header_lines)}: empty {', '.join(empty)}")
             continue
         out.append((values[0], values[1], values[2].lower(), values[3]))
     if problems:
@@ -299,7 +347,8 @@ def read_responses(
     ignored with a note.
     """
     path = Path(path)
-    frame, header, columns = _open_respondent_table(path, id_column, group_column)
+    table = _open_respondent_table(path, id_column, group_column)
+    columns, header = table.columns, table.header_lines
     source = path.name
     problems: list[str] = []
 
@@ -325,8 +374,8 @@ def read_responses(
     if problems:
         raise InputError(source, problems)
 
-    ids, problems = _respondent_ids(frame, id_column, header)
-    responses, code_problems = parse_codes(frame[item_ids], header)
+    ids, problems = _respondent_ids(table, id_column)
+    responses, code_problems = parse_codes(table, item_ids)
     problems.extend(code_problems)
     if problems:
         raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
@@ -337,7 +386,7 @@ def read_responses(
     if category_problems:
         raise InputError(source, category_problems[:MAX_PROBLEMS], total=len(category_problems))
 
-    groups = _group_labels(frame, group_column, header, source)
+    groups = _group_labels(table, group_column, source)
     return ResponseData(
         ids=tuple(ids),
         item_ids=tuple(item_ids),
@@ -352,10 +401,11 @@ def read_responses(
     )
 
 
-def _respondent_ids(frame: pd.DataFrame, id_column: str, header: int) -> tuple[list[str], list[str]]:
+def _respondent_ids(table: TextTable, id_column: str) -> tuple[list[str], list[str]]:
     """Ids as text; empty and duplicate ids are problems naming their rows."""
     problems: list[str] = []
-    ids = [str(v).strip() for v in frame[id_column].tolist()]
+    header = table.header_lines
+    ids = table.text(id_column)
     first_row: dict[str, int] = {}
     for i, value in enumerate(ids):
         if not value:
@@ -369,10 +419,11 @@ def _respondent_ids(frame: pd.DataFrame, id_column: str, header: int) -> tuple[l
     return ids, problems
 
 
-def _group_labels(frame: pd.DataFrame, group_column: str | None, header: int, source: str) -> tuple[str, ...] | None:
+def _group_labels(table: TextTable, group_column: str | None, source: str) -> tuple[str, ...] | None:
     if group_column is None:
         return None
-    groups = tuple(str(v).strip() for v in frame[group_column].tolist())
+    header = table.header_lines
+    groups = tuple(table.text(group_column))
     empty = [i for i, g in enumerate(groups) if not g]
     if empty:
         raise InputError(
@@ -400,7 +451,8 @@ def read_for_scoring(
     without a column count as not administered, with a note.
     """
     path = Path(path)
-    frame, header, columns = _open_respondent_table(path, id_column, group_column)
+    table = _open_respondent_table(path, id_column, group_column)
+    columns, header = table.columns, table.header_lines
     source = path.name
     reserved = {id_column, *ignore_columns} | ({group_column} if group_column else set())
     unknown = [c for c in columns if c not in reserved and c not in item_categories]
@@ -414,8 +466,8 @@ def read_for_scoring(
     present = [c for c in columns if c in item_categories]
     if not present:
         raise InputError(source, ["no column matches an item of the bundle"])
-    ids, problems = _respondent_ids(frame, id_column, header)
-    parsed, code_problems = parse_codes(frame[present], header)
+    ids, problems = _respondent_ids(table, id_column)
+    parsed, code_problems = parse_codes(table, present)
     problems.extend(code_problems)
     for j, item in enumerate(present):
         k = item_categories[item]
@@ -428,7 +480,7 @@ def read_for_scoring(
     if problems:
         raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
     order = list(item_categories)
-    responses = np.full((len(frame), len(order)), np.nan)
+    responses = np.full((table.n_rows, len(order)), np.nan)
     for j, item in enumerate(present):
         responses[:, order.index(item)] = parsed[:, j]
     absent = [c for c in order if c not in present]
@@ -439,7 +491,7 @@ def read_for_scoring(
         responses=responses,
         n_categories=np.array([item_categories[c] for c in order], dtype=np.int64),
         models=tuple(MODEL_GRM if item_categories[c] > 2 else MODEL_2PL for c in order),
-        groups=_group_labels(frame, group_column, header, source),
+        groups=_group_labels(table, group_column, source),
         source=source,
         source_sha256=file_sha256(path),
         notes=tuple(notes),
@@ -447,31 +499,59 @@ def read_for_scoring(
     )
 
 
-def parse_codes(frame: pd.DataFrame, header_lines: int) -> tuple[FloatArray, list[str]]:
-    """Text cells to float codes: empty = NaN, otherwise a whole number >= 0."""
-    values = frame.to_numpy(dtype=object)
-    stripped = np.char.strip(values.astype(str))
-    empty = stripped == ""
-    out = np.full(stripped.shape, np.nan)
-    problems: list[str] = []
-    import pandas as pd
+def parse_codes(table: TextTable, columns: list[str]) -> tuple[FloatArray, list[str]]:
+    """Text cells to float codes: empty = NaN, otherwise a whole number >= 0.
 
-    numeric = pd.to_numeric(pd.Series(stripped[~empty]), errors="coerce").to_numpy(dtype=np.float64)
-    out[~empty] = numeric
-    bad = ~empty & ~(np.isfinite(out) & (out >= 0) & (np.floor(out) == out))
-    columns = list(frame.columns)
-    for i, j in zip(*np.nonzero(bad), strict=True):
-        problems.append(
-            f"{row_label(int(i), header_lines)}, column {columns[j]!r}: value {values[i, j]!r} is not a "
-            "category code (a whole number >= 0, or empty for not administered)"
-        )
-        if len(problems) >= MAX_PROBLEMS:
-            break
-    total = int(bad.sum())
-    if total > len(problems):
-        problems.append(f"... {total - len(problems)} more cells like these")
-    out[bad] = np.nan
+    Each column is converted by Arrow in one pass; only a column that fails is looked at
+    cell by cell, to name its bad cells.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    out = np.full((table.n_rows, len(columns)), np.nan)
+    bad_cells: list[tuple[int, int, str]] = []
+    total_bad = 0
+    for j, column in enumerate(columns):
+        trimmed = pc.utf8_trim_whitespace(table.cells[column])
+        missing = _numpy_view(pc.utf8_length(trimmed), np.int32) == 0
+        # An empty cell becomes the text "nan" so that one cast converts the column; ``missing`` tells
+        # it apart from a cell that really says "nan" (which is not a code).
+        filled = pc.replace_substring_regex(trimmed, pattern="^$", replacement="nan")
+        try:
+            values = _numpy_view(pc.cast(filled, pa.float64()), np.float64).copy()
+        except pa.ArrowInvalid:
+            values = np.array([_code_or_nan(v) for v in filled.to_pylist()], dtype=np.float64)
+        bad = ~missing & ~(np.isfinite(values) & (values >= 0) & (np.floor(values) == values))
+        if bad.any():
+            total_bad += int(bad.sum())
+            texts = table.cells[column].to_pylist()
+            bad_cells.extend((int(i), j, texts[i]) for i in np.flatnonzero(bad)[:MAX_PROBLEMS])
+        out[:, j] = np.where(missing | bad, np.nan, values)
+    problems = [
+        f"{row_label(i, table.header_lines)}, column {columns[j]!r}: value {text!r} is not a category code "
+        "(a whole number >= 0, or empty for not administered)"
+        for i, j, text in sorted(bad_cells)[:MAX_PROBLEMS]
+    ]
+    if total_bad > len(problems):
+        problems.append(f"... {total_bad - len(problems)} more cells like these")
     return out, problems
+
+
+def _numpy_view(array: Any, dtype: type) -> np.ndarray:
+    """The values of a null-free, fixed-width Arrow array as numpy, read from its data buffer.
+
+    (``to_numpy`` would do, but it loads pandas, half a second of start-up for a CLI error.)
+    """
+    combined = array.combine_chunks() if hasattr(array, "combine_chunks") else array
+    start = combined.offset
+    return np.frombuffer(combined.buffers()[1], dtype=dtype, count=start + len(combined))[start:]
+
+
+def _code_or_nan(text: str | None) -> float:
+    try:
+        return float(text) if text is not None else math.nan
+    except ValueError:
+        return math.nan
 
 
 def _categories_and_models(
