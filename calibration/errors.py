@@ -36,3 +36,56 @@ class UnknownGroup(ValueError):
         super().__init__(message)
         self.problems = problems
         self.index, self.group = problems[0]
+
+
+class BundleError(Exception):
+    """Base class of bundle and store errors."""
+
+
+class BundleIntegrityError(BundleError):
+    """A stored bundle is damaged, truncated, tampered with or not a bundle.
+
+    ``str(exc)`` says what is wrong without naming where it is stored; ``location`` (a file
+    path or a Redis key) is for operators and the command line, never for an API answer.
+    """
+
+    def __init__(self, message: str, *, location: str | None = None) -> None:
+        super().__init__(message)
+        self.location = location
+
+
+class BundleNotFound(BundleError):
+    """No bundle (or no such version or alias) under that name."""
+
+
+class VersionConflict(BundleError):
+    """That version already exists with other content."""
+
+
+class InvalidReference(BundleError):
+    """A bundle name, version or alias is malformed."""
+
+
+class InvalidBundleDocument(BundleError):
+    """A bundle offered for publishing is not acceptable (its stated hash does not match, ...)."""
+
+
+class StoreUnavailable(BundleError):
+    """The shared store cannot be reached (reads may still be served from a cache)."""
+
+
+def redact_url(url: str) -> str:
+    """A store URL fit for messages and logs: any user name and password replaced by ``***``."""
+    from urllib.parse import urlsplit, urlunsplit
+
+    try:
+        parts = urlsplit(url)
+    except ValueError:
+        return "<unparsable store URL>"
+    if parts.password is None and parts.username is None:
+        return url
+    host = parts.hostname or ""
+    if ":" in host:
+        host = f"[{host}]"
+    netloc = "***@" + host + (f":{parts.port}" if parts.port else "")
+    return urlunsplit((parts.scheme, netloc, parts.path, parts.query, parts.fragment))

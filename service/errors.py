@@ -10,6 +10,15 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from calibration.errors import (
+    BundleIntegrityError,
+    BundleNotFound,
+    InvalidBundleDocument,
+    InvalidReference,
+    StoreUnavailable,
+    VersionConflict,
+)
+
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 PROBLEM_BASE = "https://equitheta.invalid/problems/"
 log = logging.getLogger("equitheta.service")
@@ -26,10 +35,6 @@ class ProblemError(Exception):
         super().__init__(detail)
         self.detail = detail
         self.extra = extra
-
-
-class BundleNotFoundProblem(ProblemError):
-    status, slug, title = 404, "bundle-not-found", "Bundle not found"
 
 
 class InvalidScoreRequest(ProblemError):
@@ -52,14 +57,6 @@ class InvalidBundle(ProblemError):
     status, slug, title = 422, "invalid-bundle", "The bundle document is not valid"
 
 
-class VersionConflictProblem(ProblemError):
-    status, slug, title = 409, "version-conflict", "That version is already published with other content"
-
-
-class StoreUnavailableProblem(ProblemError):
-    status, slug, title = 503, "store-unavailable", "The shared bundle store is unreachable"
-
-
 class Unauthorized(ProblemError):
     status, slug, title = 401, "unauthorized", "Missing or unknown API key"
 
@@ -70,6 +67,19 @@ class Forbidden(ProblemError):
 
 class PayloadTooLarge(ProblemError):
     status, slug, title = 413, "payload-too-large", "Request too large"
+
+
+# Domain exceptions -> (status, problem type, title): the one table, registered once in install_handlers.
+# A damaged stored bundle is the server's fault (500, its own type); its message names the version,
+# never where it is stored.
+DOMAIN_PROBLEMS: dict[type[Exception], tuple[int, str, str]] = {
+    BundleNotFound: (404, "bundle-not-found", "Bundle not found"),
+    VersionConflict: (409, "version-conflict", "That version is already published with other content"),
+    InvalidReference: (422, "invalid-bundle", "The bundle document is not valid"),
+    InvalidBundleDocument: (422, "invalid-bundle", "The bundle document is not valid"),
+    BundleIntegrityError: (500, "stored-bundle-damaged", "A stored bundle is damaged and refused"),
+    StoreUnavailable: (503, "store-unavailable", "The shared bundle store is unreachable"),
+}
 
 
 def problem(
@@ -94,6 +104,15 @@ def install_handlers(app: FastAPI) -> None:
         headers = {"WWW-Authenticate": "Bearer"} if exc.status == 401 else None
         return problem(exc.status, exc.slug, exc.title, exc.detail, request.url.path, headers=headers, **exc.extra)
 
+    async def _table(request: Request, exc: Exception) -> JSONResponse:
+        status, slug, title = next(v for k, v in DOMAIN_PROBLEMS.items() if isinstance(exc, k))
+        if status >= 500:
+            log.error("%s on %s %s: %s (%s)", slug, request.method, request.url.path, exc, getattr(exc, "location", ""))
+        return problem(status, slug, title, str(exc), request.url.path)
+
+    for error in DOMAIN_PROBLEMS:
+        app.add_exception_handler(error, _table)
+
     @app.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError) -> JSONResponse:
         errors = [
@@ -115,6 +134,7 @@ def install_handlers(app: FastAPI) -> None:
             str(exc.detail),
             f"{request.method} {request.url.path}: {exc.detail}",
             request.url.path,
+            headers=getattr(exc, "headers", None),  # keeps Allow on a 405
         )
 
     @app.exception_handler(Exception)

@@ -26,26 +26,23 @@ from fastapi.routing import APIRoute
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from calibration import __version__
-from calibration.bundle import Bundle, BundleNotFound, InvalidReference, VersionConflict, open_store
-from calibration.bundle.canonical import BundleIntegrityError
+from calibration.bundle import Bundle, open_store
 from calibration.bundle.schema import ALIAS_PATTERN, NAME_PATTERN
 from calibration.bundle.scorer import UnknownGroup
 from service.errors import (
     PROBLEM_MEDIA_TYPE,
     AnswerOutOfRange,
-    BundleNotFoundProblem,
     InvalidBundle,
     PayloadTooLarge,
     ProblemError,
-    StoreUnavailableProblem,
     UnknownGroupProblem,
     UnknownItem,
-    VersionConflictProblem,
     install_handlers,
     problem,
 )
+from service.metrics import CONTENT_TYPE as METRICS_CONTENT_TYPE
 from service.metrics import Metrics
-from service.registry import BundleRegistry, LoadedBundle, StoreUnavailable
+from service.registry import BundleRegistry, LoadedBundle
 from service.schemas import (
     CAUTION,
     AliasRequest,
@@ -82,7 +79,8 @@ def _problem_responses(*codes: int) -> dict[int | str, dict[str, Any]]:
         404: "unknown bundle or version",
         409: "version already published with other content",
         413: "request too large",
-        422: "invalid request, item, answer or group",
+        422: "invalid request (any field, item, answer or group)",
+        500: "a stored bundle or alias file is damaged and refused (problem type stored-bundle-damaged)",
         503: "the shared store is unreachable",
     }
     out: dict[int | str, dict[str, Any]] = {}
@@ -230,9 +228,17 @@ class JsonLogFormatter(logging.Formatter):
         return json.dumps(body)
 
 
+class _StderrHandler(logging.StreamHandler):  # type: ignore[type-arg]
+    """Writes to whatever ``sys.stderr`` is when a record is emitted (it may be replaced after start-up)."""
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.stream = sys.stderr
+        super().emit(record)
+
+
 def _configure_logging(level: str) -> None:
     if not any(getattr(h, "_equitheta", False) for h in log.handlers):
-        handler = logging.StreamHandler(sys.stderr)
+        handler = _StderrHandler()
         handler.setFormatter(JsonLogFormatter())
         handler._equitheta = True  # type: ignore[attr-defined]
         log.addHandler(handler)
@@ -411,6 +417,38 @@ ScoreBody = Annotated[
 ]
 
 
+def _document_problems(app: FastAPI) -> None:
+    """Make the OpenAPI document say what is sent: every 422 is a problem document, never FastAPI's default."""
+    generate = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema:
+            return app.openapi_schema
+        schema = generate()
+        for operations in schema.get("paths", {}).values():
+            for operation in operations.values():
+                for code, answer in operation.get("responses", {}).items():
+                    content = answer.get("content", {})
+                    if code[0] in "45" and PROBLEM_MEDIA_TYPE in content:
+                        answer["content"] = {PROBLEM_MEDIA_TYPE: content[PROBLEM_MEDIA_TYPE]}  # errors are never JSON
+                response = operation.get("responses", {}).get("422")
+                if response is not None:
+                    content = response.get("content", {})
+                    problem_content = content.get(
+                        PROBLEM_MEDIA_TYPE, {"schema": {"$ref": "#/components/schemas/Problem"}}
+                    )
+                    response["content"] = {PROBLEM_MEDIA_TYPE: problem_content}
+                    if response.get("description") == "Validation Error":
+                        response["description"] = "invalid request (any field, item, answer or group)"
+        components = schema.get("components", {}).get("schemas", {})
+        for unused in ("HTTPValidationError", "ValidationError"):
+            components.pop(unused, None)
+        app.openapi_schema = schema
+        return schema
+
+    app.openapi = openapi  # type: ignore[method-assign]
+
+
 def create_app(settings: Settings) -> FastAPI:
     keyring = KeyRing(load_keys(settings.api_keys_file, settings.api_keys))
     metrics = Metrics()
@@ -422,7 +460,7 @@ def create_app(settings: Settings) -> FastAPI:
         registry = BundleRegistry(store)
         if settings.preload:
             registry.preload()
-        registry.start_listener()
+        registry.start()
         app.state.registry = registry
         if keyring.open:
             log.warning(
@@ -446,9 +484,11 @@ def create_app(settings: Settings) -> FastAPI:
         yield
         registry.stop()
 
+    docs = {} if settings.docs else {"docs_url": None, "redoc_url": None, "openapi_url": None}
     app = FastAPI(
         title="equitheta scoring service",
         version=__version__,
+        **docs,
         description=(
             "Scores response vectors with versioned, invariance-checked calibration bundles and explains which "
             "items were left out for a respondent's group. " + ScoreResponse.model_fields["caution"].default
@@ -457,20 +497,15 @@ def create_app(settings: Settings) -> FastAPI:
     )
     app.router.route_class = OrjsonRoute
     install_handlers(app)
+    _document_problems(app)
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     app.add_middleware(Observe, metrics=metrics)
 
     app.state.keyring = keyring
 
     def resolve(registry: BundleRegistry, name: str, version: int | None) -> LoadedBundle:
-        try:
-            return registry.get(name, version) if version is not None else registry.default(name)
-        except BundleNotFound as exc:
-            raise BundleNotFoundProblem(str(exc)) from exc
-        except StoreUnavailable as exc:
-            raise StoreUnavailableProblem(f"{exc}; this replica holds no copy of that bundle") from exc
-        except BundleIntegrityError as exc:
-            raise ProblemError(f"the stored bundle is damaged and refused: {exc}") from exc
+        # Store errors map to problems through the one table in service.errors.
+        return registry.get(name, version) if version is not None else registry.default(name)
 
     def run_scoring(loaded: LoadedBundle, body: ScoreRequest) -> Any:
         if len(body.responses) > settings.max_vectors:
@@ -494,36 +529,55 @@ def create_app(settings: Settings) -> FastAPI:
         responses={200: _ok_example("readyz"), 503: {"model": Readiness, "description": "not ready"}},
     )
     def readyz(registry: RegistryDep) -> Any:
-        reachable = registry.reachable()
-        metrics.set_gauge("equitheta_bundles_loaded", registry.loaded_count)
-        metrics.set_gauge("equitheta_store_up", 1.0 if reachable else 0.0)
-        if reachable:
-            return Readiness(status="ready", store="reachable", bundles_loaded=registry.loaded_count)
+        """Readiness from the background probe's last word: this route never waits on the store."""
+        up, loaded, damaged = registry.store_up, registry.loaded_count, registry.damaged
+        metrics.set_state(bundles_loaded=loaded, store_up=up)
+        if up:
+            status = "degraded" if damaged else "ready"
+            detail = f"{len(damaged)} stored version(s) failed verification" if damaged else None
+            return Readiness(
+                status=status, store="reachable", bundles_loaded=loaded, detail=detail, damaged_versions=damaged
+            )
         body = Readiness(
-            status="degraded" if registry.loaded_count else "not_ready",
+            status="degraded" if loaded else "not_ready",
             store="unreachable",
-            bundles_loaded=registry.loaded_count,
+            bundles_loaded=loaded,
             detail=registry.degraded_reason,
+            damaged_versions=damaged,
         )
-        if registry.loaded_count:
+        if loaded:
             return body
         return JSONResponse(body.model_dump(), status_code=503)
+
+    def open_route_principal(
+        request: Request,
+        authorization: Annotated[str | None, Header(description="Bearer <API key>")] = None,
+        x_api_key: Annotated[str | None, Header(description="the API key (alternative header)")] = None,
+    ) -> Principal | None:
+        return None if settings.metrics_scope is None else principal_dep(request, authorization, x_api_key)
+
+    def metrics_guard(principal: Principal | None = Depends(open_route_principal)) -> None:  # noqa: B008
+        if principal is not None and settings.metrics_scope is not None:
+            KeyRing.require(principal, settings.metrics_scope)
 
     @app.get(
         "/metrics",
         response_class=PlainTextResponse,
         tags=["operations"],
-        responses={200: {"content": {"text/plain": {"example": "equitheta_requests_total{...} 1\n"}}}},
+        responses={
+            200: {"content": {"text/plain": {"example": "equitheta_requests_total{...} 1\n"}}},
+            **(_problem_responses(401, 403) if settings.metrics_scope else {}),
+        },
     )
-    def metrics_route(registry: RegistryDep) -> PlainTextResponse:
-        metrics.set_gauge("equitheta_bundles_loaded", registry.loaded_count)
-        return PlainTextResponse(metrics.render(), media_type="text/plain; version=0.0.4")
+    def metrics_route(registry: RegistryDep, _: None = Depends(metrics_guard)) -> Response:  # noqa: B008
+        metrics.set_state(bundles_loaded=registry.loaded_count, store_up=registry.store_up)
+        return Response(metrics.render(), media_type=METRICS_CONTENT_TYPE)
 
     @app.post(
         "/v1/bundles/{name}/scores",
         response_model=ScoreResponse,
         tags=["scoring"],
-        responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 503)},
+        responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 500, 503)},
     )
     def score_default(name: NameParam, body: ScoreBody, registry: RegistryDep, _: ScoreScope) -> Any:
         """Score with the version the ``production`` alias points at, else the newest version."""
@@ -533,7 +587,7 @@ def create_app(settings: Settings) -> FastAPI:
         "/v1/bundles/{name}/versions/{version}/scores",
         response_model=ScoreResponse,
         tags=["scoring"],
-        responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 503)},
+        responses={200: _ok_example("score_response"), **_problem_responses(401, 403, 404, 413, 422, 500, 503)},
     )
     def score_version(
         name: NameParam, version: VersionParam, body: ScoreBody, registry: RegistryDep, _: ScoreScope
@@ -545,7 +599,7 @@ def create_app(settings: Settings) -> FastAPI:
         "/v1/bundles",
         response_model=BundleList,
         tags=["bundles"],
-        responses={200: _ok_example("bundles"), **_problem_responses(401, 403)},
+        responses={200: _ok_example("bundles"), **_problem_responses(401, 403, 500, 503)},
     )
     def list_bundles(registry: RegistryDep, _: ReadScope) -> BundleList:
         listing = registry.listing()
@@ -555,38 +609,21 @@ def create_app(settings: Settings) -> FastAPI:
         "/v1/bundles/{name}/versions",
         response_model=BundleSummary,
         tags=["bundles"],
-        responses={200: _ok_example("versions"), **_problem_responses(401, 403, 404, 503)},
+        responses={200: _ok_example("versions"), **_problem_responses(401, 403, 404, 422, 500, 503)},
     )
     def list_versions(name: NameParam, registry: RegistryDep, _: ReadScope) -> BundleSummary:
-        try:
-            versions, aliases = registry.versions(name)
-        except BundleNotFound as exc:
-            raise BundleNotFoundProblem(str(exc)) from exc
-        except StoreUnavailable as exc:
-            raise StoreUnavailableProblem(str(exc)) from exc
+        versions, aliases = registry.versions(name)
         return BundleSummary(name=name, versions=versions, aliases=aliases)
 
     @app.get(
         "/v1/bundles/{name}/versions/{version}",
         response_model=Bundle,
         tags=["bundles"],
-        responses={**_problem_responses(401, 403, 404, 503)},
+        responses={**_problem_responses(401, 403, 404, 422, 500, 503)},
     )
     def get_version(name: NameParam, version: VersionParam, registry: RegistryDep, _: ReadScope) -> Bundle:
         """The whole verified bundle: groups, items, policy per item and group with evidence, anchors, quality."""
         return resolve(registry, name, version).bundle
-
-    def publish_guard(fn: Callable[[], Any]) -> Any:
-        try:
-            return fn()
-        except VersionConflict as exc:
-            raise VersionConflictProblem(str(exc)) from exc
-        except StoreUnavailable as exc:
-            raise StoreUnavailableProblem(f"{exc}; publishing needs the shared store") from exc
-        except (BundleIntegrityError, InvalidReference) as exc:
-            raise InvalidBundle(str(exc)) from exc
-        except BundleNotFound as exc:
-            raise BundleNotFoundProblem(str(exc)) from exc
 
     @app.put(
         "/v1/bundles/{name}/versions/{version}",
@@ -595,7 +632,7 @@ def create_app(settings: Settings) -> FastAPI:
         tags=["bundles"],
         responses={
             200: {"model": PublishResult, "description": "identical content was already published"},
-            **_problem_responses(401, 403, 409, 413, 422, 503),
+            **_problem_responses(401, 403, 409, 413, 422, 500, 503),
         },
     )
     def put_version(
@@ -607,7 +644,7 @@ def create_app(settings: Settings) -> FastAPI:
                 f"the document is {bundle.name}@{bundle.version} but the path names {name}@{version}",
                 field="body.version" if bundle.name == name else "body.name",
             )
-        stored, created = publish_guard(lambda: registry.put_version(bundle))
+        stored, created = registry.put_version(bundle)
         result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
         return result if created else JSONResponse(result.model_dump(), status_code=200)
 
@@ -623,7 +660,7 @@ def create_app(settings: Settings) -> FastAPI:
                 "but for version, time and hash) is already "
                 "published: nothing changed",
             },
-            **_problem_responses(401, 403, 413, 422, 503),
+            **_problem_responses(401, 403, 413, 422, 500, 503),
         },
     )
     def publish_next(name: NameParam, bundle: Bundle, registry: RegistryDep, _: PublishScope) -> Any:
@@ -633,7 +670,7 @@ def create_app(settings: Settings) -> FastAPI:
         """
         if bundle.name != name:
             raise InvalidBundle(f"the document is named {bundle.name!r} but the path names {name!r}", field="body.name")
-        stored, created = publish_guard(lambda: registry.publish(bundle))
+        stored, created = registry.publish(bundle)
         result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
         return result if created else JSONResponse(result.model_dump(), status_code=200)
 
@@ -641,13 +678,13 @@ def create_app(settings: Settings) -> FastAPI:
         "/v1/bundles/{name}/aliases/{alias}",
         response_model=AliasResult,
         tags=["bundles"],
-        responses={200: _ok_example("alias_response"), **_problem_responses(401, 403, 404, 422, 503)},
+        responses={200: _ok_example("alias_response"), **_problem_responses(401, 403, 404, 422, 500, 503)},
     )
     def move_alias(
         name: NameParam, alias: AliasParam, body: AliasRequest, registry: RegistryDep, _: PublishScope
     ) -> AliasResult:
         """Point an alias (e.g. ``production``) at a published version; move it back the same way."""
-        version = publish_guard(lambda: registry.set_alias(name, alias, body.version))
+        version = registry.set_alias(name, alias, body.version)
         return AliasResult(name=name, alias=alias, version=version)
 
     return app
@@ -659,39 +696,68 @@ def app_from_env() -> FastAPI:
 
 
 def serve(argv: list[str] | None = None) -> int:
-    """``python -m service.main --store ... [--redis-url ...] [--host --port --workers]``."""
+    """``python -m service.main [--store ...] [--redis-url ...] [--host --port --workers ...]``.
+
+    What ``equitheta serve`` runs. The access log stays off (uvicorn's would print query strings,
+    which may carry keys); each request is logged by the service itself without keys or bodies.
+    """
     import argparse
     import os
+    import shutil
+    import tempfile
 
     import uvicorn
     from pydantic import ValidationError
 
     parser = argparse.ArgumentParser(prog="equitheta serve")
-    parser.add_argument("--store", required=True, help="bundle directory (or a redis:// URL)")
+    parser.add_argument("--store", help="bundle directory (or a redis:// URL); default: EQUITHETA_STORE")
     parser.add_argument("--redis-url", help="shared Redis store; overrides --store for bundles")
-    parser.add_argument("--host", default="127.0.0.1")
-    parser.add_argument("--port", type=int, default=8000)
-    parser.add_argument("--workers", type=int, default=1)
+    parser.add_argument("--host", help="address to bind; default: EQUITHETA_HOST or 127.0.0.1")
+    parser.add_argument("--port", type=int, help="port; default: EQUITHETA_PORT or 8000")
+    parser.add_argument("--workers", type=int, help="worker processes; default: EQUITHETA_WORKERS or 1")
+    parser.add_argument(
+        "--worker-healthcheck-timeout",
+        type=float,
+        help="seconds before a worker that does not answer its health check is restarted; "
+        "default: EQUITHETA_WORKER_HEALTHCHECK_TIMEOUT or 60",
+    )
     args = parser.parse_args(argv)
-    os.environ["EQUITHETA_STORE"] = args.redis_url or args.store
-    os.environ["EQUITHETA_HOST"] = args.host
+    overrides = {
+        "store": args.redis_url or args.store,
+        "host": args.host,
+        "port": args.port,
+        "workers": args.workers,
+        "worker_healthcheck_timeout": args.worker_healthcheck_timeout,
+    }
+    for key, value in overrides.items():
+        if value is not None:
+            os.environ[f"EQUITHETA_{key.upper()}"] = str(value)  # the workers read the same settings
     try:
-        settings = Settings(port=args.port, workers=args.workers)
+        settings = Settings()
     except ValidationError as exc:
         for error in exc.errors():
             print(f"configuration error: {error['msg']}", file=sys.stderr)
         return 2
     if not settings.has_keys:
         print(f"no API keys configured: open access, bound to loopback only ({settings.host})", file=sys.stderr)
-    uvicorn.run(
-        "service.main:app_from_env",
-        factory=True,
-        host=settings.host,
-        port=settings.port,
-        workers=settings.workers,
-        log_level=settings.log_level,
-        access_log=False,
-    )
+    metrics_dir = None
+    if settings.workers > 1 and not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        metrics_dir = tempfile.mkdtemp(prefix="equitheta-metrics-")
+        os.environ["PROMETHEUS_MULTIPROC_DIR"] = metrics_dir  # every worker counts into the same files
+    try:
+        uvicorn.run(
+            "service.main:app_from_env",
+            factory=True,
+            host=settings.host,
+            port=settings.port,
+            workers=settings.workers,
+            log_level=settings.log_level,
+            access_log=False,
+            timeout_worker_healthcheck=settings.worker_healthcheck_timeout,
+        )
+    finally:
+        if metrics_dir is not None:
+            shutil.rmtree(metrics_dir, ignore_errors=True)
     return 0
 
 

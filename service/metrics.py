@@ -1,82 +1,78 @@
-"""Prometheus text-format metrics (a small thread-safe registry of our own)."""
+"""Prometheus metrics through the Prometheus client library, correct across uvicorn workers.
+
+With several workers each one is its own process; when ``PROMETHEUS_MULTIPROC_DIR`` is
+set (``equitheta serve`` sets it to a fresh directory whenever it starts more than one
+worker) every worker writes its counts there and a scrape, whichever worker answers it,
+sums all of them. With one process the metrics live in the app's own registry.
+"""
 
 from __future__ import annotations
 
-import threading
-from collections import defaultdict
+import os
+
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
+from prometheus_client import multiprocess as prometheus_multiprocess
 
 BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0)
+CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
 
 
-def _labels(pairs: tuple[tuple[str, str], ...]) -> str:
-    if not pairs:
-        return ""
-    escaped = (f'{k}="{v.replace(chr(92), chr(92) * 2).replace(chr(34), chr(92) + chr(34))}"' for k, v in pairs)
-    return "{" + ",".join(escaped) + "}"
+def multiprocess_mode() -> bool:
+    return bool(os.environ.get("PROMETHEUS_MULTIPROC_DIR"))
 
 
 class Metrics:
+    """The service's counters, histogram and gauges."""
+
     def __init__(self) -> None:
-        self._lock = threading.Lock()
-        self.requests: dict[tuple[tuple[str, str], ...], float] = defaultdict(float)
-        self.vectors: dict[tuple[tuple[str, str], ...], float] = defaultdict(float)
-        self.latency_buckets: dict[str, list[float]] = defaultdict(lambda: [0.0] * len(BUCKETS))
-        self.latency_sum: dict[str, float] = defaultdict(float)
-        self.latency_count: dict[str, float] = defaultdict(float)
-        self.gauges: dict[str, float] = {}
+        shared = multiprocess_mode()
+        # In multiprocess mode the values go to files; the objects need no registry of their own.
+        registry = None if shared else CollectorRegistry()
+        self._registry = registry
+        self.requests = Counter(
+            "equitheta_requests",
+            "HTTP requests by route, method and status.",
+            ["route", "method", "status"],
+            registry=registry,
+        )
+        self.latency = Histogram(
+            "equitheta_request_duration_seconds",
+            "Request latency by route.",
+            ["route"],
+            buckets=BUCKETS,
+            registry=registry,
+        )
+        self.vectors = Counter(
+            "equitheta_vectors_scored", "Response vectors scored, by bundle.", ["bundle"], registry=registry
+        )
+        gauge_mode = {"multiprocess_mode": "max"} if shared else {}
+        self.bundles_loaded = Gauge(
+            "equitheta_bundles_loaded",
+            "Bundle versions held by a worker (the largest over workers).",
+            registry=registry,
+            **gauge_mode,
+        )
+        self.store_up = Gauge(
+            "equitheta_store_up",
+            "1 when the bundle store answers (the largest over workers).",
+            registry=registry,
+            **gauge_mode,
+        )
 
     def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
-        with self._lock:
-            self.requests[(("route", route), ("method", method), ("status", str(status)))] += 1
-            buckets = self.latency_buckets[route]
-            for i, bound in enumerate(BUCKETS):
-                if seconds <= bound:
-                    buckets[i] += 1
-            self.latency_sum[route] += seconds
-            self.latency_count[route] += 1
+        self.requests.labels(route, method, str(status)).inc()
+        self.latency.labels(route).observe(seconds)
 
     def count_vectors(self, bundle: str, n: int) -> None:
-        with self._lock:
-            self.vectors[(("bundle", bundle),)] += n
+        self.vectors.labels(bundle).inc(n)
 
-    def set_gauge(self, name: str, value: float) -> None:
-        with self._lock:
-            self.gauges[name] = value
+    def set_state(self, *, bundles_loaded: int, store_up: bool) -> None:
+        self.bundles_loaded.set(bundles_loaded)
+        self.store_up.set(1.0 if store_up else 0.0)
 
-    def render(self) -> str:
-        lines = [
-            "# HELP equitheta_requests_total HTTP requests by route, method and status.",
-            "# TYPE equitheta_requests_total counter",
-        ]
-        with self._lock:
-            lines += [f"equitheta_requests_total{_labels(k)} {v:g}" for k, v in sorted(self.requests.items())]
-            lines += [
-                "# HELP equitheta_request_duration_seconds Request latency by route.",
-                "# TYPE equitheta_request_duration_seconds histogram",
-            ]
-            for route in sorted(self.latency_count):
-                for bound, count in zip(BUCKETS, self.latency_buckets[route], strict=True):
-                    lines.append(
-                        f"equitheta_request_duration_seconds_bucket"
-                        f"{_labels((('route', route), ('le', f'{bound:g}')))} {count:g}"
-                    )
-                lines.append(
-                    f"equitheta_request_duration_seconds_bucket{_labels((('route', route), ('le', '+Inf')))} "
-                    f"{self.latency_count[route]:g}"
-                )
-                lines.append(
-                    f"equitheta_request_duration_seconds_sum{_labels((('route', route),))} "
-                    f"{self.latency_sum[route]:.6f}"
-                )
-                lines.append(
-                    f"equitheta_request_duration_seconds_count{_labels((('route', route),))} "
-                    f"{self.latency_count[route]:g}"
-                )
-            lines += [
-                "# HELP equitheta_vectors_scored_total Response vectors scored, by bundle.",
-                "# TYPE equitheta_vectors_scored_total counter",
-            ]
-            lines += [f"equitheta_vectors_scored_total{_labels(k)} {v:g}" for k, v in sorted(self.vectors.items())]
-            for name, value in sorted(self.gauges.items()):
-                lines += [f"# TYPE {name} gauge", f"{name} {value:g}"]
-        return "\n".join(lines) + "\n"
+    def render(self) -> bytes:
+        if self._registry is not None:
+            return generate_latest(self._registry)
+        registry = CollectorRegistry()
+        prometheus_multiprocess.MultiProcessCollector(registry)
+        return generate_latest(registry)

@@ -1,34 +1,41 @@
 """The replica's view of the bundle store: verified bundles and scorers, built once per version.
 
-Versions never change, so a loaded version is cached for good. Aliases and version
-lists are read from the store on each unpinned request and remembered; when the
-store is unreachable the replica keeps scoring from what it remembers and reports
-itself degraded. With a Redis store a listener thread follows the publish channel
-and loads new versions and alias moves as they happen, so every replica is warm.
+Versions never change, so a loaded version is cached for good, and a version found
+damaged is remembered as damaged (it is not re-read and re-hashed on every request).
+Aliases and version lists are read from the store on unpinned requests and remembered.
+
+Faults. A probe thread pings the store in the background. After a failure the replica
+stops asking the store on the request path: it serves the aliases and versions it
+remembers and answers writes with 503 at once, while the probe retries with back-off
+(``RETRY_FIRST`` doubling to ``RETRY_MAX`` seconds) and clears the fault when the store
+answers. A pinned version that is cached never touches the store at all.
+
+A store that comes back empty (a Redis restarted without persistence) is re-seeded:
+bundles are content-hashed and verified, so the replica writes back every version it
+holds and its remembered aliases (``put_version`` is idempotent, so several replicas
+doing it at once is harmless). A bundle deleted from the shared store by hand therefore
+comes back while a replica still holds it; retire a version by moving its alias instead.
 """
 
 from __future__ import annotations
 
-import json
 import logging
 import threading
-import time
 from dataclasses import dataclass, field
+from typing import Any
 
-from calibration.bundle import Bundle, BundleNotFound, BundleStore, DirectoryStore
-from calibration.bundle.canonical import BundleError, BundleIntegrityError
+from calibration.bundle import Bundle, BundleNotFound, BundleStore
 from calibration.bundle.scorer import BundleScorer
 from calibration.bundle.store import DEFAULT_ALIAS, find_identical
+from calibration.errors import BundleError, BundleIntegrityError, StoreUnavailable
 
 log = logging.getLogger("equitheta.service")
 
-try:  # the Redis store is optional
-    from calibration.bundle.redis_store import RedisStore, StoreUnavailable
-except ImportError:  # pragma: no cover - redis is a service dependency
-    RedisStore = None  # type: ignore[assignment,misc]
-
-    class StoreUnavailable(BundleError):  # type: ignore[no-redef]
-        pass
+# Background probe: every PROBE_INTERVAL seconds while healthy; after a failure first after
+# RETRY_FIRST seconds, doubling up to RETRY_MAX.
+PROBE_INTERVAL = 1.0
+RETRY_FIRST = 0.5
+RETRY_MAX = 10.0
 
 
 @dataclass
@@ -47,38 +54,50 @@ class BundleRegistry:
     def __init__(self, store: BundleStore) -> None:
         self.store = store
         self._loaded: dict[tuple[str, int], LoadedBundle] = {}
+        self._damaged: dict[tuple[str, int], str] = {}
         self._view = StoreView()
         self._lock = threading.Lock()
         self.degraded_reason: str | None = None
+        self._retry_delay = RETRY_FIRST
         self._stop = threading.Event()
-        self._listener: threading.Thread | None = None
+        self._threads: list[threading.Thread] = []
+        self.skipped_store_calls = 0  # requests answered from memory while the store was down
+        self.reseeded: list[str] = []  # name@version written back to a store that had lost them
 
     # -- state --------------------------------------------------------------------------------------
     @property
     def loaded_count(self) -> int:
         return len(self._loaded)
 
+    @property
+    def damaged(self) -> list[str]:
+        return sorted(f"{n}@{v}" for n, v in self._damaged)
+
+    @property
+    def store_up(self) -> bool:
+        return self.degraded_reason is None
+
     def _mark(self, error: Exception | None) -> None:
         if error is None:
             if self.degraded_reason is not None:
                 log.info("bundle store reachable again")
             self.degraded_reason = None
+            self._retry_delay = RETRY_FIRST
         else:
             if self.degraded_reason is None:
                 log.warning("bundle store unreachable; serving cached bundles: %s", error)
             self.degraded_reason = str(error)
 
-    def reachable(self) -> bool:
-        """Probe the store now (used by /readyz)."""
-        if isinstance(self.store, DirectoryStore):
-            ok = self.store.root.is_dir()
-            self._mark(None if ok else StoreUnavailable(f"bundle directory {self.store.root} does not exist"))
-            return ok
-        if RedisStore is not None and isinstance(self.store, RedisStore):
-            ok = self.store.ping()
-            self._mark(None if ok else StoreUnavailable(f"Redis at {self.store.url} does not answer"))
-            return ok
-        return True
+    def _store(self, call: Any, *args: Any) -> Any:
+        """One store call on the request path; none at all while the store is known to be down."""
+        if self.degraded_reason is not None:
+            self.skipped_store_calls += 1
+            raise StoreUnavailable(self.degraded_reason)
+        try:
+            return call(*args)
+        except StoreUnavailable as exc:
+            self._mark(exc)
+            raise
 
     # -- loading ------------------------------------------------------------------------------------
     def _load(self, name: str, version: int) -> LoadedBundle:
@@ -86,50 +105,68 @@ class BundleRegistry:
         cached = self._loaded.get(key)
         if cached is not None:
             return cached
-        bundle = self.store.get(name, version)
+        if key in self._damaged:
+            raise BundleIntegrityError(self._damaged[key])
+        try:
+            bundle = self._store(self.store.get, name, version)
+        except BundleIntegrityError as exc:
+            self._damaged[key] = str(exc)
+            log.error("refusing damaged bundle %s@%s: %s (%s)", name, version, exc, exc.location)
+            raise
         loaded = LoadedBundle(bundle, BundleScorer(bundle))
         with self._lock:
             self._loaded.setdefault(key, loaded)
         return self._loaded[key]
 
     def preload(self) -> None:
-        """Load every version of every bundle (start-up)."""
+        """Load every version of every bundle (start-up, and after the change feed reconnects)."""
         try:
-            for name in self.store.names():
+            names = set(self.store.names()) | {n for n, _ in self._loaded}
+            for name in sorted(names):
                 self._refresh_view(name)
                 for version in self._view.versions.get(name, []):
                     try:
                         self._load(name, version)
-                    except BundleIntegrityError as exc:
-                        log.error("refusing damaged bundle %s@%s: %s", name, version, exc)
+                    except BundleIntegrityError:
+                        pass  # remembered and logged by _load
             self._mark(None)
         except StoreUnavailable as exc:
             self._mark(exc)
 
     def _refresh_view(self, name: str) -> None:
         versions = self.store.versions(name)
+        held = sorted(v for n, v in self._loaded if n == name)
+        if any(v not in versions for v in held):
+            versions = self._reseed(name, versions, held)
         aliases = {a: r.version for a, r in self.store.aliases(name).items()}
+        remembered = self._view.aliases.get(name, {})
+        lost = {a: v for a, v in remembered.items() if a not in aliases and v in versions}
+        for alias, version in lost.items():
+            aliases[alias] = self.store.set_alias(name, alias, version).version
+        if lost:
+            log.warning("the bundle store had lost aliases of %s; re-seeded %s", name, lost)
         with self._lock:
             self._view.versions[name] = versions
             self._view.aliases[name] = aliases
 
+    def _reseed(self, name: str, versions: list[int], held: list[int]) -> list[int]:
+        """Write back the verified versions the store no longer has (it restarted empty)."""
+        missing = [v for v in held if v not in versions]
+        for version in missing:
+            self.store.put_version(self._loaded[(name, version)].bundle)
+            self.reseeded.append(f"{name}@{version}")
+        log.warning("the bundle store had lost %s versions %s; re-seeded them from verified copies", name, missing)
+        return sorted(set(versions) | set(missing))
+
     # -- resolution ---------------------------------------------------------------------------------
     def get(self, name: str, version: int) -> LoadedBundle:
-        try:
-            loaded = self._load(name, version)
-            self._mark(None)
-            return loaded
-        except StoreUnavailable as exc:
-            self._mark(exc)
-            raise
+        return self._load(name, version)
 
     def _refresh_or_remembered(self, name: str) -> None:
         """Re-read a name's versions and aliases; when the store is down keep what was seen before."""
         try:
-            self._refresh_view(name)
-            self._mark(None)
-        except StoreUnavailable as exc:
-            self._mark(exc)
+            self._store(self._refresh_view, name)
+        except StoreUnavailable:
             if name not in self._view.versions:
                 raise
 
@@ -146,12 +183,10 @@ class BundleRegistry:
 
     def listing(self) -> dict[str, tuple[list[int], dict[str, int]]]:
         try:
-            names = self.store.names()
+            names = self._store(self.store.names)
             for name in names:
-                self._refresh_view(name)
-            self._mark(None)
-        except StoreUnavailable as exc:
-            self._mark(exc)
+                self._store(self._refresh_view, name)
+        except StoreUnavailable:
             names = sorted(self._view.versions)
         return {n: (self._view.versions.get(n, []), self._view.aliases.get(n, {})) for n in names}
 
@@ -164,67 +199,72 @@ class BundleRegistry:
 
     # -- writing ------------------------------------------------------------------------------------
     def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]:
-        """Publish at the bundle's version; returns (stored bundle, created?).
-
-        The store decides: same content again returns the stored bundle, other content raises
-        VersionConflict. Whether the version existed before is read from the version list.
-        """
-        existed = bundle.version in self.store.versions(bundle.name)
-        stored = self.store.put_version(bundle)
-        if not existed:
-            self._refresh_view(bundle.name)
-        return stored, not existed
+        """Publish at the bundle's version; returns (stored bundle, created?) from the atomic write."""
+        stored, created = self._store(self.store.put_version, bundle)
+        if created:
+            self._store(self._refresh_view, bundle.name)
+        return stored, created
 
     def publish(self, bundle: Bundle) -> tuple[Bundle, bool]:
         """Publish as the next version, unless an identical calibration is already published.
 
         Returns (stored bundle, created?); the rule is the CLI's (:func:`find_identical`).
         """
-        identical = find_identical(self.store, bundle)
+        identical = self._store(find_identical, self.store, bundle)
         if identical is not None:
             return identical, False
-        stored = self.store.publish(bundle)
-        self._refresh_view(bundle.name)
+        stored = self._store(self.store.publish, bundle)
+        self._store(self._refresh_view, bundle.name)
         return stored, True
 
     def set_alias(self, name: str, alias: str, version: int) -> int:
-        record = self.store.set_alias(name, alias, version)
-        self._refresh_view(name)
-        return record.version
+        record = self._store(self.store.set_alias, name, alias, version)
+        self._store(self._refresh_view, name)
+        return int(record.version)
 
-    # -- change feed (Redis) ------------------------------------------------------------------------
-    def start_listener(self) -> None:
-        if RedisStore is None or not isinstance(self.store, RedisStore):
-            return
-        self._listener = threading.Thread(target=self._listen, name="equitheta-bundle-events", daemon=True)
-        self._listener.start()
+    # -- background: probe and change feed ----------------------------------------------------------
+    def start(self) -> None:
+        """Start the probe and, where the store has one, the change-feed listener."""
+        for target, label in ((self._probe, "probe"), (self._listen, "events")):
+            thread = threading.Thread(target=target, name=f"equitheta-bundle-{label}", daemon=True)
+            thread.start()
+            self._threads.append(thread)
 
     def stop(self) -> None:
         self._stop.set()
 
+    def _probe(self) -> None:
+        while not self._stop.is_set():
+            if self.store.ping():
+                if self.degraded_reason is not None:
+                    self._mark(None)
+                    self.preload()  # catch up, and re-seed a store that came back empty
+                delay = PROBE_INTERVAL
+            else:
+                self._mark(StoreUnavailable(f"the bundle store does not answer ({self.store!r})"))
+                delay, self._retry_delay = self._retry_delay, min(self._retry_delay * 2, RETRY_MAX)
+            self._stop.wait(delay)
+
     def _listen(self) -> None:
-        assert RedisStore is not None and isinstance(self.store, RedisStore)
         while not self._stop.is_set():
             try:
-                pubsub = self.store.client.pubsub(ignore_subscribe_messages=True)
-                pubsub.subscribe(self.store.channel)
-                self.preload()  # catch up on anything missed while disconnected
-                while not self._stop.is_set():
-                    message = pubsub.get_message(timeout=0.5)
-                    if message is not None:
-                        self._on_event(message["data"])
-                pubsub.close()
-            except Exception as exc:  # connection lost: mark degraded, retry
-                self._mark(StoreUnavailable(str(exc)))
-                time.sleep(0.5)
+                for event in self.store.events(self._stop):
+                    if event is None:  # (re)subscribed: catch up on anything missed while disconnected
+                        self.preload()
+                    else:
+                        self._on_event(event)
+                return  # a store without a change feed
+            except StoreUnavailable as exc:
+                self._mark(exc)
+                self._stop.wait(RETRY_FIRST)
 
-    def _on_event(self, data: bytes) -> None:
+    def _on_event(self, event: dict[str, Any]) -> None:
         try:
-            event = json.loads(data)
             name = event["name"]
             self._refresh_view(name)
             if event.get("kind") == "version":
                 self._load(name, int(event["version"]))
-            self._mark(None)
+        except StoreUnavailable as exc:
+            self._mark(exc)
         except (BundleError, ValueError, KeyError) as exc:
-            log.warning("could not apply bundle event %r: %s", data, exc)
+            log.warning("could not apply bundle event %r: %s", event, exc)

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, StrictInt
 
 CAUTION = (
     "Every score has measurement error: report the SE with it. Scores from few answered items or with low "
@@ -12,6 +12,10 @@ CAUTION = (
     "from a statistical DIF screen that content experts must review; follow the professional testing standards "
     "and the local rules that govern the assessment."
 )
+
+
+# Largest answer code the schema accepts: far above any item's categories, far below any integer overflow.
+MAX_ANSWER_CODE = 999
 
 
 class _Strict(BaseModel):
@@ -28,7 +32,10 @@ class ScoreOptions(_Strict):
 class ResponseVector(_Strict):
     id: str = Field(min_length=1, max_length=200, description="the respondent's id, echoed back")
     group: str | None = Field(None, max_length=200, description="required when the bundle has several groups")
-    answers: dict[str, int] = Field(description="item id -> category code (0 .. K-1); omit items not administered")
+    answers: dict[str, Annotated[StrictInt, Field(ge=0, le=MAX_ANSWER_CODE)]] = Field(
+        description="item id -> category code, a whole number 0 .. K-1 (strict: no strings, booleans or "
+        "decimals); omit items not administered"
+    )
 
 
 class ScoreRequest(_Strict):
@@ -108,6 +115,9 @@ class Readiness(_Strict):
     store: str
     bundles_loaded: int
     detail: str | None = None
+    damaged_versions: list[str] = Field(
+        default_factory=list, description="stored versions that failed verification (name@version)"
+    )
 
 
 class Problem(BaseModel):

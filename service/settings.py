@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import ipaddress
 from pathlib import Path
+from typing import Literal
 
 from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
@@ -14,17 +15,29 @@ class Settings(BaseSettings):
 
     model_config = SettingsConfigDict(env_prefix="EQUITHETA_", extra="forbid")
 
-    store: str = Field("bundles", description="bundle directory, or redis:// URL of the shared store")
+    # repr=False: a redis:// URL may carry a password, and settings get printed in tracebacks.
+    store: str = Field("bundles", description="bundle directory, or redis:// URL of the shared store", repr=False)
     redis_prefix: str = Field("equitheta", description="key prefix in Redis (one per deployment)")
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=1, le=65535)
     workers: int = Field(1, ge=1, le=64)
     api_keys_file: Path | None = Field(None, description="file of API keys (name, scopes, SHA-256 of the key)")
-    api_keys: str = Field("", description="inline keys: 'name:scope+scope:sha256hex' separated by ';'")
+    api_keys: str = Field("", description="inline keys: 'name:scope+scope:sha256hex' separated by ';'", repr=False)
     max_body_bytes: int = Field(4 * 1024 * 1024, ge=1024)
     max_vectors: int = Field(10_000, ge=1)
     preload: bool = Field(True, description="load every bundle at start-up")
     log_level: str = "info"
+    metrics_scope: Literal["read", "score", "publish"] | None = Field(
+        None, description="scope a key needs for /metrics (default: open, like /healthz and /readyz)"
+    )
+    docs: bool = Field(True, description="serve /docs, /redoc and /openapi.json")
+    worker_healthcheck_timeout: float = Field(
+        60.0,
+        gt=0,
+        le=3600,
+        description="seconds a uvicorn worker may take to answer its parent's health check before it is "
+        "restarted (uvicorn's own default, 5 s, restarts busy workers on saturated CPUs)",
+    )
 
     @field_validator("store")
     @classmethod

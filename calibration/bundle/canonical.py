@@ -15,14 +15,9 @@ from typing import Any
 from pydantic import ValidationError
 
 from calibration.bundle.schema import READABLE_SCHEMA_VERSIONS, Bundle, upgrade_document
+from calibration.errors import BundleError, BundleIntegrityError
 
-
-class BundleError(Exception):
-    """Base class of bundle and store errors."""
-
-
-class BundleIntegrityError(BundleError):
-    """A bundle file is damaged, truncated, tampered with or not a bundle."""
+__all__ = ["BundleError", "BundleIntegrityError", "canonical_bytes", "content_hash", "from_bytes", "seal", "to_bytes"]
 
 
 def canonical_bytes(document: dict[str, Any]) -> bytes:
@@ -50,41 +45,50 @@ def to_bytes(bundle: Bundle) -> bytes:
     return canonical_bytes(bundle.model_dump(mode="json"))
 
 
-def from_bytes(data: bytes, *, source: str) -> Bundle:
+def from_bytes(data: bytes, *, source: str, location: str | None = None) -> Bundle:
     """Parse, verify the hash and validate; any failure is a :class:`BundleIntegrityError`."""
     try:
         document = json.loads(data.decode("utf-8"))
     except UnicodeDecodeError as exc:
-        raise BundleIntegrityError(f"{source}: not UTF-8 text ({exc.reason} at byte {exc.start})") from exc
+        raise BundleIntegrityError(
+            f"{source}: not UTF-8 text ({exc.reason} at byte {exc.start})", location=location
+        ) from exc
     except json.JSONDecodeError as exc:
         raise BundleIntegrityError(
             f"{source}: not valid JSON at line {exc.lineno} column {exc.colno} "
-            f"(the file is {len(data)} bytes; truncated or damaged?)"
+            f"(the file is {len(data)} bytes; truncated or damaged?)",
+            location=location,
         ) from exc
-    return from_document(document, source=source)
+    return from_document(document, source=source, location=location)
 
 
-def from_document(document: Any, *, source: str) -> Bundle:
+def from_document(document: Any, *, source: str, location: str | None = None) -> Bundle:
     """Verify and validate an already-parsed bundle document."""
     if not isinstance(document, dict):
-        raise BundleIntegrityError(f"{source}: a bundle is a JSON object, got {type(document).__name__}")
+        raise BundleIntegrityError(
+            f"{source}: a bundle is a JSON object, got {type(document).__name__}", location=location
+        )
     stated = document.get("hash")
     if not isinstance(stated, str) or not stated:
-        raise BundleIntegrityError(f"{source}: the bundle has no hash; it was never published")
+        raise BundleIntegrityError(f"{source}: the bundle has no hash; it was never published", location=location)
     try:
         actual = content_hash(document)
     except (TypeError, ValueError) as exc:
-        raise BundleIntegrityError(f"{source}: content cannot be put in canonical form: {exc}") from exc
+        raise BundleIntegrityError(
+            f"{source}: content cannot be put in canonical form: {exc}", location=location
+        ) from exc
     if actual != stated:
         raise BundleIntegrityError(
             f"{source}: content hash mismatch (stated {stated[:12]}..., computed {actual[:12]}...); "
-            "the file was changed after publication and is refused"
+            "the file was changed after publication and is refused",
+            location=location,
         )
     version = document.get("schema_version")
     if version not in READABLE_SCHEMA_VERSIONS:
         raise BundleIntegrityError(
             f"{source}: bundle schema version {version!r} is not one this software reads "
-            f"({', '.join(READABLE_SCHEMA_VERSIONS)}); upgrade equitheta"
+            f"({', '.join(READABLE_SCHEMA_VERSIONS)}); upgrade equitheta",
+            location=location,
         )
     try:
         return Bundle.model_validate(upgrade_document(document))
@@ -92,5 +96,6 @@ def from_document(document: Any, *, source: str) -> Bundle:
         first = exc.errors()[0]
         where = ".".join(str(p) for p in first["loc"])
         raise BundleIntegrityError(
-            f"{source}: not a valid bundle: {where}: {first['msg']} ({exc.error_count()} problem(s))"
+            f"{source}: not a valid bundle: {where}: {first['msg']} ({exc.error_count()} problem(s))",
+            location=location,
         ) from exc

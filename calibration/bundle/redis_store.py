@@ -2,32 +2,64 @@
 
 Keys (``P`` is the key prefix, default ``equitheta``)::
 
-    P:bundle:NAME:VERSION        canonical bundle bytes (written once with SET NX)
+    P:bundle:NAME:VERSION        canonical bundle bytes (written once)
     P:versions:NAME              sorted set of published versions
     P:names                      set of bundle names
-    P:next:NAME                  counter for the next version number
     P:aliases:NAME               hash alias -> version
     P:alias-history:NAME:ALIAS   list of "version|time" moves, oldest first
     P:events                     pub/sub channel: {"kind": "version"|"alias", "name": ..., ...}
 
-A version is one ``SET NX`` of the whole document: it is never half-visible and
-of two concurrent writers of one version exactly one succeeds. Connection
-failures surface as :class:`StoreUnavailable`.
+A version is written by one Lua script that sets the document (if the key is free),
+indexes it and announces it: the steps cannot be separated by a dropped connection,
+the version is never half-visible, and of concurrent writers of one version exactly
+one is told it created it. The next version number is one more than the highest
+indexed one, chosen again when another writer took it, so no number is skipped.
+Connection failures surface as :class:`StoreUnavailable`; messages and ``repr`` show
+the URL without its credentials.
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
+import threading
+from collections.abc import Iterator
 from datetime import UTC, datetime
 from typing import Any
 
 import redis
 
-from calibration.bundle.canonical import BundleError, BundleIntegrityError, from_bytes, seal, to_bytes
+from calibration.bundle.canonical import from_bytes, seal, to_bytes
 from calibration.bundle.schema import Bundle, valid_alias, valid_name
-from calibration.bundle.store import AliasRecord, BundleNotFound, InvalidReference, VersionConflict
+from calibration.bundle.store import AliasRecord, check_placed_version, same_or_conflict
+from calibration.errors import (
+    BundleError,
+    BundleIntegrityError,
+    BundleNotFound,
+    InvalidReference,
+    StoreUnavailable,
+    redact_url,
+)
 
 EVENTS = "events"
+# Health probes use their own connection with a short timeout, so a stalled server is noticed quickly.
+PING_TIMEOUT = 0.5
+
+# Write one version atomically. KEYS = document, versions zset, names set;
+# ARGV = document bytes, version, name, event, channel. Returns 1 when this call created it;
+# 0 when the key existed (it is then indexed, which also repairs a write that an older
+# two-step writer left unindexed).
+_WRITE_VERSION = """
+local created = 0
+if redis.call('EXISTS', KEYS[1]) == 0 then
+  redis.call('SET', KEYS[1], ARGV[1])
+  created = 1
+end
+redis.call('ZADD', KEYS[2], ARGV[2], ARGV[2])
+redis.call('SADD', KEYS[3], ARGV[3])
+if created == 1 then redis.call('PUBLISH', ARGV[5], ARGV[4]) end
+return created
+"""
 
 # Atomic alias move with history: KEYS = aliases hash, history list; ARGV = alias, version, time.
 _SET_ALIAS = """
@@ -47,10 +79,6 @@ return tonumber(version)
 """
 
 
-class StoreUnavailable(BundleError):
-    """The shared store cannot be reached (reads may still be served from a cache)."""
-
-
 def _now() -> str:
     return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
@@ -62,11 +90,13 @@ class RedisStore:
         self.url = url
         self.prefix = prefix
         self.client = redis.Redis.from_url(url, socket_timeout=timeout, socket_connect_timeout=timeout)
+        self._health = redis.Redis.from_url(url, socket_timeout=PING_TIMEOUT, socket_connect_timeout=PING_TIMEOUT)
+        self._write_version = self.client.register_script(_WRITE_VERSION)
         self._set_alias = self.client.register_script(_SET_ALIAS)
         self._alias_back = self.client.register_script(_ALIAS_BACK)
 
     def __repr__(self) -> str:
-        return f"RedisStore({self.url!r}, prefix={self.prefix!r})"
+        return f"RedisStore({redact_url(self.url)!r}, prefix={self.prefix!r})"
 
     def key(self, *parts: str | int) -> str:
         return ":".join([self.prefix, *map(str, parts)])
@@ -79,13 +109,38 @@ class RedisStore:
         try:
             return fn(*args, **kwargs)
         except (redis.ConnectionError, redis.TimeoutError) as exc:
-            raise StoreUnavailable(f"the shared bundle store at {self.url} is unreachable: {exc}") from exc
+            raise StoreUnavailable(
+                f"the shared bundle store at {redact_url(self.url)} is unreachable: {self._scrub(str(exc))}"
+            ) from exc
+
+    def _scrub(self, text: str) -> str:
+        """A client error message with the URL's password taken out, should the client ever quote it."""
+        password = self.client.connection_pool.connection_kwargs.get("password")
+        return text.replace(password, "***") if password else text
 
     def ping(self) -> bool:
         try:
-            return bool(self.client.ping())
-        except (redis.ConnectionError, redis.TimeoutError):
+            return bool(self._health.ping())
+        except (redis.ConnectionError, redis.TimeoutError, redis.ResponseError):
             return False
+
+    def events(self, stop: threading.Event) -> Iterator[dict[str, Any] | None]:
+        """The publish channel: None on (re)subscribing, then each event, until ``stop`` is set."""
+        pubsub = self.client.pubsub(ignore_subscribe_messages=True)
+        try:
+            self._call(pubsub.subscribe, self.channel)
+            yield None
+            while not stop.is_set():
+                message = self._call(pubsub.get_message, timeout=0.5)
+                if message is None:
+                    continue
+                try:
+                    yield json.loads(message["data"])
+                except (ValueError, TypeError):
+                    continue  # not one of ours
+        finally:
+            with contextlib.suppress(redis.RedisError):
+                pubsub.close()
 
     @staticmethod
     def _check_name(name: str) -> None:
@@ -107,56 +162,41 @@ class RedisStore:
             if not have:
                 raise BundleNotFound(f"no bundle named {name!r}")
             raise BundleNotFound(f"bundle {name!r} has no version {version} (versions: {', '.join(map(str, have))})")
-        bundle = from_bytes(data, source=f"{name}@{version} (redis {self.key('bundle', name, version)})")
+        key = self.key("bundle", name, version)
+        bundle = from_bytes(data, source=f"{name}@{version}", location=f"redis key {key}")
         if bundle.name != name or bundle.version != version:
-            raise BundleIntegrityError(f"{name}@{version}: the stored document is {bundle.label}")
+            raise BundleIntegrityError(f"{name}@{version}: the stored document is {bundle.label}", location=key)
         return bundle
 
     def _write(self, bundle: Bundle) -> bool:
-        """SET NX the document, then index it; False when the version already exists."""
+        """Write, index and announce one version in one atomic step; False when it already existed."""
+        event = json.dumps({"kind": "version", "name": bundle.name, "version": bundle.version})
         created = self._call(
-            self.client.set, self.key("bundle", bundle.name, bundle.version), to_bytes(bundle), nx=True
+            self._write_version,
+            keys=[
+                self.key("bundle", bundle.name, bundle.version),
+                self.key("versions", bundle.name),
+                self.key("names"),
+            ],
+            args=[to_bytes(bundle), bundle.version, bundle.name, event, self.channel],
         )
-        if not created:
-            return False
-        pipe = self.client.pipeline()
-        pipe.zadd(self.key("versions", bundle.name), {str(bundle.version): bundle.version})
-        pipe.sadd(self.key("names"), bundle.name)
-        pipe.publish(self.channel, json.dumps({"kind": "version", "name": bundle.name, "version": bundle.version}))
-        self._call(pipe.execute)
-        return True
+        return bool(int(created))
 
     def publish(self, bundle: Bundle) -> Bundle:
         self._check_name(bundle.name)
         for _ in range(100):
-            version = int(self._call(self.client.incr, self.key("next", bundle.name)))
-            sealed = seal(bundle, version=version)
+            newest = self._call(self.client.zrevrange, self.key("versions", bundle.name), 0, 0)
+            sealed = seal(bundle, version=(int(newest[0]) + 1) if newest else 1)
             if self._write(sealed):
                 return sealed
         raise BundleError(f"could not find a free version for {bundle.name!r} after 100 attempts")
 
-    def put_version(self, bundle: Bundle) -> Bundle:
+    def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]:
         self._check_name(bundle.name)
-        if bundle.version < 1:
-            raise InvalidReference("a published version number starts at 1")
-        sealed = seal(bundle)
-        if bundle.hash and bundle.hash != sealed.hash:
-            raise BundleIntegrityError(f"{bundle.label}: the stated hash does not match the content; refused")
+        sealed = check_placed_version(bundle)
         if self._write(sealed):
-            # Keep the counter ahead of explicitly placed versions.
-            script = (
-                "if tonumber(redis.call('GET', KEYS[1]) or '0') < tonumber(ARGV[1]) then "
-                "redis.call('SET', KEYS[1], ARGV[1]) end return 1"
-            )
-            self._call(self.client.eval, script, 1, self.key("next", bundle.name), bundle.version)
-            return sealed
-        existing = self.get(bundle.name, bundle.version)
-        if existing.hash != sealed.hash:
-            raise VersionConflict(
-                f"{bundle.label} is already published with other content (hash {existing.hash[:12]}...); "
-                "a published version never changes: publish a new version instead"
-            )
-        return existing
+            return sealed, True
+        return same_or_conflict(self.get(bundle.name, bundle.version), sealed), False
 
     def aliases(self, name: str) -> dict[str, AliasRecord]:
         self._check_name(name)

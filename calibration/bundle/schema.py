@@ -23,9 +23,34 @@ ALIAS_PATTERN = r"^[a-z][a-z0-9_-]{0,31}$"
 
 PolicyStatus = Literal["invariant", "group_specific", "excluded"]
 
+# Sanity bounds on published parameters (equitheta's own, generous for any real bank): a slope of 20
+# makes an item a step function, an intercept of 200 puts a threshold 10 SD out at that slope, and
+# latent means and SDs of 10 are far outside any grid. A document beyond them is refused on publish.
+MAX_ABS_SLOPE = 20.0
+MAX_ABS_INTERCEPT = 200.0
+MAX_ABS_LATENT_MEAN = 10.0
+MAX_LATENT_SD = 10.0
+MAX_QUADRATURE_POINTS = 1001
+# A stated threshold must equal -intercept / slope to this relative precision.
+THRESHOLD_TOLERANCE = 1e-6
+
 
 class _Frozen(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # No NaN or infinity anywhere: JSON has neither, and 1e999 would otherwise read as infinity.
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
+
+
+def _check_item_parameters(where: str, slope: float, intercepts: list[float]) -> None:
+    """Range and order checks shared by the shared parameters and group-specific ones."""
+    if abs(slope) > MAX_ABS_SLOPE:
+        raise ValueError(f"{where}: slope {slope:g} is outside -{MAX_ABS_SLOPE:g}..{MAX_ABS_SLOPE:g}")
+    for m, c in enumerate(intercepts):
+        if abs(c) > MAX_ABS_INTERCEPT:
+            raise ValueError(
+                f"{where}: intercept {m + 1} = {c:g} is outside -{MAX_ABS_INTERCEPT:g}..{MAX_ABS_INTERCEPT:g}"
+            )
+    if any(later >= earlier for earlier, later in zip(intercepts, intercepts[1:], strict=False)):
+        raise ValueError(f"{where}: intercepts must be strictly decreasing")
 
 
 class Provenance(_Frozen):
@@ -42,10 +67,10 @@ class Provenance(_Frozen):
 class GroupMetric(_Frozen):
     name: str
     n_respondents: int = Field(ge=0)
-    latent_mean: float
-    latent_sd: float = Field(gt=0)
-    latent_mean_se: float | None = None
-    latent_sd_se: float | None = None
+    latent_mean: float = Field(ge=-MAX_ABS_LATENT_MEAN, le=MAX_ABS_LATENT_MEAN)
+    latent_sd: float = Field(gt=0, le=MAX_LATENT_SD)
+    latent_mean_se: float | None = Field(None, ge=0)
+    latent_sd_se: float | None = Field(None, ge=0)
 
 
 class Metric(_Frozen):
@@ -88,6 +113,16 @@ class GroupPolicy(_Frozen):
     slope: float | None = Field(None, description="Group-specific slope when status is group_specific")
     intercepts: list[float] | None = Field(None, description="Group-specific intercepts when group_specific")
 
+    @model_validator(mode="after")
+    def _specific_parameters(self) -> GroupPolicy:
+        if self.status != "group_specific" and (self.slope is not None or self.intercepts is not None):
+            raise ValueError(f"a {self.status} cell carries no group-specific parameters")
+        if self.status == "group_specific":
+            if self.slope is None or not self.intercepts:
+                raise ValueError("a group_specific cell needs its slope and intercepts")
+            _check_item_parameters("group-specific parameters", self.slope, self.intercepts)
+        return self
+
 
 class ItemEntry(_Frozen):
     id: str = Field(min_length=1)
@@ -112,8 +147,19 @@ class ItemEntry(_Frozen):
         k = self.n_categories - 1
         if not (len(self.intercepts) == len(self.thresholds) == len(self.intercept_se) == len(self.threshold_se) == k):
             raise ValueError(f"item {self.id!r}: {self.n_categories} categories need {k} intercepts and thresholds")
-        if any(later >= earlier for earlier, later in zip(self.intercepts, self.intercepts[1:], strict=False)):
-            raise ValueError(f"item {self.id!r}: intercepts must be strictly decreasing")
+        _check_item_parameters(f"item {self.id!r}", self.slope, self.intercepts)
+        if self.slope != 0:
+            for m, (c, b) in enumerate(zip(self.intercepts, self.thresholds, strict=True)):
+                if abs(b + c / self.slope) > THRESHOLD_TOLERANCE * max(1.0, abs(b)):
+                    raise ValueError(
+                        f"item {self.id!r}: threshold {m + 1} = {b:g} is not -intercept / slope = {-c / self.slope:g}"
+                    )
+        errors = [self.slope_se, *self.intercept_se, *self.threshold_se]
+        if any(se is not None and se < 0 for se in errors):
+            raise ValueError(f"item {self.id!r}: a standard error is negative")
+        for group, policy in self.policy.items():
+            if policy.intercepts is not None and len(policy.intercepts) != k:
+                raise ValueError(f"item {self.id!r}, group {group!r}: {k} group-specific intercepts needed")
         if self.model in ("2pl", "1pl") and self.n_categories != 2:
             raise ValueError(f"item {self.id!r}: model {self.model} has exactly 2 categories")
         if self.category_map is not None and (
@@ -158,25 +204,37 @@ class Anchors(_Frozen):
 
 
 class QuadratureSettings(_Frozen):
-    n_points: int = Field(ge=5)
-    lower: float
-    upper: float
+    n_points: int = Field(ge=5, le=MAX_QUADRATURE_POINTS)
+    lower: float = Field(ge=-50)
+    upper: float = Field(le=50)
+
+    @model_validator(mode="after")
+    def _ordered(self) -> QuadratureSettings:
+        if not self.lower < self.upper:
+            raise ValueError(f"quadrature lower bound {self.lower:g} must be below the upper bound {self.upper:g}")
+        return self
 
 
 class ReportingScaleSettings(_Frozen):
-    location: float = 500.0
-    scale: float = Field(100.0, gt=0)
+    location: float = Field(500.0, ge=-1e9, le=1e9)
+    scale: float = Field(100.0, gt=0, le=1e9)
     decimals: int = Field(0, ge=0, le=6)
-    minimum: float | None = 100.0
-    maximum: float | None = 900.0
+    minimum: float | None = Field(100.0, ge=-1e12, le=1e12)
+    maximum: float | None = Field(900.0, ge=-1e12, le=1e12)
+
+    @model_validator(mode="after")
+    def _bounds_ordered(self) -> ReportingScaleSettings:
+        if self.minimum is not None and self.maximum is not None and not self.minimum < self.maximum:
+            raise ValueError(f"reporting scale minimum {self.minimum:g} must be below its maximum {self.maximum:g}")
+        return self
 
 
 class ScoringSettings(_Frozen):
     method: Literal["eap", "map", "ml"] = "eap"
     quadrature: QuadratureSettings
-    prior_mean: float = 0.0
-    prior_sd: float = Field(1.0, gt=0)
-    ml_bound: float = Field(4.0, gt=0)
+    prior_mean: float = Field(0.0, ge=-MAX_ABS_LATENT_MEAN, le=MAX_ABS_LATENT_MEAN)
+    prior_sd: float = Field(1.0, gt=0, le=MAX_LATENT_SD)
+    ml_bound: float = Field(4.0, gt=0, le=50)
     min_items_answered: int = Field(1, ge=1)
     reporting_scale: ReportingScaleSettings
 
@@ -368,6 +426,14 @@ class Bundle(_Frozen):
             ref = item.policy[self.metric.reference_group]
             if ref.status == "excluded":
                 raise ValueError(f"item {item.id!r}: the reference group keeps every item")
+        ids = {item.id for item in self.items}
+        unknown = [a for a in self.anchors.items if a not in ids]
+        if unknown:
+            raise ValueError(f"anchors name items that are not in the bundle: {', '.join(unknown)}")
+        grid = self.scoring.quadrature
+        for g in self.metric.groups:
+            if not grid.lower <= g.latent_mean <= grid.upper:
+                raise ValueError(f"group {g.name!r}: latent mean {g.latent_mean:g} lies outside the scoring grid")
         return self
 
     @property

@@ -3,9 +3,15 @@
 Contract
 --------
 - ``publish(bundle)`` gives the bundle the next integer version of its name and
-  stores it; ``put_version(bundle)`` stores a bundle at the version it carries
-  (same content again is accepted, other content is a :class:`VersionConflict`).
+  stores it; ``put_version(bundle)`` stores a bundle at the version it carries and
+  returns (stored bundle, created): same content again is accepted with ``created``
+  False, other content is a :class:`VersionConflict`. ``created`` comes from the
+  atomic write itself, so of concurrent identical writers exactly one sees True.
 - A stored version never changes and is never half-visible.
+- ``ping()`` says whether the store answers (without raising).
+- ``events(stop)`` is the change feed: ``None`` each time it (re)subscribes, then one dict
+  per published version or alias move, until ``stop`` is set; a store without a feed
+  yields nothing. A lost connection raises :class:`StoreUnavailable`.
 - Aliases (e.g. ``production``) point at versions, can be moved, and keep their
   history so they can be moved back.
 
@@ -14,6 +20,10 @@ Directory layout::
     STORE/NAME/v000001.json     canonical bytes, one file per version
     STORE/NAME/aliases.json     {"alias": {"version": 3, "history": [...]}}
     STORE/NAME/.lock            flock target serialising alias updates
+
+File modes (before the umask): a version file is 0444 (it never changes), ``aliases.json``
+0644. A temporary file left by a writer that was killed (``.incoming-*``, ``.aliases-*``)
+is removed when a store is opened, once it is older than ``STALE_TEMP_SECONDS``.
 """
 
 from __future__ import annotations
@@ -24,35 +34,25 @@ import hashlib
 import json
 import os
 import tempfile
+import threading
 from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Protocol
+from typing import Any, Protocol
 
-from calibration.bundle.canonical import (
+from calibration.bundle.canonical import canonical_bytes, from_bytes, seal, to_bytes
+from calibration.bundle.schema import Bundle, valid_alias, valid_name
+from calibration.errors import (
     BundleError,
     BundleIntegrityError,
-    canonical_bytes,
-    from_bytes,
-    seal,
-    to_bytes,
+    BundleNotFound,
+    InvalidBundleDocument,
+    InvalidReference,
+    VersionConflict,
 )
-from calibration.bundle.schema import Bundle, valid_alias, valid_name
 
 DEFAULT_ALIAS = "production"
-
-
-class BundleNotFound(BundleError):
-    """No bundle (or no such version or alias) under that name."""
-
-
-class VersionConflict(BundleError):
-    """That version already exists with other content."""
-
-
-class InvalidReference(BundleError):
-    """A bundle name, version or alias is malformed."""
 
 
 @dataclass(frozen=True)
@@ -67,10 +67,32 @@ class BundleStore(Protocol):
     def versions(self, name: str) -> list[int]: ...
     def get(self, name: str, version: int) -> Bundle: ...
     def publish(self, bundle: Bundle) -> Bundle: ...
-    def put_version(self, bundle: Bundle) -> Bundle: ...
+    def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]: ...
+    def ping(self) -> bool: ...
+    def events(self, stop: threading.Event) -> Iterator[dict[str, Any] | None]: ...
     def aliases(self, name: str) -> dict[str, AliasRecord]: ...
     def set_alias(self, name: str, alias: str, version: int) -> AliasRecord: ...
     def alias_back(self, name: str, alias: str) -> AliasRecord: ...
+
+
+def check_placed_version(bundle: Bundle) -> Bundle:
+    """The sealed bundle for ``put_version``, after the checks every store makes."""
+    if bundle.version < 1:
+        raise InvalidReference("a published version number starts at 1")
+    sealed = seal(bundle)
+    if bundle.hash and bundle.hash != sealed.hash:
+        raise InvalidBundleDocument(f"{bundle.label}: the stated hash does not match the content; refused")
+    return sealed
+
+
+def same_or_conflict(existing: Bundle, sealed: Bundle) -> Bundle:
+    """The stored version when it holds the same content, else a :class:`VersionConflict`."""
+    if existing.hash != sealed.hash:
+        raise VersionConflict(
+            f"{sealed.label} is already published with other content (hash {existing.hash[:12]}...); "
+            "a published version never changes: publish a new version instead"
+        )
+    return existing
 
 
 def parse_reference(reference: str) -> tuple[str, int | str | None]:
@@ -145,11 +167,50 @@ def _now() -> str:
     return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
+# A writer's temporary file lives for milliseconds; one this old was left by a killed writer.
+STALE_TEMP_SECONDS = 600
+VERSION_FILE_MODE = 0o444
+ALIAS_FILE_MODE = 0o644
+TEMP_PREFIXES = (".incoming-", ".aliases-")
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 class DirectoryStore:
     """Bundles as files under a directory (see the module docstring for the layout)."""
 
     def __init__(self, root: Path | str) -> None:
         self.root = Path(root)
+        self.removed_temp_files = self._remove_stale_temp_files()
+
+    def _remove_stale_temp_files(self) -> int:
+        """Delete temporary files that killed writers left behind; returns how many."""
+        if not self.root.is_dir():
+            return 0
+        cutoff = datetime.now(UTC).timestamp() - STALE_TEMP_SECONDS
+        removed = 0
+        for directory in self.root.iterdir():
+            if not directory.is_dir():
+                continue
+            for path in directory.iterdir():
+                if path.name.startswith(TEMP_PREFIXES):
+                    with contextlib.suppress(FileNotFoundError):
+                        if path.stat().st_mtime < cutoff:
+                            path.unlink()
+                            removed += 1
+        return removed
+
+    def ping(self) -> bool:
+        """Up when the directory exists, or can still be made by the first publish."""
+        return self.root.is_dir() or (not self.root.exists() and self.root.parent.is_dir())
+
+    def events(self, stop: threading.Event) -> Iterator[dict[str, Any] | None]:
+        """The change feed: a directory store has none (every read looks at the files)."""
+        return iter(())
 
     def __repr__(self) -> str:
         return f"DirectoryStore({str(self.root)!r})"
@@ -192,10 +253,10 @@ class DirectoryStore:
             raise BundleNotFound(
                 f"bundle {name!r} has no version {version} (versions: {', '.join(map(str, have))})"
             ) from None
-        bundle = from_bytes(data, source=f"{name}@{version} ({path})")
+        bundle = from_bytes(data, source=f"{name}@{version}", location=str(path))
         if bundle.name != name or bundle.version != version:
             raise BundleIntegrityError(
-                f"{path}: holds {bundle.name}@{bundle.version}, not {name}@{version}; the file was moved"
+                f"{name}@{version}: the file holds {bundle.name}@{bundle.version}; it was moved", location=str(path)
             )
         return bundle
 
@@ -213,25 +274,15 @@ class DirectoryStore:
                 continue
         raise BundleError(f"could not find a free version for {bundle.name!r} after 100 attempts")
 
-    def put_version(self, bundle: Bundle) -> Bundle:
-        if bundle.version < 1:
-            raise InvalidReference("a published version number starts at 1")
+    def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]:
         directory = self._dir(bundle.name)
+        sealed = check_placed_version(bundle)
         directory.mkdir(parents=True, exist_ok=True)
-        sealed = seal(bundle)
-        if bundle.hash and bundle.hash != sealed.hash:
-            raise BundleIntegrityError(f"{bundle.label}: the stated hash does not match the content; refused")
         try:
             self._write_new(directory, sealed)
         except FileExistsError:
-            existing = self.get(bundle.name, bundle.version)
-            if existing.hash != sealed.hash:
-                raise VersionConflict(
-                    f"{bundle.label} is already published with other content (hash {existing.hash[:12]}...); "
-                    "a published version never changes: publish a new version instead"
-                ) from None
-            return existing
-        return sealed
+            return same_or_conflict(self.get(bundle.name, bundle.version), sealed), False
+        return sealed, True
 
     @staticmethod
     def _write_new(directory: Path, bundle: Bundle) -> None:
@@ -243,8 +294,8 @@ class DirectoryStore:
                 handle.write(to_bytes(bundle))
                 handle.flush()
                 os.fsync(handle.fileno())
+            os.chmod(tmp, VERSION_FILE_MODE & ~_umask())
             os.link(tmp, target)  # fails with FileExistsError if the version exists
-            os.chmod(target, 0o444)
         finally:
             os.unlink(tmp)
         _fsync_dir(directory)
@@ -267,9 +318,9 @@ class DirectoryStore:
         try:
             data = json.loads(path.read_text(encoding="utf-8"))
         except json.JSONDecodeError as exc:
-            raise BundleIntegrityError(f"{path}: damaged alias file ({exc})") from exc
+            raise BundleIntegrityError(f"{directory.name}: damaged alias file ({exc})", location=str(path)) from exc
         if not isinstance(data, dict):
-            raise BundleIntegrityError(f"{path}: damaged alias file (not an object)")
+            raise BundleIntegrityError(f"{directory.name}: damaged alias file (not an object)", location=str(path))
         return data
 
     def aliases(self, name: str) -> dict[str, AliasRecord]:
@@ -319,6 +370,7 @@ class DirectoryStore:
                 json.dump(data, handle, sort_keys=True, indent=1)
                 handle.flush()
                 os.fsync(handle.fileno())
+            os.chmod(tmp, ALIAS_FILE_MODE & ~_umask())
             os.replace(tmp, directory / "aliases.json")
         except BaseException:
             if os.path.exists(tmp):

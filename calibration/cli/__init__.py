@@ -174,11 +174,19 @@ def _add_bundle(sub: argparse._SubParsersAction) -> None:
 
 def _add_serve(sub: argparse._SubParsersAction) -> None:
     srv = _subparser(sub, "serve", "run the scoring service (uvicorn) over a bundle store")
-    srv.add_argument("--store", required=True, help="bundle directory (or a redis:// URL)")
+    srv.add_argument("--store", help="bundle directory or redis:// URL (default: EQUITHETA_STORE)")
     srv.add_argument("--redis-url", help="shared Redis store (overrides --store)")
-    srv.add_argument("--host", default="127.0.0.1", help="address to bind")
-    srv.add_argument("--port", type=int, default=8000, help="port to bind")
-    srv.add_argument("--workers", type=_positive_int, default=1, help="uvicorn worker processes")
+    srv.add_argument("--host", help="address to bind (default: EQUITHETA_HOST, else 127.0.0.1)")
+    srv.add_argument("--port", type=int, help="port to bind (default: EQUITHETA_PORT, else 8000)")
+    srv.add_argument(
+        "--workers", type=_positive_int, help="uvicorn worker processes (default: EQUITHETA_WORKERS, else 1)"
+    )
+    srv.add_argument(
+        "--worker-healthcheck-timeout",
+        type=_positive_float,
+        help="seconds a busy worker may take to answer uvicorn's health check before it is restarted "
+        "(default: EQUITHETA_WORKER_HEALTHCHECK_TIMEOUT, else 60)",
+    )
 
 
 def _add_demo(sub: argparse._SubParsersAction) -> None:
@@ -243,7 +251,8 @@ def _run(args: argparse.Namespace) -> int:
         error_console().print(f"error: {exc}", style="bold", highlight=False)
         return EXIT_INPUT
     except BundleError as exc:
-        error_console().print(f"bundle error: {exc}", style="bold", highlight=False)
+        where = getattr(exc, "location", None)
+        error_console().print(f"bundle error: {exc}" + (f" ({where})" if where else ""), style="bold", highlight=False)
         return EXIT_BUNDLE
     return EXIT_UNEXPECTED
 

@@ -9,6 +9,7 @@ from calibration.bundle import Bundle, open_store, parse_reference, resolve
 from calibration.cli import UsageError
 from calibration.cli.console import new_table, out_console
 from calibration.cli.render import print_bundle_details, print_calibration_summary
+from calibration.errors import BundleIntegrityError
 
 
 def run_bundle(args: argparse.Namespace) -> int:
@@ -23,10 +24,21 @@ def run_bundle(args: argparse.Namespace) -> int:
             console.print("no bundles in this store", highlight=False)
             return 0
         table = new_table("bundles", ["name", "versions", "aliases"])
+        damaged: list[str] = []
         for name in names:
             aliases = ", ".join(f"{a} -> {r.version}" for a, r in sorted(store.aliases(name).items()))
-            table.add_row(name, ", ".join(map(str, store.versions(name))), aliases or "-")
+            versions = []
+            for version in store.versions(name):
+                try:
+                    store.get(name, version)  # verifies the hash: a damaged version is marked, not hidden
+                    versions.append(str(version))
+                except BundleIntegrityError as exc:
+                    versions.append(f"{version} (DAMAGED)")
+                    damaged.append(f"{name}@{version}: {exc}" + (f" ({exc.location})" if exc.location else ""))
+            table.add_row(name, ", ".join(versions), aliases or "-")
         console.print(table)
+        for line in damaged:
+            console.print(f"  damaged: {line}", highlight=False)
         return 0
     if args.bundle_command == "show":
         bundle = resolve(store, args.reference)

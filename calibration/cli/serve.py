@@ -10,7 +10,7 @@ import sys
 from calibration.cli import UsageError
 
 # Modules the service needs beyond the calibration package (the "service" extra).
-SERVICE_MODULES = ("fastapi", "uvicorn", "pydantic_settings", "redis", "orjson")
+SERVICE_MODULES = ("fastapi", "uvicorn", "pydantic_settings", "redis", "orjson", "prometheus_client")
 
 
 def _installed(module: str) -> bool:
@@ -28,20 +28,10 @@ def run_serve(args: argparse.Namespace) -> int:
             f"(missing: {', '.join(missing) or 'the service package'}); install them with: "
             "pip install 'equitheta[service]'"
         )
-    argv = [
-        sys.executable,
-        "-m",
-        "service.main",
-        "--store",
-        str(args.store),
-        "--host",
-        args.host,
-        "--port",
-        str(args.port),
-        "--workers",
-        str(args.workers),
-    ]
-    if args.redis_url:
-        argv += ["--redis-url", args.redis_url]
+    argv = [sys.executable, "-m", "service.main"]
+    for option in ("store", "redis_url", "host", "port", "workers", "worker_healthcheck_timeout"):
+        value = getattr(args, option)
+        if value is not None:
+            argv += ["--" + option.replace("_", "-"), str(value)]
     os.execv(sys.executable, argv)
     return 1  # not reached

@@ -11,7 +11,7 @@ import subprocess
 import threading
 import time
 import uuid
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
@@ -20,7 +20,6 @@ import uvicorn
 from fastapi import FastAPI
 
 from calibration.bundle import Bundle, DirectoryStore
-from service.main import create_app
 from service.security import key_digest
 from service.settings import Settings
 
@@ -100,44 +99,72 @@ def shared_redis() -> Iterator[tuple[str, str]]:
         client.delete(key)
 
 
-@pytest.fixture
-def private_redis(tmp_path: Path) -> Iterator[tuple[str, subprocess.Popen[bytes]]]:
-    """A redis-server of this test's own on a free port (tests that stop Redis use this one)."""
+def start_private_redis(directory: Path, *, password: str | None = None) -> tuple[str, subprocess.Popen[bytes]]:
+    """A redis-server of a test's own on a free port; returns its URL (with the password) and process."""
     binary = shutil.which("redis-server")
     if binary is None:
         if os.environ.get("EQUITHETA_REQUIRE_REDIS") == "1":
             pytest.fail("EQUITHETA_REQUIRE_REDIS=1 but redis-server is not installed")
         pytest.skip("redis-server is not installed")
     port = free_port()
-    process = subprocess.Popen(
-        [
-            binary,
-            "--port",
-            str(port),
-            "--bind",
-            "127.0.0.1",
-            "--save",
-            "",
-            "--appendonly",
-            "no",
-            "--dir",
-            str(tmp_path),
-        ],
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    url = f"redis://127.0.0.1:{port}/0"
+    command = [
+        binary,
+        "--port",
+        str(port),
+        "--bind",
+        "127.0.0.1",
+        "--save",
+        "",
+        "--appendonly",
+        "no",
+        "--dir",
+        str(directory),
+    ]
+    if password:
+        command += ["--requirepass", password]
+    process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    url = f"redis://:{password}@127.0.0.1:{port}/0" if password else f"redis://127.0.0.1:{port}/0"
     deadline = time.time() + 10
     while not _redis_answers(url):
         if time.time() > deadline:
             process.kill()
             raise RuntimeError("private redis-server did not start")
         time.sleep(0.05)
-    yield url, process
+    return url, process
+
+
+def stop_process(process: subprocess.Popen[bytes]) -> None:
     if process.poll() is None:
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(process.pid, 18)  # SIGCONT, in case a test stalled it
         process.terminate()
         process.wait(10)
 
 
-def make_app(settings: Settings) -> FastAPI:
-    return create_app(settings)
+@pytest.fixture
+def private_redis(tmp_path: Path) -> Iterator[tuple[str, subprocess.Popen[bytes]]]:
+    """A redis-server of this test's own on a free port (tests that stop Redis use this one)."""
+    url, process = start_private_redis(tmp_path)
+    yield url, process
+    stop_process(process)
+
+
+def poll(condition: Callable[[], bool], *, timeout: float = 15.0) -> bool:
+    """True once ``condition()`` holds, False after ``timeout`` seconds (a bounded wait, not a timing check)."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if condition():
+            return True
+        time.sleep(0.05)
+    return condition()
+
+
+def metric_value(text: str, sample: str, **labels: str) -> float:
+    """A sample's value in a Prometheus text exposition (parsed by the client library's own parser)."""
+    from prometheus_client.parser import text_string_to_metric_families
+
+    for family in text_string_to_metric_families(text):
+        for s in family.samples:
+            if s.name == sample and all(s.labels.get(k) == v for k, v in labels.items()):
+                return float(s.value)
+    raise AssertionError(f"no sample {sample} {labels} in the metrics")

@@ -16,7 +16,7 @@ from calibration.cli import main as cli_main
 from service.main import create_app
 from service.schemas import ScoreResponse
 from service.settings import Settings
-from tests.service.conftest import auth, example_bundle
+from tests.service.conftest import auth, example_bundle, metric_value
 
 SCORE = {"responses": [{"id": "a", "group": "tablet", "answers": {"T1": 1, "T2": 0, "T3": 1, "T5": 1}}]}
 
@@ -113,9 +113,10 @@ def test_operations_routes_need_no_key(keyed_settings: Settings) -> None:
         assert client.get("/readyz").json()["status"] == "ready"
         client.post("/v1/bundles/pantry-checkout/scores", json=SCORE, headers=auth("scorer"))
         text = client.get("/metrics").text
-    assert 'equitheta_vectors_scored_total{bundle="pantry-checkout@1"} 1' in text
-    assert 'equitheta_requests_total{route="/v1/bundles/{name}/scores",method="POST",status="200"} 1' in text
-    assert "equitheta_request_duration_seconds_bucket" in text
+    assert metric_value(text, "equitheta_vectors_scored_total", bundle="pantry-checkout@1") == 1
+    route = "/v1/bundles/{name}/scores"
+    assert metric_value(text, "equitheta_requests_total", route=route, method="POST", status="200") == 1
+    assert metric_value(text, "equitheta_request_duration_seconds_count", route=route) == 1
 
 
 def test_limits_answer_413_problems(example_store: Path) -> None:
@@ -209,7 +210,15 @@ def test_damaged_bundle_file_is_refused_and_others_still_serve(keyed_settings: S
     path.write_bytes(path.read_bytes()[:-100])
     with TestClient(create_app(keyed_settings)) as client:
         reply = client.post("/v1/bundles/pantry-checkout/versions/1/scores", json=SCORE, headers=auth("scorer"))
-    assert reply.status_code == 400 and "damaged and refused" in reply.json()["detail"]
+        again = client.post("/v1/bundles/pantry-checkout/versions/1/scores", json=SCORE, headers=auth("scorer"))
+        ready = client.get("/readyz").json()
+    # A server problem of its own type (not the client's fault), naming the version but no server path.
+    assert reply.status_code == 500 and reply.headers["content-type"] == "application/problem+json"
+    body = reply.json()
+    assert body["type"].endswith("/stored-bundle-damaged") and body["detail"].startswith("pantry-checkout@1: not valid")
+    assert str(example_store) not in reply.text and "v000001.json" not in reply.text
+    assert again.json() == body  # the verdict is remembered, not re-read and re-hashed
+    assert ready["status"] == "degraded" and ready["damaged_versions"] == ["pantry-checkout@1"]
 
 
 def test_settings_fail_at_start_up_naming_the_variable(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:

@@ -25,7 +25,13 @@ def test_serve_runs_uvicorn_over_a_directory_store(example_store: Path) -> None:
             except httpx.HTTPError:
                 assert time.time() < deadline and process.poll() is None, "the service did not start"
                 time.sleep(0.1)
-        assert ready.json() == {"status": "ready", "store": "reachable", "bundles_loaded": 1, "detail": None}
+        assert ready.json() == {
+            "status": "ready",
+            "store": "reachable",
+            "bundles_loaded": 1,
+            "detail": None,
+            "damaged_versions": [],
+        }
     finally:
         process.terminate()
         _, err = process.communicate(timeout=10)
