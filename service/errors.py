@@ -9,6 +9,7 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.routing import Match
 
 from calibration.errors import (
     BundleIntegrityError,
@@ -98,6 +99,16 @@ def problem(
     return JSONResponse(body, status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers=headers)
 
 
+def _allow_header(request: Request) -> dict[str, str]:
+    """Every method any route offers at this path (Starlette would name only the first route's)."""
+    methods: set[str] = set()
+    for route in request.app.router.routes:
+        match, _ = route.matches({**request.scope, "method": "\x00"})  # no real method: path matches only
+        if match is not Match.NONE:
+            methods |= set(getattr(route, "methods", None) or ())
+    return {"Allow": ", ".join(sorted(methods))}
+
+
 def install_handlers(app: FastAPI) -> None:
     @app.exception_handler(ProblemError)
     async def _domain(request: Request, exc: ProblemError) -> JSONResponse:
@@ -134,7 +145,7 @@ def install_handlers(app: FastAPI) -> None:
             str(exc.detail),
             f"{request.method} {request.url.path}: {exc.detail}",
             request.url.path,
-            headers=getattr(exc, "headers", None),  # keeps Allow on a 405
+            headers=_allow_header(request) if exc.status_code == 405 else getattr(exc, "headers", None),
         )
 
     @app.exception_handler(Exception)

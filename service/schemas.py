@@ -16,6 +16,8 @@ CAUTION = (
 
 # Largest answer code the schema accepts: far above any item's categories, far below any integer overflow.
 MAX_ANSWER_CODE = 999
+# Largest version number (the path parameter has the same bound).
+MAX_VERSION = 2**31 - 1
 
 
 class _Strict(BaseModel):
@@ -97,7 +99,7 @@ class PublishResult(_Strict):
 
 
 class AliasRequest(_Strict):
-    version: int = Field(ge=1)
+    version: int = Field(ge=1, le=MAX_VERSION, description="a published version of the bundle")
 
 
 class AliasResult(_Strict):

@@ -28,6 +28,8 @@ from datetime import UTC, datetime
 from typing import Any
 
 import redis
+from redis.backoff import NoBackoff
+from redis.retry import Retry
 
 from calibration.bundle.canonical import from_bytes, seal, to_bytes
 from calibration.bundle.schema import Bundle, valid_alias, valid_name
@@ -89,8 +91,13 @@ class RedisStore:
     def __init__(self, url: str, *, prefix: str = "equitheta", timeout: float = 2.0) -> None:
         self.url = url
         self.prefix = prefix
-        self.client = redis.Redis.from_url(url, socket_timeout=timeout, socket_connect_timeout=timeout)
-        self._health = redis.Redis.from_url(url, socket_timeout=PING_TIMEOUT, socket_connect_timeout=PING_TIMEOUT)
+        # No client-side retries: redis-py's default (3 retries with back-off up to 10 s) turns one stalled
+        # call into half a minute; a failure is reported at once and the caller's probe does the retrying.
+        no_retry = {"retry": Retry(NoBackoff(), 0), "retry_on_error": []}
+        self.client = redis.Redis.from_url(url, socket_timeout=timeout, socket_connect_timeout=timeout, **no_retry)
+        self._health = redis.Redis.from_url(
+            url, socket_timeout=PING_TIMEOUT, socket_connect_timeout=PING_TIMEOUT, **no_retry
+        )
         self._write_version = self.client.register_script(_WRITE_VERSION)
         self._set_alias = self.client.register_script(_SET_ALIAS)
         self._alias_back = self.client.register_script(_ALIAS_BACK)

@@ -99,14 +99,16 @@ def shared_redis() -> Iterator[tuple[str, str]]:
         client.delete(key)
 
 
-def start_private_redis(directory: Path, *, password: str | None = None) -> tuple[str, subprocess.Popen[bytes]]:
-    """A redis-server of a test's own on a free port; returns its URL (with the password) and process."""
+def start_private_redis(
+    directory: Path, *, password: str | None = None, port: int | None = None
+) -> tuple[str, subprocess.Popen[bytes]]:
+    """A redis-server of a test's own (on a free port unless given); returns its URL and process."""
     binary = shutil.which("redis-server")
     if binary is None:
         if os.environ.get("EQUITHETA_REQUIRE_REDIS") == "1":
             pytest.fail("EQUITHETA_REQUIRE_REDIS=1 but redis-server is not installed")
         pytest.skip("redis-server is not installed")
-    port = free_port()
+    port = port or free_port()
     command = [
         binary,
         "--port",

@@ -127,7 +127,19 @@ def test_a_stalled_redis_is_not_asked_on_the_request_path(tmp_path: Path) -> Non
         app = create_app(_settings(url))
         with live_server(app) as server:
             before = httpx.post(f"{server}/v1/bundles/pantry-checkout/scores", json=SCORE, headers=auth("scorer"))
+            statuses: list[int] = []
+            done = threading.Event()
+
+            def load() -> None:  # requests all through the stall, from its first instant
+                with httpx.Client(headers=auth("scorer"), timeout=30) as client:
+                    while not done.is_set():
+                        statuses.append(
+                            client.post(f"{server}/v1/bundles/pantry-checkout/scores", json=SCORE).status_code
+                        )
+
+            loader = threading.Thread(target=load)
             os.kill(process.pid, signal.SIGSTOP)  # a partition: no reset, no answer
+            loader.start()
             try:
                 assert poll(lambda: httpx.get(f"{server}/readyz").json()["status"] == "degraded")
                 registry = app.state.registry
@@ -140,7 +152,10 @@ def test_a_stalled_redis_is_not_asked_on_the_request_path(tmp_path: Path) -> Non
                 # Every default-route request was answered from memory, none waited on the stalled server.
                 assert registry.skipped_store_calls - skipped >= 10
             finally:
+                done.set()
+                loader.join(30)
                 os.kill(process.pid, signal.SIGCONT)
+            assert statuses and set(statuses) == {200}  # not one failed score request under the stall
             assert poll(lambda: httpx.get(f"{server}/readyz").json()["status"] == "ready")
     finally:
         stop_process(process)
