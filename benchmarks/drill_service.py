@@ -31,7 +31,7 @@ import numpy as np
 
 from benchmarks.common import machine
 from calibration.bundle.redis_store import RedisStore
-from tests.service.conftest import CASES, auth, example_bundle, example_keys, free_port, start_private_redis
+from tests.helpers import CASES, auth, example_bundle, example_keys, free_port, start_private_redis
 
 ROOT = Path(__file__).resolve().parents[1]
 SCORE = {"responses": [{"id": "a", "group": "tablet", "answers": {"T1": 1, "T2": 0, "T3": 1, "T5": 1}}]}

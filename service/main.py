@@ -195,27 +195,32 @@ class Observe:
             elapsed = time.perf_counter() - start
             route = getattr(scope.get("route"), "path", "unmatched")
             self.metrics.observe_request(route, scope["method"], status["code"], elapsed)
-            log.info(
-                json.dumps(
-                    {
-                        "event": "request",
-                        "method": scope["method"],
-                        "route": route,
-                        "path": scope.get("path"),
-                        "status": status["code"],
-                        "ms": round(elapsed * 1000, 3),
-                    }
-                )
+            log_event(
+                logging.INFO,
+                "request",
+                method=scope["method"],
+                route=route,
+                path=scope.get("path"),
+                status=status["code"],
+                ms=round(elapsed * 1000, 3),
             )
 
 
+def log_event(level: int, event: str, **fields: Any) -> None:
+    """One structured log line: an event name and its fields (never keys, bodies or secrets)."""
+    log.log(level, event, extra={"fields": fields})
+
+
 class JsonLogFormatter(logging.Formatter):
+    """One JSON object per line: the event (or message), its fields, level, logger and time."""
+
     def format(self, record: logging.LogRecord) -> str:
-        message = record.getMessage()
-        if message.startswith("{"):
-            body = json.loads(message)
-        else:
-            body = {"event": "log", "message": message}
+        fields = getattr(record, "fields", None)
+        body: dict[str, Any] = (
+            {"event": record.getMessage(), **fields}
+            if fields is not None
+            else {"event": "log", "message": record.getMessage()}
+        )
         body.update(
             {
                 "level": record.levelname.lower(),
@@ -463,23 +468,13 @@ def create_app(settings: Settings) -> FastAPI:
         registry.start()
         app.state.registry = registry
         if keyring.open:
-            log.warning(
-                json.dumps(
-                    {
-                        "event": "startup",
-                        "message": f"no API keys configured: open access, bound to loopback only ({settings.host})",
-                    }
-                )
+            log_event(
+                logging.WARNING,
+                "startup",
+                message=f"no API keys configured: open access, bound to loopback only ({settings.host})",
             )
-        log.info(
-            json.dumps(
-                {
-                    "event": "startup",
-                    "store": repr(store),
-                    "bundles_loaded": registry.loaded_count,
-                    "keys": len(keyring.records),
-                }
-            )
+        log_event(
+            logging.INFO, "startup", store=repr(store), bundles_loaded=registry.loaded_count, keys=len(keyring.records)
         )
         yield
         registry.stop()

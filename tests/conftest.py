@@ -1,18 +1,11 @@
-"""Shared fixtures: reference data files and small seeded data sets."""
+"""Shared fixtures (helpers are in tests/helpers.py)."""
 
 from __future__ import annotations
-
-import json
-from pathlib import Path
 
 import numpy as np
 import pytest
 
-DATA = Path(__file__).parent / "data"
-
-
-def load_reference(name: str) -> dict:
-    return json.loads((DATA / name).read_text())
+from tests.helpers import load_reference
 
 
 @pytest.fixture(scope="session")
@@ -25,25 +18,6 @@ def lsat6() -> dict:
         rows.extend([bits] * count)
     ref["responses"] = np.array(rows, dtype=np.float64)
     return ref
-
-
-def simulate_responses(
-    slopes: np.ndarray,
-    thresholds: np.ndarray,
-    theta: np.ndarray,
-    rng: np.random.Generator,
-) -> np.ndarray:
-    """Graded (or 2PL) responses drawn from the model; thresholds NaN-padded per item.
-
-    Used only for simulations (recovery studies); the reference checks use outside data.
-    """
-    thresholds = np.atleast_2d(np.asarray(thresholds, dtype=np.float64))
-    if thresholds.shape[0] != slopes.shape[0]:
-        thresholds = thresholds.T
-    z = slopes[None, :, None] * (theta[:, None, None] - thresholds[None, :, :])
-    star = np.where(np.isnan(z), 0.0, 1.0 / (1.0 + np.exp(-np.nan_to_num(z))))
-    u = rng.random((theta.shape[0], slopes.shape[0], 1))
-    return np.sum(u < star, axis=2).astype(np.float64)
 
 
 @pytest.fixture(scope="session")

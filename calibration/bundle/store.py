@@ -387,14 +387,13 @@ def _fsync_dir(directory: Path) -> None:
         os.close(fd)
 
 
-def open_store(location: str | Path, *, prefix: str | None = None) -> BundleStore:
+def open_store(location: str | Path, *, prefix: str = "equitheta") -> BundleStore:
     """A store from a ``--store`` value: a directory path or a ``redis://`` URL.
 
-    The Redis key prefix is ``prefix``, else ``EQUITHETA_REDIS_PREFIX``, else ``equitheta``
-    (the service's default, so the CLI and the service meet in the same keys).
+    ``prefix`` is the Redis key prefix (the callers' settings decide it: the CLI from
+    ``EQUITHETA_REDIS_PREFIX``, the service from its settings; both default to ``equitheta``).
     """
     text = str(location)
-    prefix = prefix or os.environ.get("EQUITHETA_REDIS_PREFIX") or "equitheta"
     if text.startswith(("redis://", "rediss://", "unix://")):
         try:
             from calibration.bundle.redis_store import RedisStore

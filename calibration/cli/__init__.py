@@ -23,6 +23,19 @@ class UsageError(Exception):
     """A command-line argument is unusable."""
 
 
+# The Redis key prefix of the CLI's stores; the service's default is the same, so both meet in one place.
+REDIS_PREFIX_VARIABLE = "EQUITHETA_REDIS_PREFIX"
+
+
+def store_from(location: str):  # type: ignore[no-untyped-def]
+    """The store a ``--store`` value names (a redis:// URL takes its key prefix from EQUITHETA_REDIS_PREFIX)."""
+    import os
+
+    from calibration.bundle import open_store
+
+    return open_store(location, prefix=os.environ.get(REDIS_PREFIX_VARIABLE) or "equitheta")
+
+
 class _Formatter(argparse.ArgumentDefaultsHelpFormatter):
     """Shows defaults, except where an option has none worth showing."""
 

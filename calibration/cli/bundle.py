@@ -5,8 +5,8 @@ from __future__ import annotations
 import argparse
 import json
 
-from calibration.bundle import Bundle, open_store, parse_reference, resolve
-from calibration.cli import UsageError
+from calibration.bundle import Bundle, parse_reference, resolve
+from calibration.cli import UsageError, store_from
 from calibration.cli.console import new_table, out_console
 from calibration.cli.render import print_bundle_details, print_calibration_summary
 from calibration.errors import BundleIntegrityError
@@ -17,7 +17,7 @@ def run_bundle(args: argparse.Namespace) -> int:
     if args.bundle_command == "schema":
         console.print_json(json.dumps(Bundle.model_json_schema()))
         return 0
-    store = open_store(args.store)
+    store = store_from(args.store)
     if args.bundle_command == "list":
         names = store.names()
         if not names:

@@ -5,8 +5,9 @@ from __future__ import annotations
 import argparse
 from typing import TYPE_CHECKING
 
-from calibration.bundle import Bundle, open_store, parse_reference
+from calibration.bundle import Bundle, parse_reference
 from calibration.bundle.store import find_identical
+from calibration.cli import store_from
 from calibration.cli.console import ProgressReporter, out_console
 from calibration.cli.render import print_calibration_summary
 from calibration.io import ResponseData, read_item_spec, read_policy_overrides, read_responses
@@ -61,7 +62,7 @@ def run_calibrate(args: argparse.Namespace) -> int:
         group_column=args.group_column,
     )
     rows = read_policy_overrides(args.policy_overrides) if args.policy_overrides else []
-    store = open_store(args.store)
+    store = store_from(args.store)
     from calibration.pipeline import PolicyOverride, prepare_data
 
     settings = settings_from_args(args)

@@ -8,9 +8,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from calibration.bundle import Bundle, open_store, resolve
+from calibration.bundle import Bundle, resolve
 from calibration.bundle.scorer import BundleScorer, UnknownGroup
-from calibration.cli import UsageError
+from calibration.cli import UsageError, store_from
 from calibration.cli.console import error_console, out_console
 from calibration.cli.render import CAUTION
 from calibration.io import MAX_PROBLEMS, read_for_scoring, read_header, row_label, write_csv_atomic
@@ -33,7 +33,7 @@ SCORE_COLUMNS = (
 
 
 def run_score(args: argparse.Namespace) -> int:
-    store = open_store(args.store)
+    store = store_from(args.store)
     bundle = resolve(store, args.bundle)
     scorer = BundleScorer(bundle)
     ignore = [c.strip() for c in args.ignore_columns.split(",") if c.strip()]

@@ -135,17 +135,9 @@ class ItemGroupTest:
 
 
 def benjamini_hochberg(p_values: FloatArray) -> FloatArray:
-    """Adjusted p values (step-up, Benjamini & Hochberg 1995); monotone and capped at 1."""
+    """Adjusted p values (step-up, Benjamini & Hochberg 1995), by scipy's ``false_discovery_control``."""
     p = np.asarray(p_values, dtype=np.float64)
-    n = p.size
-    if n == 0:
-        return p
-    order = np.argsort(p)
-    ranked = p[order] * n / np.arange(1, n + 1)
-    adjusted = np.minimum.accumulate(ranked[::-1])[::-1]
-    out = np.empty(n)
-    out[order] = np.minimum(adjusted, 1.0)
-    return out
+    return p if p.size == 0 else np.asarray(stats.false_discovery_control(p, method="bh"))
 
 
 def effect_size(reference: ItemParameters, focal: ItemParameters, mean: float, sd: float) -> tuple[float, float]:

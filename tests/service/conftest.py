@@ -2,43 +2,25 @@
 
 from __future__ import annotations
 
-import contextlib
-import json
 import os
-import shutil
-import socket
 import subprocess
-import threading
-import time
 import uuid
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 import redis
-import uvicorn
-from fastapi import FastAPI
 
-from calibration.bundle import Bundle, DirectoryStore
-from service.security import key_digest
+from calibration.bundle import DirectoryStore
 from service.settings import Settings
-
-EXAMPLES = Path(__file__).parents[2] / "openapi_examples"
-CASES = json.loads((EXAMPLES / "cases.json").read_text())
-SHARED_REDIS = "redis://127.0.0.1:6379/0"
-
-
-def example_bundle() -> Bundle:
-    return Bundle.model_validate_json((EXAMPLES / "bundle.json").read_text())
-
-
-def example_keys() -> str:
-    entries = (f"{name}:{'+'.join(CASES['scopes'][name])}:{key_digest(key)}" for name, key in CASES["keys"].items())
-    return ";".join(entries)
-
-
-def auth(role: str) -> dict[str, str]:
-    return {"Authorization": f"Bearer {CASES['keys'][role]}"}
+from tests.helpers import (
+    SHARED_REDIS,
+    example_bundle,
+    example_keys,
+    redis_answers,
+    start_private_redis,
+    stop_process,
+)
 
 
 @pytest.fixture
@@ -53,42 +35,10 @@ def keyed_settings(example_store: Path) -> Settings:
     return Settings(store=str(example_store), api_keys=example_keys(), log_level="warning")
 
 
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
-@contextlib.contextmanager
-def live_server(app: FastAPI) -> Iterator[str]:
-    """Serve ``app`` with uvicorn on a free loopback port in a thread; yields the base URL."""
-    port = free_port()
-    server = uvicorn.Server(uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning"))
-    thread = threading.Thread(target=server.run, daemon=True)
-    thread.start()
-    deadline = time.time() + 15
-    while not server.started:
-        if time.time() > deadline or not thread.is_alive():
-            raise RuntimeError("uvicorn did not start")
-        time.sleep(0.02)
-    try:
-        yield f"http://127.0.0.1:{port}"
-    finally:
-        server.should_exit = True
-        thread.join(10)
-
-
-def _redis_answers(url: str) -> bool:
-    try:
-        return bool(redis.Redis.from_url(url, socket_connect_timeout=1).ping())
-    except redis.RedisError:
-        return False
-
-
 @pytest.fixture
 def shared_redis() -> Iterator[tuple[str, str]]:
     """The machine's Redis on 127.0.0.1:6379 with a key prefix of this test's own; cleaned afterwards."""
-    if not _redis_answers(SHARED_REDIS):
+    if not redis_answers(SHARED_REDIS):
         if os.environ.get("EQUITHETA_REQUIRE_REDIS") == "1":
             pytest.fail("EQUITHETA_REQUIRE_REDIS=1 but no Redis answers on 127.0.0.1:6379")
         pytest.skip("no Redis on 127.0.0.1:6379")
@@ -99,74 +49,9 @@ def shared_redis() -> Iterator[tuple[str, str]]:
         client.delete(key)
 
 
-def start_private_redis(
-    directory: Path, *, password: str | None = None, port: int | None = None
-) -> tuple[str, subprocess.Popen[bytes]]:
-    """A redis-server of a test's own (on a free port unless given); returns its URL and process."""
-    binary = shutil.which("redis-server")
-    if binary is None:
-        if os.environ.get("EQUITHETA_REQUIRE_REDIS") == "1":
-            pytest.fail("EQUITHETA_REQUIRE_REDIS=1 but redis-server is not installed")
-        pytest.skip("redis-server is not installed")
-    port = port or free_port()
-    command = [
-        binary,
-        "--port",
-        str(port),
-        "--bind",
-        "127.0.0.1",
-        "--save",
-        "",
-        "--appendonly",
-        "no",
-        "--dir",
-        str(directory),
-    ]
-    if password:
-        command += ["--requirepass", password]
-    process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    url = f"redis://:{password}@127.0.0.1:{port}/0" if password else f"redis://127.0.0.1:{port}/0"
-    deadline = time.time() + 10
-    while not _redis_answers(url):
-        if time.time() > deadline:
-            process.kill()
-            raise RuntimeError("private redis-server did not start")
-        time.sleep(0.05)
-    return url, process
-
-
-def stop_process(process: subprocess.Popen[bytes]) -> None:
-    if process.poll() is None:
-        with contextlib.suppress(ProcessLookupError):
-            os.kill(process.pid, 18)  # SIGCONT, in case a test stalled it
-        process.terminate()
-        process.wait(10)
-
-
 @pytest.fixture
 def private_redis(tmp_path: Path) -> Iterator[tuple[str, subprocess.Popen[bytes]]]:
     """A redis-server of this test's own on a free port (tests that stop Redis use this one)."""
     url, process = start_private_redis(tmp_path)
     yield url, process
     stop_process(process)
-
-
-def poll(condition: Callable[[], bool], *, timeout: float = 15.0) -> bool:
-    """True once ``condition()`` holds, False after ``timeout`` seconds (a bounded wait, not a timing check)."""
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if condition():
-            return True
-        time.sleep(0.05)
-    return condition()
-
-
-def metric_value(text: str, sample: str, **labels: str) -> float:
-    """A sample's value in a Prometheus text exposition (parsed by the client library's own parser)."""
-    from prometheus_client.parser import text_string_to_metric_families
-
-    for family in text_string_to_metric_families(text):
-        for s in family.samples:
-            if s.name == sample and all(s.labels.get(k) == v for k, v in labels.items()):
-                return float(s.value)
-    raise AssertionError(f"no sample {sample} {labels} in the metrics")

@@ -16,7 +16,7 @@ from calibration.cli import main as cli_main
 from service.main import create_app
 from service.schemas import ScoreResponse
 from service.settings import Settings
-from tests.service.conftest import auth, example_bundle, metric_value
+from tests.helpers import auth, example_bundle, metric_value
 
 SCORE = {"responses": [{"id": "a", "group": "tablet", "answers": {"T1": 1, "T2": 0, "T3": 1, "T5": 1}}]}
 
@@ -120,7 +120,7 @@ def test_operations_routes_need_no_key(keyed_settings: Settings) -> None:
 
 
 def test_limits_answer_413_problems(example_store: Path) -> None:
-    from tests.service.conftest import example_keys
+    from tests.helpers import example_keys
 
     settings = Settings(
         store=str(example_store), api_keys=example_keys(), max_vectors=3, max_body_bytes=2048, log_level="warning"

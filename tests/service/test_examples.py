@@ -9,7 +9,7 @@ from fastapi.testclient import TestClient
 
 from service.main import create_app
 from service.settings import Settings
-from tests.service.conftest import CASES, EXAMPLES, auth
+from tests.helpers import CASES, EXAMPLES, auth
 
 
 def _same(actual: object, expected: object) -> bool:

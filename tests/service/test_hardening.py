@@ -27,7 +27,7 @@ from calibration.bundle.schema import Bundle
 from calibration.bundle.store import STALE_TEMP_SECONDS
 from service.main import create_app
 from service.settings import Settings
-from tests.service.conftest import (
+from tests.helpers import (
     auth,
     example_bundle,
     example_keys,

@@ -14,7 +14,7 @@ from calibration.bundle import BundleNotFound, VersionConflict, seal
 from calibration.bundle.redis_store import RedisStore, StoreUnavailable
 from service.main import create_app
 from service.settings import Settings
-from tests.service.conftest import auth, example_bundle, example_keys, live_server, poll
+from tests.helpers import auth, example_bundle, example_keys, live_server, poll
 
 SCORE = {"responses": [{"id": "a", "group": "tablet", "answers": {"T1": 1, "T2": 0, "T3": 1, "T5": 1}}]}
 

@@ -21,7 +21,7 @@ from schemathesis.specs.openapi.checks import positive_data_acceptance
 from calibration.bundle import DirectoryStore
 from service.main import create_app
 from service.settings import Settings
-from tests.service.conftest import auth, example_bundle, example_keys, live_server
+from tests.helpers import auth, example_bundle, example_keys, live_server
 
 _SCHEMA_STORE = tempfile.mkdtemp(prefix="equitheta-schema-")
 schema = schemathesis.openapi.from_dict(create_app(Settings(store=_SCHEMA_STORE, api_keys=example_keys())).openapi())

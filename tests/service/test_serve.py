@@ -9,7 +9,7 @@ from pathlib import Path
 
 import httpx
 
-from tests.service.conftest import free_port
+from tests.helpers import free_port
 
 
 def test_serve_runs_uvicorn_over_a_directory_store(example_store: Path) -> None:

@@ -10,7 +10,7 @@ from statsmodels.stats.multitest import multipletests
 from calibration.dif.irt import DifSettings, benjamini_hochberg, effect_size, run_irt_dif, test_items
 from calibration.estimation.em import EMSettings, calibrate_groups
 from calibration.irt.models import ItemParameters, log_category_probabilities
-from tests.conftest import simulate_responses
+from tests.helpers import simulate_responses
 
 
 def _groups_data(

@@ -15,7 +15,7 @@ from calibration.dif.observed import (
     polytomous_category,
     screen_observed,
 )
-from tests.conftest import load_reference, simulate_responses
+from tests.helpers import load_reference, simulate_responses
 
 
 def test_mh_matches_published_strata() -> None:

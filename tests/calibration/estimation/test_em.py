@@ -18,7 +18,7 @@ from calibration.estimation import (
 )
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import ItemParameters, log_category_probabilities
-from tests.conftest import simulate_responses
+from tests.helpers import simulate_responses
 
 TWO = np.full(5, 2)
 

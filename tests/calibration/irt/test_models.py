@@ -12,7 +12,7 @@ from calibration.irt.models import (
     item_information,
     log_category_probabilities,
 )
-from tests.conftest import load_reference
+from tests.helpers import load_reference
 
 
 @pytest.fixture

@@ -20,7 +20,7 @@ from calibration.irt.scoring import (
     summed_score_likelihoods,
     summed_score_table,
 )
-from tests.conftest import simulate_responses
+from tests.helpers import simulate_responses
 
 
 @pytest.fixture
