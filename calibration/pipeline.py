@@ -23,6 +23,7 @@ from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 
 import numpy as np
+from pydantic import ValidationError
 from scipy import stats
 
 from calibration import __version__
@@ -452,44 +453,54 @@ def calibrate_data(
         elif reference_params.slopes[j] > 4:
             notes.append(f"item {item!r}: slope {reference_params.slopes[j]:.2f} is very large (near-Heywood?)")
 
-    bundle = _assemble(
-        data=data,
-        name=name,
-        settings=settings,
-        fit=fit,
-        x=x,
-        item_ids=item_ids,
-        models=models,
-        k=k,
-        group_names=group_names,
-        group_index=group_index,
-        status=status,
-        reasons=reasons,
-        evidence=evidence,
-        excluded_items=excluded_items,
-        anchors=anchors_record,
-        by_group=by_group,
-        notes=notes,
-        category_maps=category_maps,
-        dif=(
-            DifReport(
-                settings=DifSettingsRecord(
-                    fdr_alpha=settings.dif.alpha,
-                    effect_moderate=settings.dif.effect_moderate,
-                    effect_large=settings.dif.effect_large,
-                    action=settings.dif_action,  # type: ignore[arg-type]
-                    mh_greater_than_one_z=settings.mh_greater_than_one_z,
-                    anchor_fraction=settings.dif.anchor_fraction,
-                    min_anchors=settings.dif.min_anchors,
-                ),
-                observed=observed_rows,
-                irt=irt_rows,
-            )
-            if n_groups > 1
-            else None
-        ),
-        ladder=ladder,
-    )
+    try:
+        bundle = _assemble(
+            data=data,
+            name=name,
+            settings=settings,
+            fit=fit,
+            x=x,
+            item_ids=item_ids,
+            models=models,
+            k=k,
+            group_names=group_names,
+            group_index=group_index,
+            status=status,
+            reasons=reasons,
+            evidence=evidence,
+            excluded_items=excluded_items,
+            anchors=anchors_record,
+            by_group=by_group,
+            notes=notes,
+            category_maps=category_maps,
+            dif=(
+                DifReport(
+                    settings=DifSettingsRecord(
+                        fdr_alpha=settings.dif.alpha,
+                        effect_moderate=settings.dif.effect_moderate,
+                        effect_large=settings.dif.effect_large,
+                        action=settings.dif_action,  # type: ignore[arg-type]
+                        mh_greater_than_one_z=settings.mh_greater_than_one_z,
+                        anchor_fraction=settings.dif.anchor_fraction,
+                        min_anchors=settings.dif.min_anchors,
+                    ),
+                    observed=observed_rows,
+                    irt=irt_rows,
+                )
+                if n_groups > 1
+                else None
+            ),
+            ladder=ladder,
+        )
+    except ValidationError as exc:
+        # An estimate outside the publishable ranges (a runaway slope, a latent mean off the grid): say which,
+        # before anything is published, instead of a traceback after the long steps.
+        problems = "; ".join(e["msg"].removeprefix("Value error, ") for e in exc.errors()[:5])
+        raise CalibrationInputError(
+            f"{data.source}: the calibration produced values that cannot be published ({problems}); a slope "
+            "this large is a near-Heywood case (the item is almost a step function of the others): leave the item "
+            "out with an item spec (--items, include=no) or calibrate with a slope prior (--slope-prior-sd)"
+        ) from exc
     return CalibrationOutcome(bundle=bundle, fit=fit, warnings=tuple(notes), dif=dif_outcome)
 
 

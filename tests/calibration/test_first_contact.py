@@ -472,3 +472,23 @@ def test_schema_1_bundles_still_read(tmp_path: Path) -> None:
     assert south is not None and south.residual_pca_first_eigenvalue is not None
     assert BundleScorer(bundle).plans["south"].columns.size == len(bundle.items) - 1
     assert PipelineSettings().min_group_size == 30
+
+
+def test_runaway_estimates_are_refused_naming_the_item_and_nothing_is_published(
+    tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    # Invented data: Q0 is a deterministic step function of the other items, so its ML slope runs away.
+    rng = np.random.default_rng(3)
+    theta = rng.normal(size=1500)
+    p = 1 / (1 + np.exp(-(theta[:, None] - np.linspace(-1, 1, 7))))
+    x = (rng.random(p.shape) < p).astype(int)
+    frame = pd.DataFrame(np.column_stack([(x.sum(axis=1) >= 4).astype(int), x]), columns=[f"Q{j}" for j in range(8)])
+    frame.insert(0, "id", range(1500))
+    data = tmp_path / "step.csv"
+    frame.to_csv(data, index=False)
+    store = tmp_path / "store"
+    assert main(["calibrate", str(data), "--name", "step", "--store", str(store), "--max-iter", "300"]) == 2
+    err = capsys.readouterr().err
+    assert "cannot be published (item 'Q0': slope" in err and "is outside -20..20" in err
+    assert "include=no" in err
+    assert DirectoryStore(store).names() == []
