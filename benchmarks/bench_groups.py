@@ -25,6 +25,7 @@ from benchmarks.common import machine
 from calibration.dif.irt import DifSettings, run_irt_dif
 from calibration.estimation.em import ConvergenceWarning, EMSettings, calibrate_groups
 from calibration.io import ResponseData
+from calibration.irt.simulate import simulate_responses
 from calibration.pipeline import calibrate_data
 
 
@@ -45,8 +46,7 @@ def simulate(
             if gg == g:
                 cg[j] -= shift  # lower intercept: harder for the focal group
         theta = rng.normal(mean, sd, n_per_group)
-        p = 1.0 / (1.0 + np.exp(-(a * theta[:, None] + cg)))
-        blocks.append((rng.random(p.shape) < p).astype(float))
+        blocks.append(simulate_responses(a, -cg / a, theta, rng))  # threshold b = -c / a
         labels.append(np.full(n_per_group, g))
     return np.vstack(blocks), np.concatenate(labels)
 

@@ -13,13 +13,12 @@ import numpy as np
 
 from benchmarks.common import machine
 from calibration.estimation import calibrate_single_group
+from calibration.irt.simulate import simulate_responses
 
 
 def simulate(rng: np.random.Generator, a: np.ndarray, b: np.ndarray, n: int) -> np.ndarray:
     theta = rng.normal(size=n)
-    z = a[None, :, None] * (theta[:, None, None] - b[None, :, :])
-    star = np.where(np.isnan(z), 0.0, 1.0 / (1.0 + np.exp(-np.nan_to_num(z))))
-    x = np.sum(rng.random((n, a.size, 1)) < star, axis=2).astype(float)
+    x = simulate_responses(a, b, theta, rng)
     x[rng.random(x.shape) < 0.2] = np.nan
     return x
 

@@ -11,6 +11,8 @@ from typing import Any
 import numpy as np
 import threadpoolctl
 
+from calibration.irt.simulate import simulate_responses
+
 
 def machine() -> str:
     blas = threadpoolctl.threadpool_info()
@@ -29,8 +31,7 @@ def two_pl_data(n_persons: int, n_items: int, seed: int) -> tuple[np.ndarray, np
     a = rng.uniform(0.6, 2.0, n_items)
     b = rng.normal(0.0, 1.0, n_items)
     theta = rng.normal(size=n_persons)
-    p = 1.0 / (1.0 + np.exp(-a * (theta[:, None] - b)))
-    return (rng.random((n_persons, n_items)) < p).astype(np.float64), a, b
+    return simulate_responses(a, b, theta, rng), a, b
 
 
 def timed(fn: Callable[[], Any], repeat: int = 1) -> tuple[float, Any]:

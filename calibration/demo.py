@@ -17,6 +17,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from calibration.irt.simulate import simulate_responses
+
 
 def demo_item_parameters() -> tuple[list[str], np.ndarray, np.ndarray]:
     """Invented generating parameters: item ids, slopes, thresholds (NaN-padded, 3 columns)."""
@@ -86,9 +88,7 @@ def make_demo_responses(
     if with_sites and with_dif:
         location[site == 1, ids.index("NUM06"), 0] += 0.8  # harder at marsh-creek
         slope[site == 2, ids.index("DIG07")] *= 0.45  # weaker at ridgeview
-    z = slope[:, :, None] * (theta[:, None, None] - location)
-    star = np.where(np.isnan(z), 0.0, 1.0 / (1.0 + np.exp(-np.nan_to_num(z))))
-    codes = np.sum(rng.random((n_respondents, len(ids), 1)) < star, axis=2).astype(float)
+    codes = simulate_responses(slope, location, theta, rng)
     short_form = rng.random(n_respondents) < 0.25
     dropped = rng.random((n_respondents, len(ids))) < 0.32
     codes[short_form[:, None] & dropped] = np.nan

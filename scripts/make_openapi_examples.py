@@ -20,6 +20,7 @@ sys.path.insert(0, str(ROOT))
 
 from calibration.bundle import DirectoryStore  # noqa: E402
 from calibration.io import ResponseData  # noqa: E402
+from calibration.irt.simulate import simulate_responses  # noqa: E402
 from calibration.pipeline import calibrate_data  # noqa: E402
 
 # Example API keys: public on purpose (examples only); the app in the replay test trusts their hashes.
@@ -38,8 +39,7 @@ def example_bundle():  # type: ignore[no-untyped-def]
         bg = b.copy()
         if g == 1:
             bg[3] += 0.9  # task T4 is harder on a tablet
-        p = 1 / (1 + np.exp(-a * (theta[:, None] - bg)))
-        blocks.append((rng.random(p.shape) < p).astype(float))
+        blocks.append(simulate_responses(a, bg, theta, rng))
         modes += [mode] * 900
     x = np.vstack(blocks)
     data = ResponseData(

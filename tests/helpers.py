@@ -18,10 +18,12 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-import numpy as np
 import pytest
 
 from calibration.bundle import Bundle
+from calibration.irt.simulate import simulate_responses
+
+__all__ = ["simulate_responses"]  # the library's generator, for the simulations in the tests
 
 if TYPE_CHECKING:
     from fastapi import FastAPI
@@ -31,25 +33,6 @@ DATA = Path(__file__).parent / "data"
 
 def load_reference(name: str) -> dict:
     return json.loads((DATA / name).read_text())
-
-
-def simulate_responses(
-    slopes: np.ndarray,
-    thresholds: np.ndarray,
-    theta: np.ndarray,
-    rng: np.random.Generator,
-) -> np.ndarray:
-    """Graded (or 2PL) responses drawn from the model; thresholds NaN-padded per item.
-
-    Used only for simulations (recovery studies); the reference checks use outside data.
-    """
-    thresholds = np.atleast_2d(np.asarray(thresholds, dtype=np.float64))
-    if thresholds.shape[0] != slopes.shape[0]:
-        thresholds = thresholds.T
-    z = slopes[None, :, None] * (theta[:, None, None] - thresholds[None, :, :])
-    star = np.where(np.isnan(z), 0.0, 1.0 / (1.0 + np.exp(-np.nan_to_num(z))))
-    u = rng.random((theta.shape[0], slopes.shape[0], 1))
-    return np.sum(u < star, axis=2).astype(np.float64)
 
 
 EXAMPLES = Path(__file__).parents[1] / "openapi_examples"
