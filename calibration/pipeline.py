@@ -81,7 +81,14 @@ from calibration.quality.classical import (
     ITEM_REST_MINIMUM,
     classical_statistics,
 )
-from calibration.quality.model_fit import dimensionality, item_fit
+from calibration.quality.model_fit import (
+    EIGENVALUE_RATIO_MINIMUM,
+    RESIDUAL_EIGENVALUE_MAXIMUM,
+    RMSD_WARNING,
+    S_X2_MISFIT_P,
+    dimensionality,
+    item_fit,
+)
 
 SINGLE_GROUP = "all"
 # About 500 respondents per group is a common floor for 2PL/GRM calibration
@@ -879,23 +886,26 @@ def _quality_warnings(quality: GroupQuality, group: str | None) -> list[str]:
                 f"{where}item {item!r}: item-rest correlation {q.item_rest_correlation:.3f} is below "
                 f"{ITEM_REST_MINIMUM} (common practice)"
             )
-        if q.rmsd is not None and q.rmsd > 0.1:
+        if q.rmsd is not None and q.rmsd > RMSD_WARNING:
             out.append(
-                f"{where}item {item!r}: RMSD {q.rmsd:.3f} above 0.10 (common practice): the model curve "
+                f"{where}item {item!r}: RMSD {q.rmsd:.3f} above {RMSD_WARNING:.2f} (common practice): the model curve "
                 "misses this group's observed curve"
             )
-        if q.s_x2_p is not None and q.s_x2_p < 0.001:
-            out.append(f"{where}item {item!r}: S-X2 = {q.s_x2:.1f} (df {q.s_x2_df}), p < .001: item misfit")
+        if q.s_x2_p is not None and q.s_x2_p < S_X2_MISFIT_P:
+            out.append(
+                f"{where}item {item!r}: S-X2 = {q.s_x2:.1f} (df {q.s_x2_df}), p < {S_X2_MISFIT_P:g}: item misfit"
+            )
     dims = quality.dimensionality
-    if dims is not None and dims.eigenvalue_ratio is not None and dims.eigenvalue_ratio < 3:
+    if dims is not None and dims.eigenvalue_ratio is not None and dims.eigenvalue_ratio < EIGENVALUE_RATIO_MINIMUM:
         out.append(
-            f"{where}first-to-second eigenvalue ratio {dims.eigenvalue_ratio:.3f} is below 3 "
+            f"{where}first-to-second eigenvalue ratio {dims.eigenvalue_ratio:.3f} is below "
+            f"{EIGENVALUE_RATIO_MINIMUM:g} "
             "(rule of thumb, Raiche 2005 recalled from memory): check unidimensionality"
         )
     residual = None if dims is None else dims.residual_pca_first_eigenvalue
-    if residual is not None and residual > 2:
+    if residual is not None and residual > RESIDUAL_EIGENVALUE_MAXIMUM:
         out.append(
-            f"{where}largest eigenvalue of the residual PCA {residual:.2f} is above 2 "
+            f"{where}largest eigenvalue of the residual PCA {residual:.2f} is above {RESIDUAL_EIGENVALUE_MAXIMUM:g} "
             "(rule of thumb): a second dimension may be present"
         )
     return out

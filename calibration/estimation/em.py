@@ -33,6 +33,7 @@ from typing import Any
 import numpy as np
 
 from calibration.irt.likelihood import (
+    CALIBRATION_GRID,
     DEFAULT_CHUNK,
     QuadratureGrid,
     ResponseDesign,
@@ -89,7 +90,7 @@ class EMSettings:
 
     max_iter: int = 1000
     tolerance: float = 1e-5
-    quadrature: QuadratureGrid = field(default_factory=lambda: QuadratureGrid(49, -6.0, 6.0))
+    quadrature: QuadratureGrid = field(default_factory=lambda: CALIBRATION_GRID)
     slope_prior: SlopePrior | None = None
     m_step_iter: int = 4
     accelerate: bool = True

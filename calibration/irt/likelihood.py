@@ -94,6 +94,10 @@ class QuadratureGrid:
         return np.linspace(self.lower, self.upper, self.n_points)
 
 
+# The calibration's grid: 49 equally spaced points on -6..6 (equitheta's own default; scoring uses 61).
+CALIBRATION_GRID = QuadratureGrid(49, -6.0, 6.0)
+
+
 def normal_log_weights(points: FloatArray, mean: float = 0.0, sd: float = 1.0) -> FloatArray:
     """Log prior weights of a normal latent density at the points, normalised to sum to 1."""
     z = (points - mean) / sd

@@ -22,11 +22,27 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from calibration.irt.likelihood import QuadratureGrid, build_design, log_likelihood_grid, normal_log_weights
+from calibration.irt.likelihood import (
+    CALIBRATION_GRID,
+    QuadratureGrid,
+    build_design,
+    log_likelihood_grid,
+    normal_log_weights,
+)
 from calibration.irt.models import FloatArray, IntArray, ItemParameters, category_probabilities, expected_item_scores
 from calibration.irt.scoring import summed_score_likelihoods
 
 MIN_COMPLETE_ROWS = 100
+# Warning thresholds (rules of thumb; see REFERENCES in the docs of each): RMSD above this misses the
+# group's observed curve (common practice), S-X2 below this p is misfit, a first-to-second eigenvalue
+# ratio below this questions unidimensionality (Raiche 2005, recalled from memory), a residual-PCA
+# eigenvalue above this suggests a second dimension.
+RMSD_WARNING = 0.10
+S_X2_MISFIT_P = 0.001
+EIGENVALUE_RATIO_MINIMUM = 3.0
+RESIDUAL_EIGENVALUE_MAXIMUM = 2.0
+# Floor for a probability that divides (an expected count of 0 is 0, not NaN).
+PROBABILITY_FLOOR = 1e-300
 
 
 @dataclass(frozen=True)
@@ -54,7 +70,7 @@ def item_fit(
     latent_sd: float = 1.0,
     grid: QuadratureGrid | None = None,
 ) -> ItemFit:
-    grid = grid or QuadratureGrid(49, -6.0, 6.0)
+    grid = grid or CALIBRATION_GRID
     points = grid.points
     weights = np.exp(normal_log_weights(points, latent_mean, latent_sd))
     n_items = params.n_items
@@ -87,7 +103,7 @@ def _s_x2(
             for k in range(k_j):
                 if 0 <= s - k < rest.shape[0]:
                     expected[row, k] = (prob[j, k] * rest[s - k]) @ weights
-            expected[row] /= max(full[s], 1e-300)
+            expected[row] /= max(full[s], PROBABILITY_FLOOR)
         n_s = np.array([(totals == s).sum() for s in scores], dtype=np.float64)
         observed = np.array(
             [[np.sum((totals == s) & (x[:, j] == k)) for k in range(k_j)] for s in scores], dtype=np.float64
