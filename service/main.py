@@ -386,6 +386,12 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
 
 
 # -- app ----------------------------------------------------------------------------------------------
+def publish_answer(stored: Bundle, created: bool) -> Any:
+    """201 with the new version, or 200 naming the version that already held this content."""
+    result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
+    return result if created else JSONResponse(result.model_dump(), status_code=200)
+
+
 def registry_dep(request: Request) -> BundleRegistry:
     return request.app.state.registry  # type: ignore[no-any-return]
 
@@ -639,9 +645,7 @@ def create_app(settings: Settings) -> FastAPI:
                 f"the document is {bundle.name}@{bundle.version} but the path names {name}@{version}",
                 field="body.version" if bundle.name == name else "body.name",
             )
-        stored, created = registry.put_version(bundle)
-        result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
-        return result if created else JSONResponse(result.model_dump(), status_code=200)
+        return publish_answer(*registry.put_version(bundle))
 
     @app.post(
         "/v1/bundles/{name}/versions",
@@ -665,9 +669,7 @@ def create_app(settings: Settings) -> FastAPI:
         """
         if bundle.name != name:
             raise InvalidBundle(f"the document is named {bundle.name!r} but the path names {name!r}", field="body.name")
-        stored, created = registry.publish(bundle)
-        result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
-        return result if created else JSONResponse(result.model_dump(), status_code=200)
+        return publish_answer(*registry.publish(bundle))
 
     @app.put(
         "/v1/bundles/{name}/aliases/{alias}",
