@@ -122,11 +122,19 @@ def read_header(path: Path | str) -> list[str]:
     if _is_parquet(path):
         import pyarrow.parquet as pq
 
-        return [str(c).strip() for c in pq.read_schema(path).names]
+        return _unique_header(path, [str(c).strip() for c in pq.read_schema(path).names])
     try:
-        return [c.strip() for c in _header_fields(path)[0]]
+        return _unique_header(path, [c.strip() for c in _header_fields(path)[0]])
     except (UnicodeDecodeError, OSError) as exc:
         raise InputError(path.name, [f"cannot be read as CSV: {exc}"]) from exc
+
+
+def _unique_header(path: Path, names: list[str]) -> list[str]:
+    """The names, unless one repeats: it would be read as one column or renamed, so it is refused."""
+    repeated = sorted({c for c in names if names.count(c) > 1})
+    if repeated:
+        raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in repeated])
+    return names
 
 
 def _check_file(path: Path) -> None:
@@ -170,11 +178,7 @@ def _read_table(path: Path) -> TextTable:
     import pyarrow.csv as pa_csv
 
     first, delimiter = _header_fields(path)
-    names = [c.strip() for c in first]
-    # A repeated header would be read as one column or renamed: refuse instead.
-    repeated = sorted({c for c in names if names.count(c) > 1})
-    if repeated:
-        raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in repeated])
+    names = _unique_header(path, [c.strip() for c in first])
     try:
         table = pa_csv.read_csv(
             path,
@@ -221,11 +225,7 @@ def _open_respondent_table(path: Path, id_column: str, group_column: str | None)
 
     The header is checked before the rows are parsed, so a header problem answers at once.
     """
-    columns = read_header(path)
-    duplicated = sorted({c for c in columns if columns.count(c) > 1})
-    if duplicated:
-        raise InputError(path.name, [f"column {c!r} appears more than once in the header" for c in duplicated])
-    _check_required_columns(path, columns, id_column, group_column)
+    _check_required_columns(path, read_header(path), id_column, group_column)
     table = _read_table(path)
     if table.n_rows == 0:
         raise InputError(path.name, ["the file has a header but no respondents"])
@@ -597,16 +597,15 @@ def _categories_and_models(
 
 def _code_ranges(codes: list[int]) -> str:
     """``[0, 1, 2, 5, 7, 8]`` -> ``"0-2, 5, 7, 8"`` (runs of three or more as a range)."""
+    runs: list[list[int]] = []
+    for c in codes:
+        if runs and c == runs[-1][-1] + 1:
+            runs[-1].append(c)
+        else:
+            runs.append([c])
     parts: list[str] = []
-    start = prev = None
-    for c in codes + [None]:  # type: ignore[list-item]
-        if start is not None and (c is None or c != prev + 1):  # type: ignore[operator]
-            run = list(range(start, prev + 1))  # type: ignore[operator]
-            parts.extend(map(str, run)) if len(run) < 3 else parts.append(f"{start}-{prev}")
-            start = None
-        if c is not None and start is None:
-            start = c
-        prev = c
+    for run in runs:
+        parts.extend([f"{run[0]}-{run[-1]}"] if len(run) >= 3 else map(str, run))
     return ", ".join(parts)
 
 
@@ -633,7 +632,8 @@ def _unused_categories_problem(item: str, column: FloatArray, counts: IntArray, 
     )
 
 
-def _umask() -> int:
+def current_umask() -> int:
+    """The process's umask (read by setting it and putting it back)."""
     mask = os.umask(0)
     os.umask(mask)
     return mask
@@ -647,7 +647,7 @@ def write_csv_atomic(frame: pd.DataFrame, path: Path) -> None:
     try:
         with os.fdopen(fd, "w", newline="", encoding="utf-8") as handle:
             frame.to_csv(handle, index=False, float_format="%.6f")
-        os.chmod(tmp, 0o666 & ~_umask())  # the temporary file is 0600; the output follows the umask
+        os.chmod(tmp, 0o666 & ~current_umask())  # the temporary file is 0600; the output follows the umask
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):

@@ -550,16 +550,14 @@ def create_app(settings: Settings) -> FastAPI:
             return body
         return JSONResponse(body.model_dump(), status_code=503)
 
-    def open_route_principal(
+    def metrics_guard(
         request: Request,
         authorization: Annotated[str | None, Header(description="Bearer <API key>")] = None,
         x_api_key: Annotated[str | None, Header(description="the API key (alternative header)")] = None,
-    ) -> Principal | None:
-        return None if settings.metrics_scope is None else principal_dep(request, authorization, x_api_key)
-
-    def metrics_guard(principal: Principal | None = Depends(open_route_principal)) -> None:  # noqa: B008
-        if principal is not None and settings.metrics_scope is not None:
-            KeyRing.require(principal, settings.metrics_scope)
+    ) -> None:
+        # Open by default like /healthz and /readyz (scrapers rarely carry keys); a setting closes it.
+        if settings.metrics_scope is not None:
+            KeyRing.require(principal_dep(request, authorization, x_api_key), settings.metrics_scope)
 
     @app.get(
         "/metrics",

@@ -51,6 +51,7 @@ from calibration.errors import (
     InvalidReference,
     VersionConflict,
 )
+from calibration.io import current_umask
 
 DEFAULT_ALIAS = "production"
 
@@ -174,12 +175,6 @@ ALIAS_FILE_MODE = 0o644
 TEMP_PREFIXES = (".incoming-", ".aliases-")
 
 
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
-
-
 class DirectoryStore:
     """Bundles as files under a directory (see the module docstring for the layout)."""
 
@@ -294,7 +289,7 @@ class DirectoryStore:
                 handle.write(to_bytes(bundle))
                 handle.flush()
                 os.fsync(handle.fileno())
-            os.chmod(tmp, VERSION_FILE_MODE & ~_umask())
+            os.chmod(tmp, VERSION_FILE_MODE & ~current_umask())
             os.link(tmp, target)  # fails with FileExistsError if the version exists
         finally:
             os.unlink(tmp)
@@ -370,7 +365,7 @@ class DirectoryStore:
                 json.dump(data, handle, sort_keys=True, indent=1)
                 handle.flush()
                 os.fsync(handle.fileno())
-            os.chmod(tmp, ALIAS_FILE_MODE & ~_umask())
+            os.chmod(tmp, ALIAS_FILE_MODE & ~current_umask())
             os.replace(tmp, directory / "aliases.json")
         except BaseException:
             if os.path.exists(tmp):

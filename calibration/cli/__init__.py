@@ -13,8 +13,12 @@ import argparse
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from calibration import __version__
+
+if TYPE_CHECKING:
+    from calibration.bundle.store import BundleStore
 
 EXIT_OK, EXIT_UNEXPECTED, EXIT_INPUT, EXIT_BUNDLE = 0, 1, 2, 3
 
@@ -27,7 +31,7 @@ class UsageError(Exception):
 REDIS_PREFIX_VARIABLE = "EQUITHETA_REDIS_PREFIX"
 
 
-def store_from(location: str):  # type: ignore[no-untyped-def]
+def store_from(location: str) -> BundleStore:
     """The store a ``--store`` value names (a redis:// URL takes its key prefix from EQUITHETA_REDIS_PREFIX)."""
     import os
 

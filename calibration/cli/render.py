@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from calibration.bundle.schema import Bundle, IrtDifRow, ObservedDifRow
 from calibration.cli.console import dash, new_table, out_console
+from calibration.dif.intervals import effect_interval
 
 CAUTION = (
     "Every score carries measurement error: report the SE with it. Scores with low reliability or few "
@@ -122,8 +123,8 @@ def _irt_text(row: IrtDifRow | None) -> tuple[str, str, str]:
         return "-", "-", "-"
     effect = dash(row.effect_theta, ".2f")
     if row.effect_theta is not None and row.effect_theta_se is not None:
-        low = max(row.effect_theta - 1.96 * row.effect_theta_se, 0.0)
-        effect += f" [{low:.2f}, {row.effect_theta + 1.96 * row.effect_theta_se:.2f}]"
+        low, high = effect_interval(row.effect_theta, row.effect_theta_se)
+        effect += f" [{low:.2f}, {high:.2f}]"
     return f"{row.g2_omnibus:.1f} ({row.df_omnibus})", dash(row.p_adjusted, ".3g"), f"{effect} {row.level}"
 
 

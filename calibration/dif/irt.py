@@ -39,6 +39,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 from scipy import stats
 
+from calibration.dif.intervals import effect_interval
 from calibration.estimation.em import (
     EMSettings,
     GroupLayout,
@@ -83,10 +84,6 @@ class DifSettings:
     sub_tolerance: float = 1e-3
 
 
-# Two-sided 95% normal quantile for the effect-size interval.
-EFFECT_Z = float(stats.norm.ppf(0.975))
-
-
 @dataclass(frozen=True)
 class ItemGroupTest:
     """LR tests and effect size for one item in one focal group."""
@@ -110,8 +107,7 @@ class ItemGroupTest:
 
     def effect_interval(self) -> tuple[float, float]:
         """95% interval of the unsigned effect, clipped at 0 (NaN bounds without an SE)."""
-        half = EFFECT_Z * self.effect_theta_se
-        return max(self.effect_theta - half, 0.0), self.effect_theta + half
+        return effect_interval(self.effect_theta, self.effect_theta_se)
 
     def level(self, settings: DifSettings) -> str:
         """The effect band that the whole 95% interval lies in, else ``uncertain``.
