@@ -23,7 +23,7 @@ import numpy as np
 
 from benchmarks.common import machine
 from calibration.dif.irt import DifSettings, run_irt_dif
-from calibration.estimation.em import ConvergenceWarning, EMSettings, calibrate_groups
+from calibration.estimation import ConvergenceWarning, EMSettings, calibrate_groups
 from calibration.io import ResponseData
 from calibration.irt.simulate import simulate_responses
 from calibration.pipeline import calibrate_data

@@ -58,7 +58,7 @@ from calibration.dif.irt import DifOutcome, DifSettings, ItemGroupTest, run_irt_
 from calibration.dif.logistic import logistic_dif
 from calibration.dif.observed import ObservedScreening, matching_scores, screen_observed
 from calibration.errors import CalibrationInputError
-from calibration.estimation.em import (
+from calibration.estimation import (
     EMSettings,
     LatentSpec,
     MultiGroupFit,
@@ -68,13 +68,9 @@ from calibration.estimation.em import (
 from calibration.io import ResponseData, finite_or_none
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import ItemParameters
-from calibration.irt.scoring import (
-    NormalPrior,
-    eap_scores,
-    information_curve,
-    marginal_reliability,
-    summed_score_table,
-)
+from calibration.irt.reliability import information_curve, marginal_reliability
+from calibration.irt.scoring import NormalPrior, eap_scores
+from calibration.irt.summed_scores import summed_score_table
 from calibration.quality.classical import (
     ALPHA_GROUP_USE,
     ALPHA_INDIVIDUAL_DECISIONS,

@@ -19,7 +19,9 @@ from calibration.bundle.schema import Bundle
 from calibration.errors import UnknownGroup
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
-from calibration.irt.scoring import METHODS, NormalPrior, ReportingScale, person_fit_lz, score, score_tables
+from calibration.irt.person_fit import person_fit_lz
+from calibration.irt.reporting_scale import ReportingScale
+from calibration.irt.scoring import METHODS, NormalPrior, score, score_tables
 
 FLAG_NO_ANSWERS = "no_answers"
 FLAG_FEW_ITEMS = "few_items"

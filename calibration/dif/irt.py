@@ -40,32 +40,25 @@ import numpy as np
 from scipy import stats
 
 from calibration.dif.intervals import effect_interval
-from calibration.estimation.em import (
+from calibration.estimation import (
     EMSettings,
-    GroupLayout,
+    HeldItemFit,
     LatentSpec,
     MultiGroupFit,
     calibrate_groups,
-    item_gradient,
-    latent_score,
-    latent_update,
-    m_step,
-    observed_covariance,
-    params_from_table,
-    run_em,
+    fit_item_given_offsets,
 )
 from calibration.irt.likelihood import (
     QuadratureGrid,
     build_design,
     log_likelihood_grid,
-    normal_log_weights,
+    normal_weights,
     split_log_table,
 )
 from calibration.irt.models import (
     FloatArray,
     IntArray,
     ItemParameters,
-    category_probabilities,
     category_probability_derivatives,
     expected_item_scores,
 )
@@ -139,8 +132,7 @@ def benjamini_hochberg(p_values: FloatArray) -> FloatArray:
 def effect_size(reference: ItemParameters, focal: ItemParameters, mean: float, sd: float) -> tuple[float, float]:
     """Theta-scale effect (unsigned, signed) of one item (see the module docstring)."""
     theta = np.linspace(mean - 5 * sd, mean + 5 * sd, 201)
-    w = np.exp(-0.5 * ((theta - mean) / sd) ** 2)
-    w /= w.sum()
+    w = normal_weights(theta, mean, sd)
     e_ref = expected_item_scores(reference, theta)[0]
     e_foc = expected_item_scores(focal, theta)[0]
     k = np.arange(reference.max_categories, dtype=np.float64)
@@ -175,114 +167,14 @@ def _item_loglik(params: ItemParameters, j: int, x: FloatArray, points: FloatArr
     return log_likelihood_grid(one, points, design, tables=split_log_table(one, points, design))
 
 
-@dataclass(frozen=True)
-class _Rows:
-    """One group's rows for a studied item: ``exp(offset - row max)`` split by the item's answer."""
-
-    by_category: list[FloatArray]  # category k -> (n_k, n_points)
-    missing: FloatArray  # rows that did not answer the studied item
-    constant: float  # sum of the row maxima taken out before exp
-
-
-def _split_rows(offset: FloatArray, x: FloatArray, n_categories: int) -> _Rows:
-    peak = offset.max(axis=1)
-    scaled = np.exp(offset - peak[:, None])
-    codes = np.where(np.isnan(x), -1, x).astype(np.int64)
-    return _Rows([scaled[codes == k] for k in range(n_categories)], scaled[codes < 0], float(peak.sum()))
-
-
-def _single_item_e_step(
-    rows: list[_Rows], params: list[ItemParameters], mean: FloatArray, sd: FloatArray, points: FloatArray
-) -> tuple[FloatArray, FloatArray, float]:
-    """E-step of one studied item with every other item held (their likelihood in ``rows``).
-
-    A respondent's posterior is ``E_i(q) P_k(q) w(q) / sum_q'(...)`` with E_i fixed, so the
-    expected counts of category k are ``v_k * (E_k^T (1 / (E_k v_k)))`` with ``v_k = P_k w``:
-    two matrix-vector products per category instead of a pass over the full grid.
-    """
-    n_groups, k_max = len(rows), params[0].max_categories
-    counts = np.zeros((n_groups, 1, k_max, points.size))
-    mass = np.zeros((n_groups, points.size))
-    log_lik = 0.0
-    for h, group_rows in enumerate(rows):
-        w = np.exp(normal_log_weights(points, float(mean[h]), float(sd[h])))
-        prob = category_probabilities(params[h], points)[0]
-        blocks = [(k, e, prob[k] * w) for k, e in enumerate(group_rows.by_category)]
-        blocks.append((-1, group_rows.missing, w))
-        for k, e, v in blocks:
-            if e.shape[0] == 0:
-                continue
-            denominator = e @ v
-            r = v * (e.T @ (1.0 / denominator))
-            if k >= 0:
-                counts[h, 0, k] = r
-            mass[h] += r
-            log_lik += float(np.log(denominator).sum())
-        log_lik += group_rows.constant
-    return counts, mass, log_lik
-
-
-@dataclass(frozen=True)
-class _SingleItemFit:
-    log_likelihood: float
-    tables: FloatArray  # (2, 1, K): reference and focal (slope, intercepts)
-    vector: FloatArray  # free item slots, then the focal mean and SD
-    unpack: Callable[[FloatArray], tuple[FloatArray, FloatArray, FloatArray]]
-    score: Callable[[FloatArray], FloatArray]  # marginal score at a vector (Fisher's identity)
-
-
-def _fit_single_item(
-    rows: list[_Rows],
-    one: ItemParameters,
-    start: FloatArray,
-    latent: LatentSpec,
-    group_free: np.ndarray,
-    settings: EMSettings,
-) -> _SingleItemFit:
-    """Marginal ML of one item's (shared or group-specific) parameters and the focal latent density."""
-    points = settings.quadrature.points
-    layout = GroupLayout.build(one, 2, group_free=group_free)
-    n_item = layout.n_free
-
-    def unpack(vec: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray]:
-        tables = layout.from_vector(vec[:n_item], start)
-        mean, sd = latent.mean.copy(), latent.sd.copy()
-        mean[1], sd[1] = vec[n_item], vec[n_item + 1]
-        return tables, mean, sd
-
-    def e_step(vec: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, float]:
-        tables, mean, sd = unpack(vec)
-        if sd[1] <= 0:
-            raise ValueError("invalid parameters")
-        params = [params_from_table(tables[h], one) for h in range(2)]
-        return (tables, mean, sd, *_single_item_e_step(rows, params, mean, sd, points))
-
-    def em_map(vec: FloatArray) -> tuple[FloatArray, float]:
-        tables, mean, sd, counts, mass, log_lik = e_step(vec)
-        tables = m_step(tables, one, counts, points, layout, prior=None, n_iter=settings.m_step_iter)
-        mean[1], sd[1] = latent_update(mass[1], points, float(mean[1]), float(sd[1]), True, True)
-        return np.concatenate([layout.to_vector(tables), [mean[1], sd[1]]]), log_lik
-
-    def score(vec: FloatArray) -> FloatArray:
-        tables, mean, sd, counts, mass, _ = e_step(vec)
-        latent_part = latent_score(mass[1], points, float(mean[1]), float(sd[1]))
-        return np.concatenate([item_gradient(tables, one, counts, points, layout), latent_part])
-
-    vec0 = np.concatenate([layout.to_vector(start), [latent.mean[1], latent.sd[1]]])
-    vec, _, _, _ = run_em(vec0, em_map, settings, warn=False)
-    tables, _, _, _, _, log_lik = e_step(vec)
-    return _SingleItemFit(log_lik, tables, vec, unpack, score)
-
-
-def _effect_se(fit: _SingleItemFit, one: ItemParameters, mean: float, sd: float) -> float:
+def _effect_se(fit: HeldItemFit, mean: float, sd: float) -> float:
     """Delta-method SE of the unsigned effect: its numerical gradient through the observed covariance."""
-    covariance = observed_covariance(fit.vector, fit.score)
+    covariance = fit.covariance()
     if covariance is None:
         return float("nan")
 
     def effect_at(vec: FloatArray) -> float:
-        tables = fit.unpack(vec)[0]
-        return effect_size(params_from_table(tables[0], one), params_from_table(tables[1], one), mean, sd)[0]
+        return effect_size(fit.group_params(0, vec), fit.group_params(1, vec), mean, sd)[0]
 
     gradient = np.zeros(fit.vector.size)
     for p in range(fit.vector.size):
@@ -310,9 +202,10 @@ def _test_item(
     k_j = int(template.n_categories[j])
     ref, foc = base[0], base[g]
     x_ref, x_foc = responses[ref.rows, j], responses[foc.rows, j]
-    rows = [
-        _split_rows(ref.loglik - _item_loglik(fit.group_params(0), j, x_ref, points), x_ref, k_j),
-        _split_rows(foc.loglik - _item_loglik(fit.group_params(g), j, x_foc, points), x_foc, k_j),
+    answers = [x_ref, x_foc]
+    offsets = [
+        ref.loglik - _item_loglik(fit.group_params(0), j, x_ref, points),
+        foc.loglik - _item_loglik(fit.group_params(g), j, x_foc, points),
     ]
     one = template.subset([j])
     start = np.stack([fit.tables[0, j : j + 1, :k_j], fit.tables[g, j : j + 1, :k_j]])
@@ -329,7 +222,7 @@ def _test_item(
     for free_slots in designs:
         group_free = np.zeros((2, 1, k_j), dtype=bool)
         group_free[1, 0] = free_slots
-        fits.append(_fit_single_item(rows, one, start, latent, group_free, settings))
+        fits.append(fit_item_given_offsets(answers, offsets, one, start, latent, group_free, settings))
     log_liks = [f.log_likelihood for f in fits]
     ll0, ll2 = log_liks[0], log_liks[-1]
     ll1 = log_liks[1] if not omnibus_only else float("nan")
@@ -337,8 +230,7 @@ def _test_item(
     g2_non = max(2 * (ll2 - ll1), 0.0) if not omnibus_only else float("nan")
     g2_uni = max(2 * (ll1 - ll0), 0.0) if not omnibus_only else float("nan")
     final = fits[-1].tables
-    ref_params = params_from_table(final[0], one)
-    foc_params = params_from_table(final[1], one)
+    ref_params, foc_params = fits[-1].group_params(0), fits[-1].group_params(1)
     focal_mean, focal_sd = float(fit.latent_mean[g]), float(fit.latent_sd[g])
     effect, signed = effect_size(ref_params, foc_params, focal_mean, focal_sd)
     return ItemGroupTest(
@@ -356,7 +248,7 @@ def _test_item(
         effect_signed=signed,
         reference_table=final[0, 0].copy(),
         focal_table=final[1, 0].copy(),
-        effect_theta_se=_effect_se(fits[-1], one, focal_mean, focal_sd),
+        effect_theta_se=_effect_se(fits[-1], focal_mean, focal_sd),
     )
 
 

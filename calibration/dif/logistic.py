@@ -19,15 +19,11 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from calibration.irt.models import FloatArray
+from calibration.irt.models import PROBABILITY_FLOOR, FloatArray, boundary_jacobian, log_boundary_difference
 
 NAGELKERKE_MODERATE = 0.035
 NAGELKERKE_LARGE = 0.070
 LOGISTIC_ALPHA = 0.01
-
-
-def _log_sigmoid(z: FloatArray) -> FloatArray:
-    return -np.logaddexp(0.0, -z)
 
 
 def cumulative_logit_loglik(
@@ -36,21 +32,16 @@ def cumulative_logit_loglik(
     """Log-likelihood of the cumulative logit at the given parameters (categories 0 .. K-1)."""
     eta = x @ beta if x.shape[1] else np.zeros(y.shape[0])
     z = eta[:, None] + thresholds[None, :]  # (n, K-1)
-    upper = np.concatenate([np.full((y.size, 1), np.inf), z], axis=1)  # z_k for k = 0 .. K-1
-    lower = np.concatenate([z, np.full((y.size, 1), -np.inf)], axis=1)  # z_{k+1}
-    yi = y.astype(np.int64)
-    u = upper[np.arange(y.size), yi]
-    v = lower[np.arange(y.size), yi]
-    with np.errstate(invalid="ignore"):
-        log_u = np.where(np.isposinf(u), 0.0, _log_sigmoid(u))
-        log_not_v = np.where(np.isneginf(v), 0.0, _log_sigmoid(-v))
-        gap = np.where(np.isposinf(u) | np.isneginf(v), -np.inf, v - u)
-    terms = log_u + log_not_v + np.log(-np.expm1(gap))
+    padded = np.concatenate([np.full((y.size, 1), np.inf), z, np.full((y.size, 1), -np.inf)], axis=1)
+    rows, yi = np.arange(y.size), y.astype(np.int64)
+    terms = log_boundary_difference(padded[rows, yi], padded[rows, yi + 1])
     return float(terms.sum() if weights is None else weights @ terms)
 
 
 @dataclass(frozen=True)
 class CumulativeLogitFit:
+    """Estimates of a cumulative logit: thresholds (intercepts), covariate coefficients, log-likelihood."""
+
     thresholds: FloatArray
     beta: FloatArray
     log_likelihood: float
@@ -83,15 +74,10 @@ def fit_cumulative_logit(
         star = np.ones((n, m + 2))
         star[:, m + 1] = 0.0
         star[:, 1 : m + 1] = 1.0 / (1.0 + np.exp(-(eta[:, None] + thresholds[None, :])))
-        w = star * (1 - star)
-        prob = np.maximum(star[:, :-1] - star[:, 1:], 1e-300)  # (n, K)
+        prob = np.maximum(star[:, :-1] - star[:, 1:], PROBABILITY_FLOOR)  # (n, K)
         # Jacobian of P(Y = k) over (thresholds, beta): (n, K, m + p)
-        jac = np.zeros((n, m + 1, m + p))
-        for t in range(m):
-            jac[:, t + 1, t] += w[:, t + 1]
-            jac[:, t, t] -= w[:, t + 1]
-        dk = w[:, :-1] - w[:, 1:]
-        jac[:, :, m:] = dk[:, :, None] * x[:, None, :]
+        d_thresholds, d_eta = boundary_jacobian(star * (1 - star))
+        jac = np.concatenate([d_thresholds, d_eta[:, :, None] * x[:, None, :]], axis=2)
         observed = jac[np.arange(n), yi, :] / prob[np.arange(n), yi][:, None]
         gradient = w_rows @ observed
         information = np.einsum("nk,nkp,nkr->pr", w_rows[:, None] / prob, jac, jac)

@@ -1,25 +1,29 @@
-"""Marginal maximum likelihood estimation of item parameters (one or many groups)."""
+"""Marginal maximum likelihood estimation of item parameters (one or many groups).
 
-from calibration.estimation.em import (
-    CalibrationFit,
-    ConvergenceWarning,
-    EMSettings,
-    LatentSpec,
-    MultiGroupFit,
-    SlopePrior,
-    calibrate_groups,
-    calibrate_single_group,
-    marginal_log_likelihood,
-)
+The public names are here; the rooms behind them are ``settings``, ``layout`` (parameter
+slots), ``estep``, ``mstep``, ``latent`` (group densities), ``optimizer`` (EM + SQUAREM),
+``start`` (starting values), ``inference`` (covariance, SEs), ``results`` and ``mml`` (the
+estimators).
+"""
+
+from calibration.estimation.inference import threshold_se
+from calibration.estimation.latent import LatentSpec
+from calibration.estimation.mml import HeldItemFit, calibrate_groups, calibrate_single_group, fit_item_given_offsets
+from calibration.estimation.results import CalibrationFit, MultiGroupFit
+from calibration.estimation.settings import ConvergenceWarning, EMSettings, SlopePrior
+from calibration.irt.likelihood import marginal_log_likelihood
 
 __all__ = [
     "CalibrationFit",
     "ConvergenceWarning",
     "EMSettings",
+    "HeldItemFit",
     "LatentSpec",
     "MultiGroupFit",
     "SlopePrior",
     "calibrate_groups",
     "calibrate_single_group",
+    "fit_item_given_offsets",
     "marginal_log_likelihood",
+    "threshold_se",
 ]

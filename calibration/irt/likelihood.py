@@ -105,6 +105,30 @@ def normal_log_weights(points: FloatArray, mean: float = 0.0, sd: float = 1.0) -
     return log_w - np.logaddexp.reduce(log_w)
 
 
+def normal_weights(points: FloatArray, mean: float = 0.0, sd: float = 1.0) -> FloatArray:
+    """Prior weights of a normal latent density at the points, normalised to sum to 1."""
+    return np.exp(normal_log_weights(points, mean, sd))
+
+
+def exp_by_rows(log_values: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """``exp(log_values - row max)``, computed in place, and the row maxima.
+
+    The stable half of a log-sum-exp over each row: ``log(scaled.sum(axis=1)) + peak`` is
+    the log of each row's sum, and ``scaled / scaled.sum(axis=1)`` its normalised weights.
+    """
+    peak = log_values.max(axis=1)
+    log_values -= peak[:, None]
+    np.exp(log_values, out=log_values)
+    return log_values, peak
+
+
+def posterior_weights(log_joint: FloatArray) -> FloatArray:
+    """Each row's posterior over the grid (rows sum to 1), from its log joint density; in place."""
+    scaled, _ = exp_by_rows(log_joint)
+    scaled /= scaled.sum(axis=1, keepdims=True)
+    return scaled
+
+
 @dataclass(frozen=True)
 class ResponseDesign:
     """Indicator matrices for a response table (validated input assumed).
@@ -137,7 +161,20 @@ class ResponseDesign:
 
     @property
     def n_persons(self) -> int:
+        """Number of response rows."""
         return int(self.indicators.shape[0])
+
+    def rows(self, selection: slice) -> ResponseDesign:
+        """The design of a block of rows (views, no copies)."""
+        return ResponseDesign(
+            indicators=self.indicators[selection],
+            column_item=self.column_item,
+            column_category=self.column_category,
+            administered=None if self.administered is None else self.administered[selection],
+            summed_score=self.summed_score[selection],
+            max_score=self.max_score[selection],
+            n_answered=self.n_answered[selection],
+        )
 
 
 @functools.lru_cache(maxsize=256)
@@ -220,3 +257,23 @@ def log_likelihood_grid(
         loglik += design.administered @ base
     loglik += row[None, :]
     return loglik
+
+
+def marginal_log_likelihood(
+    params: ItemParameters,
+    responses: FloatArray,
+    *,
+    grid: QuadratureGrid | None = None,
+    mean: float = 0.0,
+    sd: float = 1.0,
+) -> float:
+    """``sum_i log integral P(x_i | theta) N(theta; mean, sd) dtheta`` on a quadrature grid.
+
+    Lets any parameter set (ours, or another estimator's) be judged on one footing; the
+    default grid is the calibration's.
+    """
+    points = (grid or CALIBRATION_GRID).points
+    design = build_design(np.asarray(responses, dtype=np.float64), params.n_categories)
+    joint = log_likelihood_grid(params, points, design, log_prior=normal_log_weights(points, mean, sd))
+    scaled, peak = exp_by_rows(joint)
+    return float(np.sum(peak + np.log(scaled.sum(axis=1))))

@@ -116,9 +116,45 @@ class ItemParameters:
         return cls(slopes=a, intercepts=-a[:, None] * b, n_categories=n_categories, models=models)
 
 
-def _log_sigmoid(z: FloatArray) -> FloatArray:
+PROBABILITY_FLOOR = 1e-300
+"""Category probabilities at or below this count as zero (a category beyond double precision)."""
+
+
+def log_sigmoid(z: FloatArray) -> FloatArray:
     """log(1 / (1 + exp(-z))) without overflow."""
     return -np.logaddexp(0.0, -z)
+
+
+def log_boundary_difference(upper: FloatArray, lower: FloatArray) -> FloatArray:
+    """``log(sigma(u) - sigma(v))`` for ``u >= v``, elementwise, in log space.
+
+    The cumulative-logit (graded) category probability: ``u`` and ``v`` are the linear
+    predictors of the category's two boundaries, ``+inf`` for the bottom category's upper
+    boundary and ``-inf`` for the top category's lower one. Uses ``sigma(u) - sigma(v) =
+    sigma(u) * sigma(-v) * (1 - exp(v - u))`` so far tails neither underflow to ``log 0``
+    nor lose digits.
+    """
+    with np.errstate(invalid="ignore", over="ignore"):
+        log_upper = np.where(np.isposinf(upper), 0.0, log_sigmoid(upper))
+        log_not_lower = np.where(np.isneginf(lower), 0.0, log_sigmoid(-lower))
+        gap = np.where(np.isposinf(upper) | np.isneginf(lower), -np.inf, lower - upper)
+        return log_upper + log_not_lower + np.log(-np.expm1(gap))
+
+
+def boundary_jacobian(w: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Derivatives of the category probabilities of a cumulative logit, from ``W_k = P*_k (1 - P*_k)``.
+
+    ``w`` has the boundaries on its last axis, ends included (``W_0 = W_K = 0``): shape (..., K + 1).
+    Returns ``d P_k / d c_m`` of shape (..., K, K - 1), for the intercept ``c_m`` of boundary
+    ``m = 1 .. K - 1`` (``W_m`` for k = m, ``-W_m`` for k = m - 1), and ``d P_k / d eta`` of shape
+    (..., K), ``W_k - W_{k+1}``, for the linear predictor ``eta`` every boundary shares.
+    """
+    n_boundaries = w.shape[-1] - 2
+    d_intercepts = np.zeros(w.shape[:-1] + (n_boundaries + 1, n_boundaries))
+    for m in range(n_boundaries):
+        d_intercepts[..., m + 1, m] = w[..., m + 1]
+        d_intercepts[..., m, m] = -w[..., m + 1]
+    return d_intercepts, w[..., :-1] - w[..., 1:]
 
 
 def linear_predictors(params: ItemParameters, theta: FloatArray) -> FloatArray:
@@ -136,7 +172,8 @@ def cumulative_probabilities(params: ItemParameters, theta: FloatArray) -> Float
         Column 0 is 1, column ``K_j`` is 0 and columns past ``K_j`` are 0.
     """
     z = linear_predictors(params, theta)
-    inner = np.where(np.isnan(z), 0.0, 1.0 / (1.0 + np.exp(-np.nan_to_num(z, nan=0.0))))
+    with np.errstate(over="ignore"):  # exp(-z) overflows to inf far below a boundary: P* is then 0
+        inner = np.where(np.isnan(z), 0.0, 1.0 / (1.0 + np.exp(-np.nan_to_num(z, nan=0.0))))
     n_items, _, n_theta = z.shape
     out = np.zeros((n_items, params.max_categories + 1, n_theta))
     out[:, 0, :] = 1.0
@@ -153,9 +190,7 @@ def category_probabilities(params: ItemParameters, theta: FloatArray) -> FloatAr
 def log_category_probabilities(params: ItemParameters, theta: FloatArray) -> FloatArray:
     """``log P(X = k | theta)`` computed in log space, shape (n_items, max_categories, n_theta).
 
-    Uses ``sigma(u) - sigma(v) = sigma(u) * sigma(-v) * (1 - exp(v - u))`` for ``u > v``
-    so that far tails neither underflow to ``log 0`` nor lose digits. Categories an
-    item lacks hold ``-inf``.
+    See :func:`log_boundary_difference`. Categories an item lacks hold ``-inf``.
     """
     z = linear_predictors(params, theta)
     n_items, _, n_theta = z.shape
@@ -163,16 +198,8 @@ def log_category_probabilities(params: ItemParameters, theta: FloatArray) -> Flo
     # Pad the linear predictor with +inf (k = 0) and -inf (k = K_j and beyond).
     padded = np.full((n_items, k_max + 1, n_theta), -np.inf)
     padded[:, 0, :] = np.inf
-    valid = ~np.isnan(z)
-    padded[:, 1:k_max, :] = np.where(valid, z, -np.inf)
-    upper = padded[:, :-1, :]  # z_k
-    lower = padded[:, 1:, :]  # z_{k+1}
-    with np.errstate(invalid="ignore", over="ignore"):
-        log_upper = np.where(np.isposinf(upper), 0.0, _log_sigmoid(upper))
-        log_not_lower = np.where(np.isneginf(lower), 0.0, _log_sigmoid(-lower))
-        gap = np.where(np.isposinf(upper) | np.isneginf(lower), -np.inf, lower - upper)
-        log_gap = np.log(-np.expm1(gap))
-    out = log_upper + log_not_lower + log_gap
+    padded[:, 1:k_max, :] = np.where(np.isnan(z), -np.inf, z)
+    out = log_boundary_difference(padded[:, :-1, :], padded[:, 1:, :])
     exists = np.arange(k_max)[None, :] < params.n_categories[:, None]
     return np.where(exists[:, :, None], out, -np.inf)
 
@@ -193,22 +220,28 @@ def item_information(params: ItemParameters, theta: FloatArray) -> FloatArray:
     ``I_j(theta) = sum_k (dP_jk/dtheta)^2 / P_jk`` (Samejima 1969); for a 2PL item this
     is ``a^2 P (1 - P)``.
     """
-    prob = category_probabilities(params, theta)
-    deriv = category_probability_derivatives(params, theta)
-    safe = np.where(prob > 1e-300, prob, 1.0)
-    return np.sum(np.where(prob > 1e-300, deriv**2 / safe, 0.0), axis=1)
+    return information_from(category_probabilities(params, theta), category_probability_derivatives(params, theta))
 
 
-def test_information(params: ItemParameters, theta: FloatArray) -> FloatArray:
+def information_from(prob: FloatArray, deriv: FloatArray) -> FloatArray:
+    """``sum_k (dP_k/dtheta)^2 / P_k`` over axis 1 of (n_items, K, n_theta) probabilities and derivatives."""
+    positive = prob > PROBABILITY_FLOOR
+    return np.sum(np.where(positive, deriv**2 / np.where(positive, prob, 1.0), 0.0), axis=1)
+
+
+def total_information(params: ItemParameters, theta: FloatArray) -> FloatArray:
     """Sum of item information over the test, shape (n_theta,)."""
     return item_information(params, theta).sum(axis=0)
 
 
 def expected_item_scores(params: ItemParameters, theta: FloatArray) -> FloatArray:
     """``E[X_j | theta] = sum_k k P_jk(theta)``, shape (n_items, n_theta)."""
+    return item_score_moments(params, theta)[0]
+
+
+def item_score_moments(params: ItemParameters, theta: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Model mean and variance of each item score at each theta, both of shape (n_items, n_theta)."""
     prob = category_probabilities(params, theta)
-    return np.einsum("jkq,k->jq", prob, np.arange(params.max_categories, dtype=np.float64))
-
-
-# pytest would otherwise collect test_information as a test when imported into a test module.
-test_information.__test__ = False  # type: ignore[attr-defined]
+    k = np.arange(params.max_categories, dtype=np.float64)
+    mean = np.einsum("jkq,k->jq", prob, k)
+    return mean, np.einsum("jkq,k->jq", prob, k * k) - mean**2

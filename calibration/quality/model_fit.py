@@ -28,9 +28,19 @@ from calibration.irt.likelihood import (
     build_design,
     log_likelihood_grid,
     normal_log_weights,
+    normal_weights,
+    posterior_weights,
 )
-from calibration.irt.models import FloatArray, IntArray, ItemParameters, category_probabilities, expected_item_scores
-from calibration.irt.scoring import summed_score_likelihoods
+from calibration.irt.models import (
+    PROBABILITY_FLOOR,
+    FloatArray,
+    IntArray,
+    ItemParameters,
+    category_probabilities,
+    expected_item_scores,
+    item_score_moments,
+)
+from calibration.irt.summed_scores import summed_score_likelihoods
 
 MIN_COMPLETE_ROWS = 100
 # Warning thresholds (rules of thumb; see REFERENCES in the docs of each): RMSD above this misses the
@@ -41,8 +51,6 @@ RMSD_WARNING = 0.10
 S_X2_MISFIT_P = 0.001
 EIGENVALUE_RATIO_MINIMUM = 3.0
 RESIDUAL_EIGENVALUE_MAXIMUM = 2.0
-# Floor for a probability that divides (an expected count of 0 is 0, not NaN).
-PROBABILITY_FLOOR = 1e-300
 
 
 @dataclass(frozen=True)
@@ -72,7 +80,7 @@ def item_fit(
 ) -> ItemFit:
     grid = grid or CALIBRATION_GRID
     points = grid.points
-    weights = np.exp(normal_log_weights(points, latent_mean, latent_sd))
+    weights = normal_weights(points, latent_mean, latent_sd)
     n_items = params.n_items
     s_x2 = np.full(n_items, np.nan)
     df = np.zeros(n_items, dtype=np.int64)
@@ -133,10 +141,7 @@ def _s_x2(
 def _rmsd(params: ItemParameters, x: FloatArray, points: FloatArray, mean: float, sd: float) -> FloatArray:
     log_prior = normal_log_weights(points, mean, sd)
     design = build_design(x, params.n_categories)
-    joint = log_likelihood_grid(params, points, design, log_prior=log_prior)
-    joint -= joint.max(axis=1, keepdims=True)
-    post = np.exp(joint)
-    post /= post.sum(axis=1, keepdims=True)
+    post = posterior_weights(log_likelihood_grid(params, points, design, log_prior=log_prior))
     answered = ~np.isnan(x)
     observed_sum = np.where(answered, x, 0.0).T @ post  # (J, Q)
     mass = answered.astype(np.float64).T @ post
@@ -155,10 +160,7 @@ def dimensionality(params: ItemParameters, responses: FloatArray, theta: FloatAr
     eig = np.sort(np.linalg.eigvalsh(np.corrcoef(x, rowvar=False)))[::-1]
     ratio = float(eig[0] / eig[1]) if eig[1] > 0 else None
     t = theta[complete]
-    prob = category_probabilities(params, t)  # (J, K, n)
-    k = np.arange(params.max_categories, dtype=np.float64)
-    mean = np.einsum("jkn,k->nj", prob, k)
-    var = np.einsum("jkn,k->nj", prob, k * k) - mean**2
-    residual = (x - mean) / np.sqrt(np.maximum(var, 1e-12))
+    mean, var = item_score_moments(params, t)  # (J, n)
+    residual = (x - mean.T) / np.sqrt(np.maximum(var.T, 1e-12))
     contrast = float(np.max(np.linalg.eigvalsh(np.corrcoef(residual, rowvar=False))))
     return Dimensionality(eigenvalue_ratio=ratio, residual_pca_first_eigenvalue=contrast, n_complete=int(x.shape[0]))

@@ -8,7 +8,7 @@ from scipy import integrate, stats
 from statsmodels.stats.multitest import multipletests
 
 from calibration.dif.irt import DifSettings, benjamini_hochberg, effect_size, run_irt_dif, test_items
-from calibration.estimation.em import EMSettings, calibrate_groups
+from calibration.estimation import EMSettings, calibrate_groups
 from calibration.irt.models import ItemParameters, log_category_probabilities
 from tests.helpers import simulate_responses
 

@@ -10,16 +10,10 @@ from scipy import integrate, optimize, stats
 
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import ItemParameters, log_category_probabilities
-from calibration.irt.scoring import (
-    NormalPrior,
-    ReportingScale,
-    eap_scores,
-    map_scores,
-    marginal_reliability,
-    ml_scores,
-    summed_score_likelihoods,
-    summed_score_table,
-)
+from calibration.irt.reliability import marginal_reliability
+from calibration.irt.reporting_scale import ReportingScale
+from calibration.irt.scoring import NormalPrior, eap_scores, map_scores, ml_scores
+from calibration.irt.summed_scores import summed_score_likelihoods, summed_score_table
 from tests.helpers import simulate_responses
 
 
@@ -206,7 +200,7 @@ def test_reporting_scale_rounds_and_bounds() -> None:
 
 def test_person_fit_lz_matches_the_formula_written_out(items: ItemParameters) -> None:
     # Independent route: l_z by explicit loops over items and categories (Drasgow et al. 1985 formula).
-    from calibration.irt.scoring import person_fit_lz
+    from calibration.irt.person_fit import person_fit_lz
 
     theta = np.array([0.3, -1.0, 0.8, 0.0, 1.2])
     lz = person_fit_lz(items, PATTERNS, theta)
@@ -227,7 +221,7 @@ def test_person_fit_lz_matches_the_formula_written_out(items: ItemParameters) ->
 def test_corrected_person_fit_equals_snijders_binary_formula() -> None:
     # Independent route: Snijders' (2001) formula for right/wrong items written out with the 2PL's
     # r_j = a_j (formula recalled from memory); the category form must reduce to it exactly.
-    from calibration.irt.scoring import person_fit_lz
+    from calibration.irt.person_fit import person_fit_lz
 
     rng = np.random.default_rng(8)
     a, b = rng.uniform(0.8, 2.0, 12), rng.normal(0, 1, 12)
@@ -252,7 +246,7 @@ def test_corrected_person_fit_equals_snijders_binary_formula() -> None:
 def test_corrected_person_fit_is_standard_normal_under_the_model(method: str) -> None:
     # Simulation (seeded, invented parameters): under the model l_z* has mean near 0 and SD near 1
     # at the estimated theta, while uncorrected l_z is too narrow (the reason for the correction).
-    from calibration.irt.scoring import person_fit_lz
+    from calibration.irt.person_fit import person_fit_lz
 
     rng = np.random.default_rng(13)
     n_items = 30

@@ -1,0 +1,302 @@
+"""Public marginal ML estimators: many groups, one group, and one item given the others held.
+
+Bock-Aitkin EM over a fixed quadrature grid (E-step :mod:`.estep`, M-step :mod:`.mstep`,
+latent densities :mod:`.latent`), SQUAREM-accelerated (:mod:`.optimizer`), standard errors
+from the observed information (:mod:`.inference`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+
+from calibration.estimation.estep import (
+    ExpectedCounts,
+    HeldLikelihood,
+    expected_counts,
+    held_item_counts,
+    prepare_groups,
+)
+from calibration.estimation.inference import observed_covariance
+from calibration.estimation.latent import LatentSpec, latent_score, latent_update
+from calibration.estimation.layout import GroupLayout, params_from_table, slot_table, valid_tables
+from calibration.estimation.mstep import item_gradient, m_step
+from calibration.estimation.optimizer import run_em
+from calibration.estimation.results import CalibrationFit, MultiGroupFit
+from calibration.estimation.settings import EMSettings
+from calibration.estimation.start import starting_values
+from calibration.irt.likelihood import normal_log_weights
+from calibration.irt.models import FloatArray, IntArray, ItemParameters
+
+
+def calibrate_groups(
+    responses: FloatArray,
+    n_categories: IntArray,
+    group_index: IntArray,
+    n_groups: int,
+    *,
+    models: tuple[str, ...] = (),
+    settings: EMSettings | None = None,
+    group_free: np.ndarray | None = None,
+    fixed: np.ndarray | None = None,
+    start: FloatArray | None = None,
+    latent: LatentSpec | None = None,
+    progress: Callable[[int, float], None] | None = None,
+    warn: bool = True,
+) -> MultiGroupFit:
+    """Multiple-group marginal ML (Bock & Zimowski 1997) by EM over a fixed quadrature grid.
+
+    Parameters
+    ----------
+    responses : array of shape (n_persons, n_items); codes or NaN (validated input)
+    group_index : int array of shape (n_persons,), 0 .. n_groups - 1; group 0 is the reference
+    group_free : bool array (n_groups, n_items, k_max); True gives group g its own value of a slot
+        (default: every slot shared with the reference group)
+    fixed : bool array (n_groups, n_items, k_max) or (n_items, k_max); True holds a slot at ``start``
+    start : slot tables (n_groups, n_items, k_max); default from classical statistics
+    latent : latent means/SDs and which are estimated (default: reference N(0,1), others free)
+    warn : False leaves non-convergence to the caller (``converged`` in the result) instead of warning
+    """
+    settings = settings or EMSettings()
+    x = np.asarray(responses, dtype=np.float64)
+    k = np.asarray(n_categories, dtype=np.int64)
+    gi = np.asarray(group_index, dtype=np.int64)
+    models = models or tuple("2pl" if kk == 2 else "grm" for kk in k)
+    template = starting_values(x, k, models)
+    if start is None:
+        tables = np.broadcast_to(slot_table(template), (n_groups,) + slot_table(template).shape).copy()
+    else:
+        tables = np.array(start, dtype=np.float64)
+        template = params_from_table(tables[0], template)
+    latent = latent or LatentSpec.reference_fixed(n_groups)
+    layout = GroupLayout.build(template, n_groups, group_free=group_free, fixed=fixed)
+    groups = prepare_groups(x, k, gi, n_groups, compress=settings.compress_patterns)
+    points = settings.quadrature.points
+    prior = settings.slope_prior
+    n_item_free = layout.n_free
+
+    def pack(tabs: FloatArray, mean: FloatArray, sd: FloatArray) -> FloatArray:
+        return np.concatenate([layout.to_vector(tabs), mean[latent.free_mean], sd[latent.free_sd]])
+
+    def unpack(vec: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray]:
+        tabs = layout.from_vector(vec[:n_item_free], tables)
+        mean, sd = latent.mean.copy(), latent.sd.copy()
+        n_mean = int(latent.free_mean.sum())
+        mean[latent.free_mean] = vec[n_item_free : n_item_free + n_mean]
+        sd[latent.free_sd] = vec[n_item_free + n_mean :]
+        return tabs, mean, sd
+
+    def e_step(vec: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, list[ExpectedCounts]]:
+        tabs, mean, sd = unpack(vec)
+        if not valid_tables(tabs, k).all() or np.any(sd <= 0) or not np.all(np.isfinite(mean)):
+            raise ValueError("invalid parameters")
+        results = [
+            expected_counts(
+                params_from_table(tabs[g], template),
+                data.design,
+                points,
+                normal_log_weights(points, mean[g], sd[g]),
+                data.weights,
+            )
+            for g, data in enumerate(groups)
+        ]
+        return tabs, mean, sd, np.stack([r.counts for r in results]), results
+
+    def em_map(vec: FloatArray) -> tuple[FloatArray, float]:
+        tabs, mean, sd, counts, results = e_step(vec)
+        tabs = m_step(tabs, template, counts, points, layout, prior=prior, n_iter=settings.m_step_iter)
+        for g, r in enumerate(results):
+            mean[g], sd[g] = latent_update(
+                r.point_mass,
+                points,
+                mean[g],
+                sd[g],
+                free_mean=bool(latent.free_mean[g]),
+                free_sd=bool(latent.free_sd[g]),
+            )
+        return pack(tabs, mean, sd), float(sum(r.log_likelihood for r in results))
+
+    vec, converged, n_iter, history = run_em(
+        pack(tables, latent.mean, latent.sd), em_map, settings, progress=progress, warn=warn
+    )
+    tabs, mean, sd, _, results = e_step(vec)
+    group_ll = np.array([r.log_likelihood for r in results])
+
+    def score(v: FloatArray) -> FloatArray:
+        t, m, s_, counts, res = e_step(v)
+        latent_grad = [latent_score(r.point_mass, points, m[g], s_[g]) for g, r in enumerate(res)]
+        d_mean = np.array([d[0] for d in latent_grad])[latent.free_mean]
+        d_sd = np.array([d[1] for d in latent_grad])[latent.free_sd]
+        return np.concatenate([item_gradient(t, template, counts, points, layout, prior=prior), d_mean, d_sd])
+
+    covariance = None
+    slot_se = np.full(tabs.shape, np.nan)
+    mean_se = np.full(n_groups, np.nan)
+    sd_se = np.full(n_groups, np.nan)
+    if settings.standard_errors and vec.size > 0:
+        covariance = observed_covariance(vec, score)
+        if covariance is not None:
+            se = np.sqrt(np.clip(np.diag(covariance), 0.0, None))
+            mask = layout.index >= 0
+            slot_se[mask] = se[layout.index[mask]]
+            n_mean = int(latent.free_mean.sum())
+            mean_se[latent.free_mean] = se[n_item_free : n_item_free + n_mean]
+            sd_se[latent.free_sd] = se[n_item_free + n_mean :]
+    return MultiGroupFit(
+        template=template,
+        tables=tabs,
+        slot_se=slot_se,
+        latent_mean=mean,
+        latent_sd=sd,
+        latent_mean_se=mean_se,
+        latent_sd_se=sd_se,
+        log_likelihood=float(group_ll.sum()),
+        group_log_likelihood=group_ll,
+        n_parameters=int(vec.size),
+        n_persons=int(sum(d.n_persons for d in groups)),
+        converged=converged,
+        n_iter=n_iter,
+        covariance=covariance,
+        layout=layout,
+        latent=latent,
+        settings=settings,
+        history=history,
+    )
+
+
+def calibrate_single_group(
+    responses: FloatArray,
+    n_categories: IntArray,
+    *,
+    models: tuple[str, ...] = (),
+    settings: EMSettings | None = None,
+    start: ItemParameters | None = None,
+    fixed: np.ndarray | None = None,
+    progress: Callable[[int, float], None] | None = None,
+) -> CalibrationFit:
+    """Marginal ML item parameters with the latent distribution fixed at N(0, 1).
+
+    The one-group case of :func:`calibrate_groups`.
+
+    Parameters
+    ----------
+    responses : array of shape (n_persons, n_items)
+        Category codes 0 .. K_j - 1, NaN for not administered (validated input).
+    n_categories : int array of shape (n_items,)
+    models : per-item model names; "1pl" items share one slope.
+    start : starting parameters (default: classical starting values).
+    fixed : bool array of shape (n_items, max_categories); True holds a slot at ``start``.
+    progress : called as ``progress(iteration, log_likelihood)``.
+    """
+    x = np.asarray(responses, dtype=np.float64)
+    k = np.asarray(n_categories, dtype=np.int64)
+    if start is not None and not models:
+        models = start.models
+    fit = calibrate_groups(
+        x,
+        k,
+        np.zeros(x.shape[0], dtype=np.int64),
+        1,
+        models=models,
+        settings=settings,
+        fixed=None if fixed is None else np.asarray(fixed, dtype=bool)[None],
+        start=None if start is None else slot_table(start)[None],
+        latent=LatentSpec.reference_fixed(1),
+        progress=progress,
+    )
+    params = fit.group_params(0)
+    return CalibrationFit(
+        params=params,
+        slope_se=fit.slot_se[0, :, 0],
+        intercept_se=fit.slot_se[0, :, 1:],
+        log_likelihood=fit.log_likelihood,
+        n_parameters=fit.n_parameters,
+        n_persons=fit.n_persons,
+        converged=fit.converged,
+        n_iter=fit.n_iter,
+        covariance=fit.covariance,
+        settings=fit.settings,
+        layout=fit.layout,
+        history=fit.history,
+    )
+
+
+@dataclass(frozen=True)
+class HeldItemFit:
+    """Marginal ML of one studied item in a reference and a focal group, every other item held.
+
+    ``tables`` (2, 1, K) holds the reference and focal (slope, intercepts...); ``vector`` the
+    free item slots, then the focal latent mean and SD.
+    """
+
+    log_likelihood: float
+    tables: FloatArray
+    vector: FloatArray
+    template: ItemParameters
+    _unpack: Callable[[FloatArray], tuple[FloatArray, FloatArray, FloatArray]]
+    _score: Callable[[FloatArray], FloatArray]
+
+    def group_params(self, h: int, vector: FloatArray | None = None) -> ItemParameters:
+        """Group h's (0 reference, 1 focal) item parameters, at the estimate or at another ``vector``."""
+        tables = self.tables if vector is None else self._unpack(vector)[0]
+        return params_from_table(tables[h], self.template)
+
+    def covariance(self) -> FloatArray | None:
+        """Observed-information covariance of ``vector`` (None when the information is singular)."""
+        return observed_covariance(self.vector, self._score)
+
+
+def fit_item_given_offsets(
+    answers: list[FloatArray],
+    offsets: list[FloatArray],
+    template: ItemParameters,
+    start: FloatArray,
+    latent: LatentSpec,
+    group_free: np.ndarray,
+    settings: EMSettings,
+) -> HeldItemFit:
+    """Fit one item's parameters (shared or group-specific) and the focal latent density.
+
+    Every other item is held at fixed values: ``offsets[h]`` is their log-likelihood, shape
+    (n_rows_h, n_points) on ``settings.quadrature``, for the rows of group h (0 = reference,
+    1 = focal), and ``answers[h]`` the studied item's answers of those rows (NaN: none).
+    ``template`` is the one-item parameter template, ``start`` its (2, 1, K) starting tables,
+    ``group_free`` (2, 1, K) marks the focal group's own slots. The focal mean and SD are
+    estimated; the reference group's latent density stays as ``latent`` gives it.
+    """
+    points = settings.quadrature.points
+    k = int(template.n_categories[0])
+    rows = [HeldLikelihood.from_offset(o, a, k) for o, a in zip(offsets, answers, strict=True)]
+    layout = GroupLayout.build(template, 2, group_free=group_free)
+    n_item = layout.n_free
+
+    def unpack(vec: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray]:
+        tables = layout.from_vector(vec[:n_item], start)
+        mean, sd = latent.mean.copy(), latent.sd.copy()
+        mean[1], sd[1] = vec[n_item], vec[n_item + 1]
+        return tables, mean, sd
+
+    def e_step(vec: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, float]:
+        tables, mean, sd = unpack(vec)
+        if sd[1] <= 0:
+            raise ValueError("invalid parameters")
+        params = [params_from_table(tables[h], template) for h in range(2)]
+        return (tables, mean, sd, *held_item_counts(rows, params, mean, sd, points))
+
+    def em_map(vec: FloatArray) -> tuple[FloatArray, float]:
+        tables, mean, sd, counts, mass, log_lik = e_step(vec)
+        tables = m_step(tables, template, counts, points, layout, prior=None, n_iter=settings.m_step_iter)
+        mean[1], sd[1] = latent_update(mass[1], points, float(mean[1]), float(sd[1]), free_mean=True, free_sd=True)
+        return np.concatenate([layout.to_vector(tables), [mean[1], sd[1]]]), log_lik
+
+    def score(vec: FloatArray) -> FloatArray:
+        tables, mean, sd, counts, mass, _ = e_step(vec)
+        latent_part = latent_score(mass[1], points, float(mean[1]), float(sd[1]))
+        return np.concatenate([item_gradient(tables, template, counts, points, layout), latent_part])
+
+    vec0 = np.concatenate([layout.to_vector(start), [latent.mean[1], latent.sd[1]]])
+    vec, _, _, _ = run_em(vec0, em_map, settings, warn=False)
+    tables, _, _, _, _, log_lik = e_step(vec)
+    return HeldItemFit(log_lik, tables, vec, template, unpack, score)

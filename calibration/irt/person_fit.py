@@ -1,0 +1,70 @@
+"""Person fit: the standardized log-likelihood statistic, with Snijders' correction for an estimated theta."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from calibration.irt.likelihood import DEFAULT_CHUNK, run_blocks
+from calibration.irt.models import (
+    PROBABILITY_FLOOR,
+    FloatArray,
+    ItemParameters,
+    category_probabilities,
+    category_probability_derivatives,
+)
+from calibration.irt.scoring import NormalPrior
+
+
+def person_fit_lz(
+    params: ItemParameters,
+    responses: FloatArray,
+    theta: FloatArray,
+    *,
+    corrected: bool = False,
+    prior: NormalPrior | None = None,
+) -> FloatArray:
+    """Standardized log-likelihood person fit at each respondent's theta.
+
+    Uncorrected, ``l_z = (l0 - E[l0]) / sqrt(Var[l0])`` over the answered items (Drasgow, Levine &
+    Williams 1985), with ``w_jk = log P_jk``. With ``corrected=True`` it is ``l_z*`` (Snijders 2001),
+    which allows for theta being estimated: with ``r_jk = P'_jk / P_jk`` (the estimating equation's
+    weights), ``c = sum P'_jk w_jk / sum P'_jk r_jk`` and ``w~_jk = w_jk - c r_jk``,
+    ``l_z* = (sum_jk (x_jk - P_jk) w_jk + c r_0) / sqrt(sum_j Var_j(w~))``, where ``r_0`` is the prior's
+    term of the estimating equation (0 for ML, ``-(theta - mean) / sd^2`` for MAP, used for EAP too).
+    For right/wrong items this is Snijders' formula; the category form for graded items follows
+    Sinharay (2016). Both recalled from memory and checked by simulation in the tests (mean near 0,
+    SD near 1 under the model). NaN with no answers. Large negative values mean an unlikely pattern.
+    """
+    x = np.asarray(responses, dtype=np.float64)
+    answered = ~np.isnan(x)
+    codes = np.where(answered, x, 0).astype(np.int64)
+    theta = np.asarray(theta, dtype=np.float64)
+    out = np.full(x.shape[0], np.nan)
+    k = np.arange(params.max_categories)
+
+    def block(rows: slice) -> None:
+        # Plain probabilities suffice here (no far-tail precision needed); floor them before the log.
+        prob = np.moveaxis(category_probabilities(params, theta[rows]), 2, 0)  # (n, J, K)
+        log_p = np.log(np.maximum(prob, PROBABILITY_FLOOR))
+        ok = answered[rows]
+        observed = (codes[rows][:, :, None] == k[None, None, :]).astype(np.float64)  # one-hot x_jk
+        residual = np.where(ok[:, :, None], observed - prob, 0.0)
+        statistic = np.sum(residual * log_p, axis=(1, 2))  # l0 - E[l0]
+        weights = log_p
+        if corrected:
+            deriv = np.moveaxis(category_probability_derivatives(params, theta[rows]), 2, 0)
+            r = np.where(prob > PROBABILITY_FLOOR, deriv / np.maximum(prob, PROBABILITY_FLOOR), 0.0)
+            slope_w = np.sum(np.where(ok[:, :, None], deriv * log_p, 0.0), axis=(1, 2))
+            slope_r = np.sum(np.where(ok[:, :, None], deriv * r, 0.0), axis=(1, 2))
+            c = np.where(slope_r > 0, slope_w / np.maximum(slope_r, PROBABILITY_FLOOR), 0.0)
+            weights = log_p - c[:, None, None] * r
+            if prior is not None:
+                statistic = statistic + c * (-(theta[rows] - prior.mean) / prior.sd**2)
+        mean_j = np.sum(prob * weights, axis=2)
+        var_j = np.sum(prob * weights * weights, axis=2) - mean_j**2
+        var = np.where(ok, var_j, 0.0).sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out[rows] = np.where((ok.sum(axis=1) > 0) & (var > 0), statistic / np.sqrt(var), np.nan)
+
+    run_blocks(block, x.shape[0], DEFAULT_CHUNK, workers=None)
+    return out
