@@ -1,0 +1,174 @@
+"""Quality by group: classical statistics, reliability, item fit and dimensionality, and their warnings."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from calibration.bundle.schema import Dimensionality, GroupQuality, ItemQuality, SummedScoreRow
+from calibration.estimation import EMSettings, MultiGroupFit
+from calibration.io import finite_or_none
+from calibration.irt.likelihood import QuadratureGrid
+from calibration.irt.models import ItemParameters
+from calibration.irt.reliability import marginal_reliability
+from calibration.irt.scoring import NormalPrior, eap_scores
+from calibration.irt.summed_scores import summed_score_table
+from calibration.pipeline.policy import PolicyTable
+from calibration.pipeline.prepare import PreparedData
+from calibration.quality.classical import (
+    ALPHA_GROUP_USE,
+    ALPHA_INDIVIDUAL_DECISIONS,
+    ITEM_REST_MINIMUM,
+    classical_statistics,
+)
+from calibration.quality.model_fit import (
+    EIGENVALUE_RATIO_MINIMUM,
+    RESIDUAL_EIGENVALUE_MAXIMUM,
+    RMSD_WARNING,
+    S_X2_MISFIT_P,
+    dimensionality,
+    item_fit,
+)
+
+SLOPE_VERY_LARGE = 4.0
+"""A reference slope above this is reported as very large (a near-Heywood case)."""
+
+
+def quality_by_group(
+    prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTable, grid: QuadratureGrid
+) -> tuple[dict[str, GroupQuality], list[str]]:
+    """Each group's quality on the items it is scored on, and the warnings it raises."""
+    by_group: dict[str, GroupQuality] = {}
+    notes: list[str] = []
+    for g, group in enumerate(prepared.group_names):
+        kept = policy.kept_items(g)
+        quality = _group_quality(
+            prepared.x[np.ix_(prepared.group_index == g, kept)],
+            fit.group_params(g).subset(kept),
+            [prepared.item_ids[j] for j in kept],
+            grid,
+            (float(fit.latent_mean[g]), float(fit.latent_sd[g])),
+        )
+        by_group[group] = quality
+        notes.extend(_quality_warnings(quality, group if prepared.n_groups > 1 else None))
+    return by_group, notes
+
+
+def fit_warnings(prepared: PreparedData, fit: MultiGroupFit, em: EMSettings) -> list[str]:
+    """Non-convergence, latent densities beyond the grid, cells to review, suspicious slopes."""
+    notes = []
+    if not fit.converged:
+        notes.append(f"EM did not converge in {em.max_iter} iterations; estimates may be unstable")
+    grid = em.quadrature
+    for g, group in enumerate(prepared.group_names):
+        low, high = fit.latent_mean[g] - 4 * fit.latent_sd[g], fit.latent_mean[g] + 4 * fit.latent_sd[g]
+        if low < grid.lower or high > grid.upper:
+            notes.append(
+                f"group {group!r}: latent N({fit.latent_mean[g]:.2f}, {fit.latent_sd[g]:.2f}^2) reaches beyond the "
+                f"quadrature grid {grid.lower:g}..{grid.upper:g} at 4 SD; widen the grid for accurate estimates"
+            )
+    return notes
+
+
+def review_warnings(prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTable) -> list[str]:
+    """Cells with a policy other than invariant, and reference slopes that look miskeyed or near-Heywood."""
+    notes = []
+    reviewed = policy.reviewed_cells()
+    if reviewed:
+        notes.append(
+            "items with a group policy other than invariant (content experts must review these): "
+            + ", ".join(f"{prepared.item_ids[j]} in {prepared.group_names[g]}" for j, g in reviewed)
+        )
+    slopes = fit.group_params(0).slopes
+    for j, item in enumerate(prepared.item_ids):
+        if slopes[j] <= 0:
+            notes.append(f"item {item!r}: slope {slopes[j]:.3f} is not positive (miskeyed?)")
+        elif slopes[j] > SLOPE_VERY_LARGE:
+            notes.append(f"item {item!r}: slope {slopes[j]:.2f} is very large (near-Heywood?)")
+    return notes
+
+
+def _group_quality(
+    x: np.ndarray,
+    params: ItemParameters,
+    item_ids: list[str],
+    grid: QuadratureGrid,
+    latent: tuple[float, float],
+) -> GroupQuality:
+    prior = NormalPrior(0.0, 1.0)
+    latent_mean, latent_sd = latent
+    classical = classical_statistics(x)
+    eap = eap_scores(params, x, grid=grid, prior=prior)
+    reliability = marginal_reliability(eap.theta, eap.se)
+    table = summed_score_table(params, grid=grid, prior=prior)
+    fit_stats = item_fit(params, x, latent_mean=latent_mean, latent_sd=latent_sd)
+    summary = dimensionality(params, x, eap.theta)
+    dims = Dimensionality(
+        eigenvalue_ratio=finite_or_none(summary.eigenvalue_ratio),
+        residual_pca_first_eigenvalue=finite_or_none(summary.residual_pca_first_eigenvalue),
+        n_complete=summary.n_complete,
+    )
+    items = {
+        item: ItemQuality(
+            item_rest_correlation=finite_or_none(float(classical.item_rest[j])),
+            alpha_if_deleted=finite_or_none(float(classical.alpha_if_deleted[j])),
+            s_x2=finite_or_none(fit_stats.s_x2[j]),
+            s_x2_df=int(fit_stats.s_x2_df[j]) if fit_stats.s_x2_df[j] > 0 else None,
+            s_x2_p=finite_or_none(fit_stats.s_x2_p[j]),
+            rmsd=finite_or_none(fit_stats.rmsd[j]),
+        )
+        for j, item in enumerate(item_ids)
+    }
+    return GroupQuality(
+        n_respondents=int(x.shape[0]),
+        alpha=finite_or_none(classical.alpha),
+        alpha_if_deleted={i: q.alpha_if_deleted for i, q in items.items()},
+        marginal_reliability=finite_or_none(reliability),
+        summed_score_table=[
+            SummedScoreRow(summed_score=int(s), theta=float(t), se=float(e), probability=float(p))
+            for s, t, e, p in zip(table.summed_score, table.theta, table.se, table.probability, strict=True)
+        ],
+        items=items,
+        dimensionality=dims,
+    )
+
+
+def _quality_warnings(quality: GroupQuality, group: str | None) -> list[str]:
+    where = "" if group is None else f"group {group!r}: "
+    out = []
+    if quality.alpha is not None and quality.alpha < ALPHA_GROUP_USE:
+        out.append(f"{where}alpha = {quality.alpha:.3f} is below {ALPHA_GROUP_USE} (common minimum for group use)")
+    rel = quality.marginal_reliability
+    if rel is not None and rel < ALPHA_INDIVIDUAL_DECISIONS:
+        out.append(
+            f"{where}marginal reliability = {rel:.3f} is below {ALPHA_INDIVIDUAL_DECISIONS}: scores must not "
+            "drive individual high-stakes decisions on their own"
+        )
+    for item, q in quality.items.items():
+        if q.item_rest_correlation is not None and q.item_rest_correlation < ITEM_REST_MINIMUM:
+            out.append(
+                f"{where}item {item!r}: item-rest correlation {q.item_rest_correlation:.3f} is below "
+                f"{ITEM_REST_MINIMUM} (common practice)"
+            )
+        if q.rmsd is not None and q.rmsd > RMSD_WARNING:
+            out.append(
+                f"{where}item {item!r}: RMSD {q.rmsd:.3f} above {RMSD_WARNING:.2f} (common practice): the model curve "
+                "misses this group's observed curve"
+            )
+        if q.s_x2_p is not None and q.s_x2_p < S_X2_MISFIT_P:
+            out.append(
+                f"{where}item {item!r}: S-X2 = {q.s_x2:.1f} (df {q.s_x2_df}), p < {S_X2_MISFIT_P:g}: item misfit"
+            )
+    dims = quality.dimensionality
+    if dims is not None and dims.eigenvalue_ratio is not None and dims.eigenvalue_ratio < EIGENVALUE_RATIO_MINIMUM:
+        out.append(
+            f"{where}first-to-second eigenvalue ratio {dims.eigenvalue_ratio:.3f} is below "
+            f"{EIGENVALUE_RATIO_MINIMUM:g} "
+            "(rule of thumb, Raiche 2005 recalled from memory): check unidimensionality"
+        )
+    residual = None if dims is None else dims.residual_pca_first_eigenvalue
+    if residual is not None and residual > RESIDUAL_EIGENVALUE_MAXIMUM:
+        out.append(
+            f"{where}largest eigenvalue of the residual PCA {residual:.2f} is above {RESIDUAL_EIGENVALUE_MAXIMUM:g} "
+            "(rule of thumb): a second dimension may be present"
+        )
+    return out
