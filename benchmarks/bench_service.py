@@ -104,7 +104,7 @@ def main() -> int:
     items = make_store(tmp / "store")
     port = 18765
     server = subprocess.Popen(
-        [sys.executable, "-m", "service.main", "--store", str(tmp / "store"), "--port", str(port), "--workers", "2"],
+        [sys.executable, "-m", "service", "--store", str(tmp / "store"), "--port", str(port), "--workers", "2"],
         stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL,
     )

@@ -44,7 +44,7 @@ def _server_log(process: subprocess.Popen[str]) -> str:
 
 def _serve(store: str, port: int, *, workers: int = 2) -> subprocess.Popen[str]:
     env = {**os.environ, "EQUITHETA_API_KEYS": example_keys(), "EQUITHETA_LOG_LEVEL": "info"}
-    command = [sys.executable, "-m", "service.main", "--store", store, "--port", str(port), "--workers", str(workers)]
+    command = [sys.executable, "-m", "service", "--store", store, "--port", str(port), "--workers", str(workers)]
     # The server's log goes to a file: a pipe nobody reads fills up and then blocks the server's logging.
     log = tempfile.NamedTemporaryFile(prefix="equitheta-drill-", suffix=".log", delete=False)  # noqa: SIM115
     process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=log, text=True, env=env)

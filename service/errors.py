@@ -19,10 +19,10 @@ from calibration.errors import (
     StoreUnavailable,
     VersionConflict,
 )
+from service.logs import log_event
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 PROBLEM_BASE = "https://equitheta.invalid/problems/"
-log = logging.getLogger("equitheta.service")
 
 
 class ProblemError(Exception):
@@ -102,7 +102,8 @@ def problem(
 def _allow_header(request: Request) -> dict[str, str]:
     """Every method any route offers at this path (Starlette would name only the first route's)."""
     methods: set[str] = set()
-    for route in request.app.router.routes:
+    # The app's own routes and those of the routers it included (``route_table``, set by create_app).
+    for route in getattr(request.app.state, "route_table", request.app.router.routes):
         match, _ = route.matches({**request.scope, "method": "\x00"})  # no real method: path matches only
         if match is not Match.NONE:
             methods |= set(getattr(route, "methods", None) or ())
@@ -118,7 +119,14 @@ def install_handlers(app: FastAPI) -> None:
     async def _table(request: Request, exc: Exception) -> JSONResponse:
         status, slug, title = next(v for k, v in DOMAIN_PROBLEMS.items() if isinstance(exc, k))
         if status >= 500:
-            log.error("%s on %s %s: %s (%s)", slug, request.method, request.url.path, exc, getattr(exc, "location", ""))
+            log_event(
+                logging.ERROR,
+                slug,
+                method=request.method,
+                path=request.url.path,
+                detail=str(exc),
+                location=getattr(exc, "location", None),
+            )
         return problem(status, slug, title, str(exc), request.url.path)
 
     for error in DOMAIN_PROBLEMS:
@@ -150,7 +158,7 @@ def install_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(Exception)
     async def _unexpected(request: Request, exc: Exception) -> JSONResponse:
-        log.exception("unexpected error on %s %s", request.method, request.url.path)
+        log_event(logging.ERROR, "unexpected-error", exc_info=True, method=request.method, path=request.url.path)
         return problem(
             500,
             "internal-error",

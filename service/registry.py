@@ -28,8 +28,7 @@ from calibration.bundle import Bundle, BundleNotFound, BundleStore
 from calibration.bundle.scorer import BundleScorer
 from calibration.bundle.store import DEFAULT_ALIAS, find_identical
 from calibration.errors import BundleError, BundleIntegrityError, StoreUnavailable
-
-log = logging.getLogger("equitheta.service")
+from service.logs import log_event
 
 # Background probe: every PROBE_INTERVAL seconds while healthy; after a failure first after
 # RETRY_FIRST seconds, doubling up to RETRY_MAX.
@@ -80,12 +79,12 @@ class BundleRegistry:
     def _mark(self, error: Exception | None) -> None:
         if error is None:
             if self.degraded_reason is not None:
-                log.info("bundle store reachable again")
+                log_event(logging.INFO, "store-reachable")
             self.degraded_reason = None
             self._retry_delay = RETRY_FIRST
         else:
             if self.degraded_reason is None:
-                log.warning("bundle store unreachable; serving cached bundles: %s", error)
+                log_event(logging.WARNING, "store-unreachable", detail=str(error), serving="cached bundles")
             self.degraded_reason = str(error)
 
     def _store(self, call: Any, *args: Any) -> Any:
@@ -111,7 +110,9 @@ class BundleRegistry:
             bundle = self._store(self.store.get, name, version)
         except BundleIntegrityError as exc:
             self._damaged[key] = str(exc)
-            log.error("refusing damaged bundle %s@%s: %s (%s)", name, version, exc, exc.location)
+            log_event(
+                logging.ERROR, "bundle-refused", bundle=f"{name}@{version}", detail=str(exc), location=exc.location
+            )
             raise
         loaded = LoadedBundle(bundle, BundleScorer(bundle))
         with self._lock:
@@ -144,7 +145,7 @@ class BundleRegistry:
         for alias, version in lost.items():
             aliases[alias] = self.store.set_alias(name, alias, version).version
         if lost:
-            log.warning("the bundle store had lost aliases of %s; re-seeded %s", name, lost)
+            log_event(logging.WARNING, "aliases-reseeded", bundle=name, aliases=dict(lost))
         with self._lock:
             self._view.versions[name] = versions
             self._view.aliases[name] = aliases
@@ -155,7 +156,7 @@ class BundleRegistry:
         for version in missing:
             self.store.put_version(self._loaded[(name, version)].bundle)
             self.reseeded.append(f"{name}@{version}")
-        log.warning("the bundle store had lost %s versions %s; re-seeded them from verified copies", name, missing)
+        log_event(logging.WARNING, "versions-reseeded", bundle=name, versions=missing, source="verified copies")
         return sorted(set(versions) | set(missing))
 
     # -- resolution ---------------------------------------------------------------------------------
@@ -267,4 +268,4 @@ class BundleRegistry:
         except StoreUnavailable as exc:
             self._mark(exc)
         except (BundleError, ValueError, KeyError) as exc:
-            log.warning("could not apply bundle event %r: %s", event, exc)
+            log_event(logging.WARNING, "event-ignored", event_body=repr(event), detail=str(exc))

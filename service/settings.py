@@ -64,14 +64,12 @@ class Settings(BaseSettings):
 
     @property
     def has_keys(self) -> bool:
+        """Whether any API key is configured (inline or in a file); without one access is open, loopback only."""
         return bool(self.api_keys.strip()) or self.api_keys_file is not None
-
-    @property
-    def is_redis(self) -> bool:
-        return self.store.startswith(("redis://", "rediss://", "unix://"))
 
 
 def is_loopback(host: str) -> bool:
+    """Whether ``host`` names this machine only (localhost, 127.0.0.0/8, ::1)."""
     if host == "localhost":
         return True
     try:

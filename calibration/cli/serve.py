@@ -28,7 +28,7 @@ def run_serve(args: argparse.Namespace) -> int:
             f"(missing: {', '.join(missing) or 'the service package'}); install them with: "
             "pip install 'equitheta[service]'"
         )
-    argv = [sys.executable, "-m", "service.main"]
+    argv = [sys.executable, "-m", "service"]
     for option in ("store", "redis_url", "host", "port", "workers", "worker_healthcheck_timeout"):
         value = getattr(args, option)
         if value is not None:

@@ -308,7 +308,7 @@ def test_metrics_count_every_worker(example_store: Path, tmp_path: Path) -> None
     command = [
         sys.executable,
         "-m",
-        "service.main",
+        "service",
         "--store",
         str(example_store),
         "--port",

@@ -1,4 +1,4 @@
-"""`python -m service.main` (what `equitheta serve` execs) runs uvicorn over a store and refuses bad settings."""
+"""`python -m service` (what `equitheta serve` execs) runs uvicorn over a store and refuses bad settings."""
 
 from __future__ import annotations
 
@@ -14,7 +14,7 @@ from tests.helpers import free_port
 
 def test_serve_runs_uvicorn_over_a_directory_store(example_store: Path) -> None:
     port = free_port()
-    command = [sys.executable, "-m", "service.main", "--store", str(example_store), "--port", str(port)]
+    command = [sys.executable, "-m", "service", "--store", str(example_store), "--port", str(port)]
     process = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
         deadline = time.time() + 30
@@ -40,7 +40,7 @@ def test_serve_runs_uvicorn_over_a_directory_store(example_store: Path) -> None:
 
 def test_serve_refuses_an_open_public_bind(example_store: Path) -> None:
     done = subprocess.run(
-        [sys.executable, "-m", "service.main", "--store", str(example_store), "--host", "0.0.0.0"],
+        [sys.executable, "-m", "service", "--store", str(example_store), "--host", "0.0.0.0"],
         capture_output=True,
         text=True,
         timeout=60,

@@ -1,0 +1,1 @@
+"""The HTTP surface: dependencies (``deps``), OpenAPI documentation (``docs``) and the routes."""

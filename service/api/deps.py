@@ -1,0 +1,114 @@
+"""Annotated dependencies that resolve and validate: settings, registry, caller and scope, bundle, batch.
+
+A route declares what it needs (``ReadScope``, ``DefaultBundle``, ``ScoreBatch`` ...) and receives it
+checked; a failed check raises a domain exception that ``service.errors`` turns into a problem document.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Annotated
+
+from fastapi import Body, Depends, Header, Request
+from fastapi import Path as PathParam
+
+from calibration.bundle.schema import ALIAS_PATTERN, NAME_PATTERN
+from service.api.docs import example
+from service.errors import PayloadTooLarge
+from service.metrics import Metrics
+from service.registry import BundleRegistry, LoadedBundle
+from service.schemas import ScoreRequest
+from service.security import KeyRing, Principal
+from service.settings import Settings
+
+NameParam = Annotated[str, PathParam(pattern=NAME_PATTERN, description="bundle name")]
+VersionParam = Annotated[int, PathParam(ge=1, le=2**31 - 1, description="bundle version")]
+AliasParam = Annotated[str, PathParam(pattern=ALIAS_PATTERN, description="alias, e.g. production")]
+AuthorizationHeader = Annotated[str | None, Header(description="Bearer <API key>")]
+ApiKeyHeader = Annotated[str | None, Header(description="the API key (alternative header)")]
+
+
+def settings_dep(request: Request) -> Settings:
+    """The settings the app was created with."""
+    return request.app.state.settings  # type: ignore[no-any-return]
+
+
+def registry_dep(request: Request) -> BundleRegistry:
+    """The registry of verified bundles (started by the lifespan)."""
+    return request.app.state.registry  # type: ignore[no-any-return]
+
+
+def metrics_dep(request: Request) -> Metrics:
+    """The app's metrics."""
+    return request.app.state.metrics  # type: ignore[no-any-return]
+
+
+def principal_dep(
+    request: Request, authorization: AuthorizationHeader = None, x_api_key: ApiKeyHeader = None
+) -> Principal:
+    """The caller named by the API key (or the open-access principal when no keys are configured)."""
+    keyring: KeyRing = request.app.state.keyring
+    return keyring.authenticate(authorization, x_api_key)
+
+
+SettingsDep = Annotated[Settings, Depends(settings_dep)]
+RegistryDep = Annotated[BundleRegistry, Depends(registry_dep)]
+MetricsDep = Annotated[Metrics, Depends(metrics_dep)]
+PrincipalDep = Annotated[Principal, Depends(principal_dep)]
+
+
+def _needs(scope: str) -> Callable[[Principal], Principal]:
+    def check(principal: PrincipalDep) -> Principal:
+        KeyRing.require(principal, scope)
+        return principal
+
+    return check
+
+
+ScoreScope = Annotated[Principal, Depends(_needs("score"))]
+ReadScope = Annotated[Principal, Depends(_needs("read"))]
+PublishScope = Annotated[Principal, Depends(_needs("publish"))]
+
+
+def metrics_access(
+    request: Request, settings: SettingsDep, authorization: AuthorizationHeader = None, x_api_key: ApiKeyHeader = None
+) -> None:
+    """Open by default like /healthz and /readyz (scrapers rarely carry keys); ``metrics_scope`` closes it."""
+    if settings.metrics_scope is not None:
+        KeyRing.require(principal_dep(request, authorization, x_api_key), settings.metrics_scope)
+
+
+MetricsAccess = Annotated[None, Depends(metrics_access)]
+
+
+def default_bundle(name: NameParam, registry: RegistryDep) -> LoadedBundle:
+    """The version the ``production`` alias points at, else the newest version (store errors map to problems)."""
+    return registry.default(name)
+
+
+def pinned_bundle(name: NameParam, version: VersionParam, registry: RegistryDep) -> LoadedBundle:
+    """One published version, verified."""
+    return registry.get(name, version)
+
+
+DefaultBundle = Annotated[LoadedBundle, Depends(default_bundle)]
+PinnedBundle = Annotated[LoadedBundle, Depends(pinned_bundle)]
+
+_SCORE_EXAMPLE = example("score_request")
+ScoreBody = Annotated[
+    ScoreRequest,
+    Body(openapi_examples={"one respondent": {"value": _SCORE_EXAMPLE}} if _SCORE_EXAMPLE else None),
+]
+
+
+def score_batch(body: ScoreBody, settings: SettingsDep) -> ScoreRequest:
+    """The score request, refused (413) when it holds more vectors than ``max_vectors``."""
+    if len(body.responses) > settings.max_vectors:
+        raise PayloadTooLarge(
+            f"{len(body.responses)} response vectors; at most {settings.max_vectors} per request "
+            "(EQUITHETA_MAX_VECTORS)"
+        )
+    return body
+
+
+ScoreBatch = Annotated[ScoreRequest, Depends(score_batch)]

@@ -1,0 +1,1 @@
+"""Routes by topic: ``scores`` (scoring), ``bundles`` (listing, publishing, aliases), ``ops`` (health, metrics)."""

@@ -1,0 +1,113 @@
+"""Bundle routes: list names and versions, read a verified bundle, publish, move an alias.
+
+Every route checks the caller's scope first (its first parameter), so a caller without it learns nothing.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import APIRouter
+from fastapi.responses import JSONResponse
+
+from calibration.bundle import Bundle
+from service.api.deps import AliasParam, NameParam, PinnedBundle, PublishScope, ReadScope, RegistryDep, VersionParam
+from service.api.docs import ok_example, problem_responses
+from service.errors import InvalidBundle
+from service.middleware import OrjsonRoute
+from service.schemas import AliasRequest, AliasResult, BundleList, BundleSummary, PublishResult
+
+router = APIRouter(route_class=OrjsonRoute, tags=["bundles"])
+
+
+def publish_answer(stored: Bundle, created: bool) -> Any:  # noqa: FBT001 - (bundle, created) is the store's answer
+    """201 with the new version, or 200 naming the version that already held this content."""
+    result = PublishResult(name=stored.name, version=stored.version, hash=stored.hash, created=created)
+    return result if created else JSONResponse(result.model_dump(), status_code=200)
+
+
+@router.get(
+    "/v1/bundles",
+    response_model=BundleList,
+    responses={200: ok_example("bundles"), **problem_responses(401, 403, 500, 503)},
+)
+def list_bundles(_: ReadScope, registry: RegistryDep) -> BundleList:
+    """Every bundle name with its versions and aliases."""
+    listing = registry.listing()
+    return BundleList(bundles=[BundleSummary(name=n, versions=v, aliases=a) for n, (v, a) in listing.items()])
+
+
+@router.get(
+    "/v1/bundles/{name}/versions",
+    response_model=BundleSummary,
+    responses={200: ok_example("versions"), **problem_responses(401, 403, 404, 422, 500, 503)},
+)
+def list_versions(_: ReadScope, name: NameParam, registry: RegistryDep) -> BundleSummary:
+    """The published versions of one bundle and its aliases."""
+    versions, aliases = registry.versions(name)
+    return BundleSummary(name=name, versions=versions, aliases=aliases)
+
+
+@router.get(
+    "/v1/bundles/{name}/versions/{version}",
+    response_model=Bundle,
+    responses={**problem_responses(401, 403, 404, 422, 500, 503)},
+)
+def get_version(_: ReadScope, loaded: PinnedBundle) -> Bundle:
+    """The whole verified bundle: groups, items, policy per item and group with evidence, anchors, quality."""
+    return loaded.bundle
+
+
+@router.put(
+    "/v1/bundles/{name}/versions/{version}",
+    response_model=PublishResult,
+    status_code=201,
+    responses={
+        200: {"model": PublishResult, "description": "identical content was already published"},
+        **problem_responses(401, 403, 409, 413, 422, 500, 503),
+    },
+)
+def put_version(_: PublishScope, name: NameParam, version: VersionParam, bundle: Bundle, registry: RegistryDep) -> Any:
+    """Publish a bundle at this version; a published version never changes (other content: 409)."""
+    if bundle.name != name or bundle.version != version:
+        raise InvalidBundle(
+            f"the document is {bundle.name}@{bundle.version} but the path names {name}@{version}",
+            field="body.version" if bundle.name == name else "body.name",
+        )
+    return publish_answer(*registry.put_version(bundle))
+
+
+@router.post(
+    "/v1/bundles/{name}/versions",
+    response_model=PublishResult,
+    status_code=201,
+    responses={
+        200: {
+            "model": PublishResult,
+            "description": "an identical calibration (same content but for version, time and hash) is already "
+            "published: nothing changed",
+        },
+        **problem_responses(401, 403, 413, 422, 500, 503),
+    },
+)
+def publish_next(_: PublishScope, name: NameParam, bundle: Bundle, registry: RegistryDep) -> Any:
+    """Publish a bundle as the next version of ``name`` (the version in the document is ignored).
+
+    An identical calibration already published is not published again: the answer names it (200).
+    """
+    if bundle.name != name:
+        raise InvalidBundle(f"the document is named {bundle.name!r} but the path names {name!r}", field="body.name")
+    return publish_answer(*registry.publish(bundle))
+
+
+@router.put(
+    "/v1/bundles/{name}/aliases/{alias}",
+    response_model=AliasResult,
+    responses={200: ok_example("alias_response"), **problem_responses(401, 403, 404, 422, 500, 503)},
+)
+def move_alias(
+    _: PublishScope, name: NameParam, alias: AliasParam, body: AliasRequest, registry: RegistryDep
+) -> AliasResult:
+    """Point an alias (e.g. ``production``) at a published version; move it back the same way."""
+    version = registry.set_alias(name, alias, body.version)
+    return AliasResult(name=name, alias=alias, version=version)

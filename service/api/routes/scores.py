@@ -1,0 +1,40 @@
+"""Scoring routes: the default version of a bundle, or one pinned version.
+
+Dependencies run in the order declared: the caller's scope (401/403), the batch (413), then the bundle (404).
+"""
+
+from __future__ import annotations
+
+import orjson
+from fastapi import APIRouter
+from fastapi.responses import Response
+
+from service.api.deps import DefaultBundle, MetricsDep, PinnedBundle, ScoreBatch, ScoreScope
+from service.api.docs import ok_example, problem_responses
+from service.metrics import Metrics
+from service.middleware import OrjsonRoute
+from service.registry import LoadedBundle
+from service.schemas import ScoreRequest, ScoreResponse
+from service.scoring import score_vectors
+
+router = APIRouter(route_class=OrjsonRoute, tags=["scoring"])
+_ANSWERS = {200: ok_example("score_response"), **problem_responses(401, 403, 404, 413, 422, 500, 503)}
+
+
+def _scored(loaded: LoadedBundle, body: ScoreRequest, metrics: Metrics) -> Response:
+    document = score_vectors(loaded, body)
+    metrics.count_vectors(loaded.bundle.label, len(body.responses))
+    # Built in the ScoreResponse shape (tests check it against the schema); sent without re-validation.
+    return Response(orjson.dumps(document), media_type="application/json")
+
+
+@router.post("/v1/bundles/{name}/scores", response_model=ScoreResponse, responses=_ANSWERS)
+def score_default(_: ScoreScope, body: ScoreBatch, loaded: DefaultBundle, metrics: MetricsDep) -> Response:
+    """Score with the version the ``production`` alias points at, else the newest version."""
+    return _scored(loaded, body, metrics)
+
+
+@router.post("/v1/bundles/{name}/versions/{version}/scores", response_model=ScoreResponse, responses=_ANSWERS)
+def score_version(_: ScoreScope, body: ScoreBatch, loaded: PinnedBundle, metrics: MetricsDep) -> Response:
+    """Score with one pinned version."""
+    return _scored(loaded, body, metrics)

@@ -1,0 +1,152 @@
+"""Scoring glue: a score request checked against a bundle, scored in one vectorised call, as JSON-ready data."""
+
+from __future__ import annotations
+
+import math
+from itertools import chain
+from typing import Any
+
+import numpy as np
+
+from calibration.bundle.scorer import UnknownGroup
+from service.errors import AnswerOutOfRange, ProblemError, UnknownGroupProblem, UnknownItem
+from service.registry import LoadedBundle
+from service.schemas import CAUTION, ScoreRequest
+
+
+def _finite(value: float) -> float | None:
+    return float(value) if math.isfinite(value) else None
+
+
+def _json_floats(array: np.ndarray) -> list[float | None]:
+    """Floats for JSON: NaN and infinities become null (a pass over the list only when there are any)."""
+    values = array.tolist()
+    if np.isfinite(array).all():
+        return values  # type: ignore[no-any-return]
+    return [v if math.isfinite(v) else None for v in values]
+
+
+def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]:
+    """Validate the vectors against the bundle and score them in one vectorised call.
+
+    Returns the ScoreResponse document as plain JSON-ready data (the route sends it as is).
+    """
+    scorer, bundle = loaded.scorer, loaded.bundle
+    x = _answer_matrix(loaded, request)
+    groups = _resolve_groups(loaded, request)
+    result = scorer.score(x, groups, method=request.options.method)
+    excluded = {g: [{"item": i, "reason": r} for i, r in scorer.excluded_for(g)] for g in scorer.plans}
+    # Plain dicts (the ScoreResult shape) instead of one model per respondent: the batch hot path.
+    columns = [
+        _json_floats(array)
+        for array in (result.theta, result.se, result.scale_score, result.scale_se, result.person_fit)
+    ]
+    results = [
+        {
+            "id": vector.id,
+            "group": g,
+            "theta": theta,
+            "se": se,
+            "scale_score": scale,
+            "scale_se": scale_se,
+            "items_answered": n_items,
+            "excluded_items": excluded[g],
+            "flags": list(flags),
+            "person_fit_lz_star": lz,
+            "summed_score": None,
+            "summed_score_theta": None,
+            "summed_score_se": None,
+        }
+        for vector, g, theta, se, scale, scale_se, n_items, flags, lz in zip(
+            request.responses, groups, *columns[:4], result.n_answered.tolist(), result.flags, columns[4], strict=True
+        )
+    ]
+    if request.options.include_summed_score:
+        _add_summed_scores(results, result.summed_score.tolist(), loaded)
+    return {
+        "bundle": {"name": bundle.name, "version": bundle.version, "hash": bundle.hash},
+        "method": result.method,
+        "results": results,
+        "caution": CAUTION,
+    }
+
+
+def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
+    """(n_vectors, n_items) answers, NaN where none was given; errors name the earliest offending vector.
+
+    Vectors usually share one key order: each distinct layout of keys is placed with one column
+    lookup, reading the values at C speed.
+    """
+    scorer = loaded.scorer
+    index = {item: j for j, item in enumerate(scorer.item_ids)}
+    limits = np.asarray([scorer.item_categories[item] for item in scorer.item_ids], dtype=np.int64)
+    x = np.full((len(request.responses), len(scorer.item_ids)), np.nan)
+    layouts: dict[tuple[str, ...], list[int]] = {}
+    for i, vector in enumerate(request.responses):
+        layouts.setdefault(tuple(vector.answers), []).append(i)
+    problems: list[tuple[int, ProblemError]] = []
+    for keys, members in layouts.items():
+        if not keys:
+            continue
+        cols = np.fromiter((index.get(k, -1) for k in keys), dtype=np.int64, count=len(keys))
+        if (cols < 0).any():
+            problems.append(_unknown_item(loaded, request, members[0], keys[int(np.flatnonzero(cols < 0)[0])]))
+            continue
+        values = np.fromiter(
+            chain.from_iterable(request.responses[i].answers.values() for i in members),
+            dtype=np.int64,
+            count=len(members) * len(keys),
+        ).reshape(len(members), len(keys))
+        outside = (values < 0) | (values >= limits[cols][None, :])
+        if outside.any():
+            r, c = (int(v[0]) for v in np.nonzero(outside))
+            i, item, value = members[r], keys[c], int(values[r, c])
+            problems.append(
+                (
+                    i,
+                    AnswerOutOfRange(
+                        f"responses[{i}] (id {request.responses[i].id!r}), item {item!r}: answer {value} is "
+                        f"outside the item's categories 0..{limits[cols[c]] - 1}",
+                        field=f"responses.{i}.answers.{item}",
+                    ),
+                )
+            )
+            continue
+        x[np.ix_(np.asarray(members, dtype=np.int64), cols)] = values
+    if problems:
+        raise min(problems, key=lambda p: p[0])[1]
+    return x
+
+
+def _unknown_item(loaded: LoadedBundle, request: ScoreRequest, i: int, item: str) -> tuple[int, ProblemError]:
+    message = f"responses[{i}] (id {request.responses[i].id!r}): item {item!r} is not in bundle {loaded.bundle.label}"
+    return i, UnknownItem(message, field=f"responses.{i}.answers.{item}")
+
+
+def _resolve_groups(loaded: LoadedBundle, request: ScoreRequest) -> tuple[str, ...]:
+    scorer = loaded.scorer
+    try:
+        return scorer.resolve_groups([v.group for v in request.responses], len(request.responses))
+    except UnknownGroup as exc:
+        vector = request.responses[exc.index]
+        known = ", ".join(sorted(scorer.plans))
+        what = (
+            "no group given and the bundle has several groups"
+            if exc.group is None
+            else f"group {exc.group!r} is not in bundle {loaded.bundle.label}"
+        )
+        raise UnknownGroupProblem(
+            f"responses[{exc.index}] (id {vector.id!r}): {what} (groups: {known})", field=f"responses.{exc.index}.group"
+        ) from exc
+
+
+def _add_summed_scores(results: list[dict[str, Any]], summed_scores: list[float], loaded: LoadedBundle) -> None:
+    """Each result's summed score with the theta and SE its group's summed-score table gives it."""
+    tables = {
+        name: {row.summed_score: (row.theta, row.se) for row in quality.summed_score_table}
+        for name, quality in loaded.bundle.quality.by_group.items()
+    }
+    for entry, summed in zip(results, summed_scores, strict=True):
+        if math.isfinite(summed):
+            theta_s, se_s = tables.get(entry["group"], {}).get(int(summed), (math.nan, math.nan))
+            entry.update(summed_score=int(summed), summed_score_theta=_finite(theta_s), summed_score_se=_finite(se_s))
