@@ -22,7 +22,8 @@ import warnings
 import numpy as np
 
 from benchmarks.common import machine
-from calibration.dif.irt import DifSettings, run_irt_dif
+from calibration.dif.irt import run_irt_dif
+from calibration.dif.settings import DifSettings
 from calibration.estimation import ConvergenceWarning, EMSettings, calibrate_groups
 from calibration.io import ResponseData
 from calibration.irt.simulate import simulate_responses
@@ -103,7 +104,7 @@ def replications(n_reps: int, n_per_group: int = 1000, n_items: int = 20, fdr: f
                 scalar,
                 item_ids=tuple(f"I{j}" for j in range(n_items)),
                 models=("2pl",) * n_items,
-                settings=DifSettings(alpha=fdr),
+                settings=DifSettings(fdr_level=fdr),
                 em_settings=EMSettings(),
             )
         if set(outcome.anchors) & {j for j, _ in dif}:

@@ -39,34 +39,50 @@ class ProblemError(Exception):
 
 
 class InvalidScoreRequest(ProblemError):
+    """A score request that does not fit the bundle (422)."""
+
     status, slug, title = 422, "invalid-score-request", "The response vectors cannot be scored"
 
 
 class UnknownItem(InvalidScoreRequest):
+    """A response vector names an item the bundle does not have."""
+
     slug, title = "unknown-item", "Unknown item"
 
 
 class AnswerOutOfRange(InvalidScoreRequest):
+    """An answer outside its item's categories."""
+
     slug, title = "answer-out-of-range", "Answer outside the item's categories"
 
 
 class UnknownGroupProblem(InvalidScoreRequest):
+    """A response vector's group is not in the bundle (or none is given where several exist)."""
+
     slug, title = "unknown-group", "Unknown group"
 
 
 class InvalidBundle(ProblemError):
+    """A published document that contradicts its path (422)."""
+
     status, slug, title = 422, "invalid-bundle", "The bundle document is not valid"
 
 
 class Unauthorized(ProblemError):
+    """No API key, or an unknown one (401)."""
+
     status, slug, title = 401, "unauthorized", "Missing or unknown API key"
 
 
 class Forbidden(ProblemError):
+    """A key without the scope the route needs (403)."""
+
     status, slug, title = 403, "forbidden", "The API key lacks the scope this route needs"
 
 
 class PayloadTooLarge(ProblemError):
+    """A request with too many vectors or too many bytes (413)."""
+
     status, slug, title = 413, "payload-too-large", "Request too large"
 
 
@@ -92,6 +108,7 @@ def problem(
     headers: dict[str, str] | None = None,
     **extra: Any,
 ) -> JSONResponse:
+    """An RFC 9457 problem document as a response (``application/problem+json``)."""
     body: dict[str, Any] = {"type": PROBLEM_BASE + slug, "title": title, "status": status, "detail": detail}
     if instance:
         body["instance"] = instance
@@ -111,6 +128,8 @@ def _allow_header(request: Request) -> dict[str, str]:
 
 
 def install_handlers(app: FastAPI) -> None:
+    """Register the one table from domain exception to problem document, and the framework's own errors."""
+
     @app.exception_handler(ProblemError)
     async def _domain(request: Request, exc: ProblemError) -> JSONResponse:
         headers = {"WWW-Authenticate": "Bearer"} if exc.status == 401 else None

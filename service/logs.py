@@ -23,6 +23,7 @@ class JsonLogFormatter(logging.Formatter):
     """One JSON object per line: the event (or message), its fields, level, logger and time."""
 
     def format(self, record: logging.LogRecord) -> str:
+        """One JSON line: the event, its fields, level, logger, time and any traceback."""
         fields = getattr(record, "fields", None)
         body: dict[str, Any] = (
             {"event": record.getMessage(), **fields}

@@ -18,6 +18,7 @@ CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
 
 
 def multiprocess_mode() -> bool:
+    """Whether counters are shared between worker processes (PROMETHEUS_MULTIPROC_DIR is set)."""
     return bool(os.environ.get("PROMETHEUS_MULTIPROC_DIR"))
 
 
@@ -60,17 +61,21 @@ class Metrics:
         )
 
     def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        """Count one request by route template, method and status, and its duration."""
         self.requests.labels(route, method, str(status)).inc()
         self.latency.labels(route).observe(seconds)
 
     def count_vectors(self, bundle: str, n: int) -> None:
+        """Count scored vectors for one bundle."""
         self.vectors.labels(bundle).inc(n)
 
     def set_state(self, *, bundles_loaded: int, store_up: bool) -> None:
+        """Set the readiness gauges."""
         self.bundles_loaded.set(bundles_loaded)
         self.store_up.set(1.0 if store_up else 0.0)
 
     def render(self) -> bytes:
+        """The Prometheus text exposition (every worker's counters when several run)."""
         if self._registry is not None:
             return generate_latest(self._registry)
         registry = CollectorRegistry()

@@ -25,13 +25,17 @@ class OrjsonRequest(Request):
     """
 
     async def json(self) -> Any:
+        """The body decoded by orjson, once."""
         if not hasattr(self, "_json"):
             self._json = orjson.loads(await self.body())
         return self._json
 
 
 class OrjsonRoute(APIRoute):
+    """A route that hands its handler an :class:`OrjsonRequest`."""
+
     def get_route_handler(self) -> Callable[[Request], Any]:
+        """The framework's handler, given an orjson-decoding request."""
         handler = super().get_route_handler()
 
         async def decoded(request: Request) -> Any:
@@ -47,6 +51,7 @@ class BodyLimit:
         self.app, self.max_bytes = app, max_bytes
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        """Pass the request on with its body read up to the limit (413 beyond it)."""
         if scope["type"] != "http" or scope["method"] in ("GET", "HEAD", "OPTIONS"):
             await self.app(scope, receive, send)
             return
@@ -91,6 +96,7 @@ class Observe:
         self.app, self.metrics = app, metrics
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        """Pass the request on; count it and log one line when it is answered."""
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return

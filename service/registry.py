@@ -39,17 +39,23 @@ RETRY_MAX = 10.0
 
 @dataclass
 class LoadedBundle:
+    """A verified bundle and its scorer."""
+
     bundle: Bundle
     scorer: BundleScorer
 
 
 @dataclass
 class StoreView:
+    """The last listing of the store: versions and aliases by name."""
+
     versions: dict[str, list[int]] = field(default_factory=dict)
     aliases: dict[str, dict[str, int]] = field(default_factory=dict)
 
 
 class BundleRegistry:
+    """Verified bundles and scorers shared by the routes, kept fresh by a background probe and the change feed."""
+
     def __init__(self, store: BundleStore) -> None:
         self.store = store
         self._loaded: dict[tuple[str, int], LoadedBundle] = {}
@@ -66,14 +72,17 @@ class BundleRegistry:
     # -- state --------------------------------------------------------------------------------------
     @property
     def loaded_count(self) -> int:
+        """Number of bundle versions held verified in memory."""
         return len(self._loaded)
 
     @property
     def damaged(self) -> list[str]:
+        """Stored versions that failed verification, as ``name@version: reason``."""
         return sorted(f"{n}@{v}" for n, v in self._damaged)
 
     @property
     def store_up(self) -> bool:
+        """Whether the store answered the last probe."""
         return self.degraded_reason is None
 
     def _mark(self, error: Exception | None) -> None:
@@ -161,6 +170,7 @@ class BundleRegistry:
 
     # -- resolution ---------------------------------------------------------------------------------
     def get(self, name: str, version: int) -> LoadedBundle:
+        """One verified version (from memory when held, else from the store)."""
         return self._load(name, version)
 
     def _refresh_or_remembered(self, name: str) -> None:
@@ -183,6 +193,7 @@ class BundleRegistry:
         return self.get(name, versions[-1])
 
     def listing(self) -> dict[str, tuple[list[int], dict[str, int]]]:
+        """Every bundle name with its versions and aliases."""
         try:
             names = self._store(self.store.names)
             for name in names:
@@ -192,6 +203,7 @@ class BundleRegistry:
         return {n: (self._view.versions.get(n, []), self._view.aliases.get(n, {})) for n in names}
 
     def versions(self, name: str) -> tuple[list[int], dict[str, int]]:
+        """The versions and aliases of one bundle (404 when unknown)."""
         self._refresh_or_remembered(name)
         versions = self._view.versions.get(name, [])
         if not versions:
@@ -219,6 +231,7 @@ class BundleRegistry:
         return stored, True
 
     def set_alias(self, name: str, alias: str, version: int) -> int:
+        """Point an alias at a published version; the version it now points at."""
         record = self._store(self.store.set_alias, name, alias, version)
         self._store(self._refresh_view, name)
         return int(record.version)
@@ -232,6 +245,7 @@ class BundleRegistry:
             self._threads.append(thread)
 
     def stop(self) -> None:
+        """Stop the background probe and the change feed."""
         self._stop.set()
 
     def _probe(self) -> None:

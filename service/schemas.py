@@ -6,6 +6,8 @@ from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, StrictInt
 
+from calibration.vocabulary import ScoringMethod
+
 CAUTION = (
     "Every score has measurement error: report the SE with it. Scores from few answered items or with low "
     "reliability must not drive individual high-stakes decisions on their own. Items left out for a group come "
@@ -25,13 +27,18 @@ class _Strict(BaseModel):
 
 
 class ScoreOptions(_Strict):
-    method: Literal["eap", "map", "ml"] | None = Field(None, description="default: the bundle's scoring method")
+    """How to score: the method (default: the bundle's) and whether to add summed-score results."""
+
+    method: ScoringMethod | None = Field(None, description="default: the bundle's scoring method")
     include_summed_score: bool = Field(
-        False, description="add the summed score and its EAP conversion when every item of the group was answered"
+        default=False,
+        description="add the summed score and its EAP conversion when every item of the group was answered",
     )
 
 
 class ResponseVector(_Strict):
+    """One respondent: an id, the group (when the bundle has several) and the answers by item."""
+
     id: str = Field(min_length=1, max_length=200, description="the respondent's id, echoed back")
     group: str | None = Field(None, max_length=200, description="required when the bundle has several groups")
     answers: dict[str, Annotated[StrictInt, Field(ge=0, le=MAX_ANSWER_CODE)]] = Field(
@@ -41,16 +48,22 @@ class ResponseVector(_Strict):
 
 
 class ScoreRequest(_Strict):
+    """A batch of response vectors and the scoring options."""
+
     responses: list[ResponseVector] = Field(min_length=1)
     options: ScoreOptions = Field(default_factory=ScoreOptions)
 
 
 class ExcludedItemOut(_Strict):
+    """An item left out of a respondent's score, and why."""
+
     item: str
     reason: str
 
 
 class ScoreResult(_Strict):
+    """One respondent's theta and SE, reporting-scale score and SE, items answered, exclusions and flags."""
+
     id: str
     group: str
     theta: float | None
@@ -69,12 +82,16 @@ class ScoreResult(_Strict):
 
 
 class BundleRef(_Strict):
+    """The bundle version that scored the batch."""
+
     name: str
     version: int
     hash: str
 
 
 class ScoreResponse(_Strict):
+    """Every respondent's result, the bundle that scored them, and the caution that goes with scores."""
+
     bundle: BundleRef
     method: str
     results: list[ScoreResult]
@@ -82,16 +99,22 @@ class ScoreResponse(_Strict):
 
 
 class BundleSummary(_Strict):
+    """One bundle name with its versions and aliases."""
+
     name: str
     versions: list[int]
     aliases: dict[str, int]
 
 
 class BundleList(_Strict):
+    """Every bundle in the store."""
+
     bundles: list[BundleSummary]
 
 
 class PublishResult(_Strict):
+    """The version a publication created (201) or found already holding the content (200)."""
+
     name: str
     version: int
     hash: str
@@ -99,20 +122,28 @@ class PublishResult(_Strict):
 
 
 class AliasRequest(_Strict):
+    """The version an alias is to point at."""
+
     version: int = Field(ge=1, le=MAX_VERSION, description="a published version of the bundle")
 
 
 class AliasResult(_Strict):
+    """Where an alias points now."""
+
     name: str
     alias: str
     version: int
 
 
 class Health(_Strict):
+    """The process answers."""
+
     status: Literal["ok"]
 
 
 class Readiness(_Strict):
+    """Whether the service can score: store reachable, bundles held, damaged versions."""
+
     status: Literal["ready", "degraded", "not_ready"]
     store: str
     bundles_loaded: int

@@ -20,13 +20,14 @@ import sys
 from dataclasses import dataclass
 from pathlib import Path
 
+from calibration.vocabulary import SCOPES
 from service.errors import Forbidden, Unauthorized
-
-SCOPES = ("score", "read", "publish")
 
 
 @dataclass(frozen=True)
 class Principal:
+    """An authenticated caller: its name and scopes."""
+
     name: str
     scopes: frozenset[str]
 
@@ -36,12 +37,15 @@ OPEN_ACCESS = Principal("open-access (no API keys configured)", frozenset(SCOPES
 
 @dataclass(frozen=True)
 class KeyRecord:
+    """One configured key: its name, the SHA-256 of the key, its scopes."""
+
     name: str
     scopes: frozenset[str]
     digest: bytes
 
 
 def key_digest(key: str) -> str:
+    """SHA-256 (hex) of an API key: what the key file stores instead of the key."""
     return hashlib.sha256(key.encode("utf-8")).hexdigest()
 
 
@@ -55,6 +59,7 @@ def _record(name: str, scopes: list[str], digest: str, where: str) -> KeyRecord:
 
 
 def load_keys(path: Path | None, inline: str) -> list[KeyRecord]:
+    """Key records from a key file and/or an inline setting (unknown scopes refused, naming the key)."""
     records: list[KeyRecord] = []
     if path is not None:
         try:
@@ -75,14 +80,18 @@ def load_keys(path: Path | None, inline: str) -> list[KeyRecord]:
 
 
 class KeyRing:
+    """The configured keys: authenticates a request's key in constant time."""
+
     def __init__(self, records: list[KeyRecord]) -> None:
         self.records = records
 
     @property
     def open(self) -> bool:
+        """Whether no key is configured (open access, loopback only)."""
         return not self.records
 
     def authenticate(self, authorization: str | None, api_key: str | None) -> Principal:
+        """The principal of a request's key (401 without one or with an unknown one)."""
         if self.open:
             return OPEN_ACCESS
         presented = api_key
@@ -101,6 +110,7 @@ class KeyRing:
 
     @staticmethod
     def require(principal: Principal, scope: str) -> None:
+        """Refuse (403) a principal without ``scope``."""
         if scope not in principal.scopes:
             raise Forbidden(
                 f"key {principal.name!r} lacks the {scope!r} scope this route needs "
@@ -109,6 +119,7 @@ class KeyRing:
 
 
 def main(argv: list[str]) -> int:
+    """``python -m service.security NAME SCOPE...``: print a new key and the record to store for it."""
     if len(argv) != 3 or argv[0] != "new":
         print("usage: python -m service.security new NAME score,read,publish", file=sys.stderr)
         return 2

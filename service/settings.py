@@ -4,10 +4,11 @@ from __future__ import annotations
 
 import ipaddress
 from pathlib import Path
-from typing import Literal
 
 from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
+
+from calibration.vocabulary import Scope
 
 
 class Settings(BaseSettings):
@@ -25,12 +26,12 @@ class Settings(BaseSettings):
     api_keys: str = Field("", description="inline keys: 'name:scope+scope:sha256hex' separated by ';'", repr=False)
     max_body_bytes: int = Field(4 * 1024 * 1024, ge=1024)
     max_vectors: int = Field(10_000, ge=1)
-    preload: bool = Field(True, description="load every bundle at start-up")
+    preload: bool = Field(default=True, description="load every bundle at start-up")
     log_level: str = "info"
-    metrics_scope: Literal["read", "score", "publish"] | None = Field(
+    metrics_scope: Scope | None = Field(
         None, description="scope a key needs for /metrics (default: open, like /healthz and /readyz)"
     )
-    docs: bool = Field(True, description="serve /docs, /redoc and /openapi.json")
+    docs: bool = Field(default=True, description="serve /docs, /redoc and /openapi.json")
     worker_healthcheck_timeout: float = Field(
         60.0,
         gt=0,

@@ -21,12 +21,14 @@ __all__ = ["BundleError", "BundleIntegrityError", "canonical_bytes", "content_ha
 
 
 def canonical_bytes(document: dict[str, Any]) -> bytes:
+    """The canonical bytes of a bundle document: what its SHA-256 is taken over."""
     return json.dumps(document, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False).encode(
         "utf-8"
     )
 
 
 def content_hash(document: dict[str, Any]) -> str:
+    """SHA-256 (hex) of the canonical bytes of a document without its ``hash`` field."""
     body = {k: v for k, v in document.items() if k != "hash"}
     return hashlib.sha256(canonical_bytes(body)).hexdigest()
 

@@ -106,10 +106,12 @@ class RedisStore:
         return f"RedisStore({redact_url(self.url)!r}, prefix={self.prefix!r})"
 
     def key(self, *parts: str | int) -> str:
+        """The Redis key of these parts under the store's prefix."""
         return ":".join([self.prefix, *map(str, parts)])
 
     @property
     def channel(self) -> str:
+        """The publish channel every replica listens on for version and alias changes."""
         return self.key(EVENTS)
 
     def _call(self, fn: Any, *args: Any, **kwargs: Any) -> Any:
@@ -126,6 +128,7 @@ class RedisStore:
         return text.replace(password, "***") if password else text
 
     def ping(self) -> bool:
+        """Whether Redis answers (raises nothing; False when it does not)."""
         try:
             return bool(self._health.ping())
         except (redis.ConnectionError, redis.TimeoutError, redis.ResponseError):
@@ -155,13 +158,16 @@ class RedisStore:
             raise InvalidReference(f"bundle name {name!r} is not valid")
 
     def names(self) -> list[str]:
+        """Every bundle name, sorted."""
         return sorted(n.decode() for n in self._call(self.client.smembers, self.key("names")))
 
     def versions(self, name: str) -> list[int]:
+        """Published versions of ``name``, ascending."""
         self._check_name(name)
         return [int(v) for v in self._call(self.client.zrange, self.key("versions", name), 0, -1)]
 
     def get(self, name: str, version: int) -> Bundle:
+        """One published version, verified against its hash."""
         self._check_name(name)
         data = self._call(self.client.get, self.key("bundle", name, version))
         if data is None:
@@ -190,6 +196,7 @@ class RedisStore:
         return bool(int(created))
 
     def publish(self, bundle: Bundle) -> Bundle:
+        """Publish as the next version of the bundle's name (the document's version is ignored)."""
         self._check_name(bundle.name)
         for _ in range(100):
             newest = self._call(self.client.zrevrange, self.key("versions", bundle.name), 0, 0)
@@ -199,6 +206,7 @@ class RedisStore:
         raise BundleError(f"could not find a free version for {bundle.name!r} after 100 attempts")
 
     def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]:
+        """Publish at the document's version: ``(stored, True)`` if new, ``(existing, False)`` if identical."""
         self._check_name(bundle.name)
         sealed = check_placed_version(bundle)
         if self._write(sealed):
@@ -206,6 +214,7 @@ class RedisStore:
         return same_or_conflict(self.get(bundle.name, bundle.version), sealed), False
 
     def aliases(self, name: str) -> dict[str, AliasRecord]:
+        """Aliases of ``name`` with their versions and history."""
         self._check_name(name)
         table = self._call(self.client.hgetall, self.key("aliases", name))
         out = {}
@@ -217,6 +226,7 @@ class RedisStore:
         return out
 
     def set_alias(self, name: str, alias: str, version: int) -> AliasRecord:
+        """Point ``alias`` at ``version`` (a published version), keeping the previous target in its history."""
         if not valid_alias(alias):
             raise InvalidReference(f"alias {alias!r} is not valid: a lower-case letter, then letters, digits, _ or -")
         self.get(name, version)
@@ -233,6 +243,7 @@ class RedisStore:
         return self.aliases(name)[alias]
 
     def alias_back(self, name: str, alias: str) -> AliasRecord:
+        """Move ``alias`` back to the version it pointed at before."""
         self._check_name(name)
         if alias not in self.aliases(name):
             raise BundleNotFound(f"bundle {name!r} has no alias {alias!r}")

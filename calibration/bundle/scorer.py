@@ -238,4 +238,5 @@ class BundleScorer:
         )
 
     def excluded_for(self, group: str) -> tuple[tuple[str, str], ...]:
+        """Items left out of ``group``'s score, with the reason for each."""
         return self.plans[group].excluded

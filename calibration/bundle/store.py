@@ -58,22 +58,45 @@ DEFAULT_ALIAS = "production"
 
 @dataclass(frozen=True)
 class AliasRecord:
+    """Where an alias points now, and the versions it pointed at before (newest last)."""
+
     alias: str
     version: int
     history: tuple[tuple[int, str], ...]  # (version, moved_at) oldest first, current last
 
 
 class BundleStore(Protocol):
-    def names(self) -> list[str]: ...
-    def versions(self, name: str) -> list[int]: ...
-    def get(self, name: str, version: int) -> Bundle: ...
-    def publish(self, bundle: Bundle) -> Bundle: ...
-    def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]: ...
-    def ping(self) -> bool: ...
-    def events(self, stop: threading.Event) -> Iterator[dict[str, Any] | None]: ...
-    def aliases(self, name: str) -> dict[str, AliasRecord]: ...
-    def set_alias(self, name: str, alias: str, version: int) -> AliasRecord: ...
-    def alias_back(self, name: str, alias: str) -> AliasRecord: ...
+    """The contract every bundle store keeps: immutable versions, aliases, a ping and a change feed."""
+
+    def names(self) -> list[str]:
+        """Every bundle name, sorted."""
+
+    def versions(self, name: str) -> list[int]:
+        """Published versions of ``name``, ascending."""
+
+    def get(self, name: str, version: int) -> Bundle:
+        """One published version, verified against its hash."""
+
+    def publish(self, bundle: Bundle) -> Bundle:
+        """Publish as the next version of the bundle's name."""
+
+    def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]:
+        """Publish at the document's version: ``(stored, True)`` if new, ``(existing, False)`` if identical."""
+
+    def ping(self) -> bool:
+        """Whether the store answers."""
+
+    def events(self, stop: threading.Event) -> Iterator[dict[str, Any] | None]:
+        """Version and alias changes as they happen, until ``stop`` is set."""
+
+    def aliases(self, name: str) -> dict[str, AliasRecord]:
+        """Aliases of ``name`` with their versions and history."""
+
+    def set_alias(self, name: str, alias: str, version: int) -> AliasRecord:
+        """Point ``alias`` at a published ``version``."""
+
+    def alias_back(self, name: str, alias: str) -> AliasRecord:
+        """Move ``alias`` back to the version it pointed at before."""
 
 
 def check_placed_version(bundle: Bundle) -> Bundle:
@@ -220,6 +243,7 @@ class DirectoryStore:
         return directory / f"v{version:06d}.json"
 
     def names(self) -> list[str]:
+        """Every bundle name, sorted."""
         if not self.root.is_dir():
             return []
         return sorted(
@@ -227,6 +251,7 @@ class DirectoryStore:
         )
 
     def versions(self, name: str) -> list[int]:
+        """Published versions of ``name``, ascending."""
         directory = self._dir(name)
         if not directory.is_dir():
             return []
@@ -238,6 +263,7 @@ class DirectoryStore:
         return sorted(found)
 
     def get(self, name: str, version: int) -> Bundle:
+        """One published version, verified against its hash."""
         path = self._file(self._dir(name), version)
         try:
             data = path.read_bytes()
@@ -256,6 +282,7 @@ class DirectoryStore:
         return bundle
 
     def publish(self, bundle: Bundle) -> Bundle:
+        """Publish as the next version of the bundle's name (the document's version is ignored)."""
         directory = self._dir(bundle.name)
         directory.mkdir(parents=True, exist_ok=True)
         # Retry if another writer takes the version we chose between listing and linking.
@@ -270,6 +297,7 @@ class DirectoryStore:
         raise BundleError(f"could not find a free version for {bundle.name!r} after 100 attempts")
 
     def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]:
+        """Publish at the document's version: ``(stored, True)`` if new, ``(existing, False)`` if identical."""
         directory = self._dir(bundle.name)
         sealed = check_placed_version(bundle)
         directory.mkdir(parents=True, exist_ok=True)
@@ -319,6 +347,7 @@ class DirectoryStore:
         return data
 
     def aliases(self, name: str) -> dict[str, AliasRecord]:
+        """Aliases of ``name`` with their versions and history."""
         directory = self._dir(name)
         return {
             alias: AliasRecord(
@@ -330,6 +359,7 @@ class DirectoryStore:
         }
 
     def set_alias(self, name: str, alias: str, version: int) -> AliasRecord:
+        """Point ``alias`` at ``version`` (a published version), keeping the previous target in its history."""
         if not valid_alias(alias):
             raise InvalidReference(f"alias {alias!r} is not valid: a lower-case letter, then letters, digits, _ or -")
         self.get(name, version)  # the target must exist and verify

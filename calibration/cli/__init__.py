@@ -214,6 +214,7 @@ def _add_demo(sub: argparse._SubParsersAction) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    """The ``equitheta`` argument parser (no numerical package is imported to build it)."""
     parser = argparse.ArgumentParser(
         prog="equitheta",
         formatter_class=_Formatter,
@@ -228,6 +229,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    """Run one ``equitheta`` command; the exit status (0 ok, 1 input problem, 2 usage, 3 bundle or store)."""
     args = build_parser().parse_args(argv)
     from calibration.cli.console import error_console
 

@@ -13,6 +13,7 @@ from calibration.errors import BundleIntegrityError
 
 
 def run_bundle(args: argparse.Namespace) -> int:
+    """``equitheta bundle``: list, show or alias published bundles."""
     console = out_console()
     if args.bundle_command == "schema":
         console.print_json(json.dumps(Bundle.model_json_schema()))

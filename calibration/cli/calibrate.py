@@ -25,14 +25,15 @@ STAGES = {
 
 
 def settings_from_args(args: argparse.Namespace) -> PipelineSettings:
+    """Pipeline settings from the command line (options left out keep the library's defaults)."""
     from calibration.bundle.schema import ReportingScaleSettings
-    from calibration.dif.irt import DifSettings
+    from calibration.dif.settings import DifSettings
     from calibration.estimation import EMSettings, SlopePrior
     from calibration.pipeline import PipelineSettings
 
     anchors = tuple(a.strip() for a in args.anchors.split(",") if a.strip())
     return PipelineSettings(
-        dif=DifSettings(alpha=args.fdr, anchors=anchors),
+        dif=DifSettings(fdr_level=args.fdr, anchors=anchors),
         dif_action=args.dif_action,
         mh_greater_than_one_z=args.mh_z,
         min_group_size=args.min_group_size,
@@ -52,6 +53,7 @@ def settings_from_args(args: argparse.Namespace) -> PipelineSettings:
 
 
 def run_calibrate(args: argparse.Namespace) -> int:
+    """``equitheta calibrate``: check, calibrate, publish and summarise."""
     parse_reference(args.name)  # a bad name fails before the work, not after
     spec = read_item_spec(args.items) if args.items else None
     data = read_responses(

@@ -13,6 +13,7 @@ from calibration.io import write_csv_atomic
 
 
 def run_demo(args: argparse.Namespace) -> int:
+    """``equitheta demo``: invented workforce-skills data, calibrated and scored end to end."""
     from calibration.cli import main
 
     console = out_console()

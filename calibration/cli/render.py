@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from calibration.bundle.schema import Bundle, IrtDifRow, ObservedDifRow
 from calibration.cli.console import dash, new_table, out_console
-from calibration.dif.intervals import effect_interval
+from calibration.dif.effect_size import effect_interval
 
 CAUTION = (
     "Every score carries measurement error: report the SE with it. Scores with low reliability or few "

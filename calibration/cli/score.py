@@ -33,6 +33,7 @@ SCORE_COLUMNS = (
 
 
 def run_score(args: argparse.Namespace) -> int:
+    """``equitheta score``: score a response file with a published bundle."""
     store = store_from(args.store)
     bundle = resolve(store, args.bundle)
     scorer = BundleScorer(bundle)

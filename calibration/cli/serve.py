@@ -21,6 +21,7 @@ def _installed(module: str) -> bool:
 
 
 def run_serve(args: argparse.Namespace) -> int:
+    """``equitheta serve``: run the scoring service (needs the service extras)."""
     missing = [m for m in SERVICE_MODULES if not _installed(m)]
     if missing or not _installed("service"):
         raise UsageError(

@@ -1,0 +1,1 @@
+"""DIF: observed-score screening, logistic regression, anchored IRT LR tests, anchors, FDR, effect sizes."""

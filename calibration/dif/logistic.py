@@ -110,6 +110,8 @@ def nagelkerke_r2(log_lik: float, log_lik_null: float, n: int) -> float:
 
 @dataclass(frozen=True)
 class LogisticDifResult:
+    """Logistic-regression DIF of one item in one focal group: tests, delta R-squared and its level."""
+
     chi_square_omnibus: float
     p_omnibus: float
     chi_square_uniform: float

@@ -29,12 +29,12 @@ D_DIF_SCALE = 2.35  # Holland & Thayer (1988): MH D-DIF = -2.35 ln(alpha_MH)
 class MantelHaenszelResult:
     """MH statistics for one dichotomous item, one focal group.
 
-    ``alpha`` > 1 favours the reference group; ``d_dif`` < 0 means the item is
+    ``odds_ratio`` (the MH common odds ratio) > 1 favours the reference group; ``d_dif`` < 0 means the item is
     harder for the focal group at equal matching score.
     """
 
-    alpha: float
-    log_alpha_se: float
+    odds_ratio: float
+    log_odds_ratio_se: float
     chi_square: float
     p_value: float
     d_dif: float
@@ -195,11 +195,14 @@ def _item_result(
         levels, inverse = np.unique(score, return_inverse=True)
         tables = np.zeros((levels.size, 2, 2))
         np.add.at(tables, (inverse, focal.astype(int), (1 - y).astype(int)), 1.0)
-        alpha, se_log, chi, p = mantel_haenszel(tables)
-        d = -D_DIF_SCALE * math.log(alpha) if 0 < alpha < math.inf else (-math.inf if alpha == math.inf else math.inf)
+        odds_ratio, se_log, chi, p = mantel_haenszel(tables)
+        if 0 < odds_ratio < math.inf:
+            d = -D_DIF_SCALE * math.log(odds_ratio)
+        else:
+            d = -math.inf if odds_ratio == math.inf else math.inf
         d_se = D_DIF_SCALE * se_log
         return MantelHaenszelResult(
-            alpha,
+            odds_ratio,
             se_log,
             chi,
             p,

@@ -30,6 +30,7 @@ class LatentSpec:
 
     @classmethod
     def reference_fixed(cls, n_groups: int, *, free_mean: bool = True, free_sd: bool = True) -> LatentSpec:
+        """Reference group N(0, 1) fixed; the other groups' means and SDs estimated (unless switched off)."""
         others = np.arange(n_groups) > 0
         return cls(
             mean=np.zeros(n_groups),
@@ -40,6 +41,7 @@ class LatentSpec:
 
     @property
     def n_free(self) -> int:
+        """Number of estimated latent moments."""
         return int(self.free_mean.sum() + self.free_sd.sum())
 
 

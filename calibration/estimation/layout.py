@@ -39,6 +39,7 @@ class GroupLayout:
         group_free: np.ndarray | None = None,
         fixed: np.ndarray | None = None,
     ) -> GroupLayout:
+        """The layout of a slot template for ``n_groups`` groups, with group-specific and fixed slots."""
         n_items, k_max = template.n_items, template.max_categories
         exists = np.arange(k_max)[None, :] < template.n_categories[:, None]
         shape = (n_groups, n_items, k_max)
@@ -82,12 +83,14 @@ class GroupLayout:
         return cls(index=index, owner=owner.reshape(shape), n_free=position, coupled=coupled)
 
     def to_vector(self, tables: FloatArray) -> FloatArray:
+        """The free-parameter vector of slot tables (n_groups, n_items, k_max)."""
         vec = np.zeros(self.n_free)
         mask = self.index >= 0
         vec[self.index[mask]] = tables[mask]
         return vec
 
     def from_vector(self, vec: FloatArray, tables: FloatArray) -> FloatArray:
+        """Slot tables with the free slots taken from ``vec`` and the rest from ``tables``."""
         out = tables.copy()
         mask = self.index >= 0
         out[mask] = vec[self.index[mask]]
@@ -110,6 +113,7 @@ def slot_table(params: ItemParameters) -> FloatArray:
 
 
 def params_from_table(table: FloatArray, template: ItemParameters) -> ItemParameters:
+    """Item parameters from a slot table, with the template's categories and models."""
     return ItemParameters(
         slopes=table[:, 0].copy(),
         intercepts=table[:, 1:].copy(),
@@ -122,11 +126,11 @@ def valid_tables(tables: FloatArray, n_categories: IntArray) -> np.ndarray:
     """(n_groups, n_items): finite slots and strictly decreasing intercepts."""
     k_max = tables.shape[-1]
     exists = np.arange(k_max)[None, :] < n_categories[:, None]
-    finite = np.where(exists[None], np.isfinite(tables), True).all(axis=-1)
+    finite = (np.isfinite(tables) | ~exists[None]).all(axis=-1)
     c = tables[..., 1:]
     both = exists[:, 2:]  # intercept pairs (m, m+1) that both exist
     if both.shape[1] == 0:
         return finite
     steps = c[..., 1:] - c[..., :-1]
-    ordered = np.where(both[None], steps < 0, True).all(axis=-1)
+    ordered = ((steps < 0) | ~both[None]).all(axis=-1)
     return finite & ordered

@@ -27,11 +27,11 @@ from calibration.estimation.optimizer import run_em
 from calibration.estimation.results import CalibrationFit, MultiGroupFit
 from calibration.estimation.settings import EMSettings
 from calibration.estimation.start import starting_values
-from calibration.irt.likelihood import normal_log_weights
+from calibration.irt.likelihood import checked_responses, normal_log_weights
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
 
 
-def calibrate_groups(
+def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public estimator
     responses: FloatArray,
     n_categories: IntArray,
     group_index: IntArray,
@@ -60,9 +60,11 @@ def calibrate_groups(
     warn : False leaves non-convergence to the caller (``converged`` in the result) instead of warning
     """
     settings = settings or EMSettings()
-    x = np.asarray(responses, dtype=np.float64)
     k = np.asarray(n_categories, dtype=np.int64)
+    x = checked_responses(responses, k)
     gi = np.asarray(group_index, dtype=np.int64)
+    if gi.shape != (x.shape[0],) or gi.min(initial=0) < 0 or gi.max(initial=0) >= n_groups:
+        raise ValueError(f"group_index must hold one group 0..{n_groups - 1} per response row")
     models = models or tuple("2pl" if kk == 2 else "grm" for kk in k)
     template = starting_values(x, k, models)
     if start is None:

@@ -100,7 +100,7 @@ def m_step(
     if layout.n_free == 0:
         return tables
 
-    def evaluate(tabs: FloatArray, derivatives: bool) -> tuple[FloatArray, FloatArray | None, FloatArray | None]:
+    def evaluate(tabs: FloatArray, *, derivatives: bool) -> tuple[FloatArray, FloatArray | None, FloatArray | None]:
         prior_obj, prior_grad, prior_curv = _prior_terms(tabs, layout, prior)
         objective = prior_obj.copy()
         if not derivatives:
@@ -119,7 +119,7 @@ def m_step(
         return objective, gradient, information
 
     for _ in range(n_iter):
-        objective, gradient, information = evaluate(tables, True)
+        objective, gradient, information = evaluate(tables, derivatives=True)
         assert gradient is not None and information is not None
         grad_vec = layout.gather(gradient)
         hessian = np.zeros((layout.n_free, layout.n_free))
@@ -140,7 +140,7 @@ def m_step(
             trial_obj = np.full(n_items, -np.inf)
             if valid.any():
                 safe_trial = np.where(valid[None, :, None], trial, tables)
-                trial_obj = np.where(valid, evaluate(safe_trial, False)[0].sum(axis=0), -np.inf)
+                trial_obj = np.where(valid, evaluate(safe_trial, derivatives=False)[0].sum(axis=0), -np.inf)
             good = valid & (trial_obj >= item_objective - 1e-10)
             if layout.coupled:
                 # A parameter shared across items: judge the step by the total objective.

@@ -25,11 +25,13 @@ class SlopePrior:
     sd: float = 1.0
 
     def log_density(self, a: FloatArray) -> FloatArray:
+        """Log prior density of slopes ``a`` (up to a constant)."""
         safe = np.maximum(a, SLOPE_FLOOR)
         z = (np.log(safe) - self.mean) / self.sd
         return -np.log(safe) - 0.5 * z * z
 
     def gradient(self, a: FloatArray) -> FloatArray:
+        """Derivative of the log prior density with respect to the slope."""
         safe = np.maximum(a, SLOPE_FLOOR)
         return -1.0 / safe - (np.log(safe) - self.mean) / (self.sd**2 * safe)
 

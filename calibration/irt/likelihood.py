@@ -91,6 +91,7 @@ class QuadratureGrid:
 
     @property
     def points(self) -> FloatArray:
+        """The equally spaced grid points."""
         return np.linspace(self.lower, self.upper, self.n_points)
 
 
@@ -127,6 +128,27 @@ def posterior_weights(log_joint: FloatArray) -> FloatArray:
     scaled, _ = exp_by_rows(log_joint)
     scaled /= scaled.sum(axis=1, keepdims=True)
     return scaled
+
+
+def checked_responses(responses: FloatArray, n_categories: IntArray) -> FloatArray:
+    """The responses as float64, refused with a ValueError naming the first bad row, item and value.
+
+    The public boundary of the numerical packages: every code must be a whole number in
+    ``0 .. K_j - 1`` (NaN: not administered), and there must be one column per item. Private
+    helpers downstream assume this.
+    """
+    x = np.asarray(responses, dtype=np.float64)
+    k = np.asarray(n_categories, dtype=np.int64)
+    if x.ndim != 2 or x.shape[1] != k.size:
+        raise ValueError(f"responses must be (respondents, {k.size} items); got shape {x.shape}")
+    answered = ~np.isnan(x)
+    bad = answered & ((x < 0) | (x >= k[None, :]) | (x != np.floor(x)))
+    if bad.any():
+        row, item = (int(v[0]) for v in np.nonzero(bad))
+        raise ValueError(
+            f"responses row {row}, item {item}: code {x[row, item]:g} is not a category of the item (0..{k[item] - 1})"
+        )
+    return x
 
 
 @dataclass(frozen=True)
@@ -273,7 +295,7 @@ def marginal_log_likelihood(
     default grid is the calibration's.
     """
     points = (grid or CALIBRATION_GRID).points
-    design = build_design(np.asarray(responses, dtype=np.float64), params.n_categories)
+    design = build_design(checked_responses(responses, params.n_categories), params.n_categories)
     joint = log_likelihood_grid(params, points, design, log_prior=normal_log_weights(points, mean, sd))
     scaled, peak = exp_by_rows(joint)
     return float(np.sum(peak + np.log(scaled.sum(axis=1))))

@@ -25,13 +25,15 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import NDArray
 
+from calibration.vocabulary import ITEM_MODELS
+
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
 MODEL_2PL = "2pl"
 MODEL_1PL = "1pl"
 MODEL_GRM = "grm"
-MODELS = (MODEL_2PL, MODEL_1PL, MODEL_GRM)
+MODELS = ITEM_MODELS
 
 
 @dataclass(frozen=True)
@@ -78,10 +80,12 @@ class ItemParameters:
 
     @property
     def n_items(self) -> int:
+        """Number of items."""
         return int(self.slopes.shape[0])
 
     @property
     def max_categories(self) -> int:
+        """Largest number of categories of any item."""
         return int(self.n_categories.max())
 
     def thresholds(self) -> FloatArray:

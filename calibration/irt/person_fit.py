@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from calibration.irt.likelihood import DEFAULT_CHUNK, run_blocks
+from calibration.irt.likelihood import DEFAULT_CHUNK, checked_responses, run_blocks
 from calibration.irt.models import (
     PROBABILITY_FLOOR,
     FloatArray,
@@ -35,7 +35,7 @@ def person_fit_lz(
     Sinharay (2016). Both recalled from memory and checked by simulation in the tests (mean near 0,
     SD near 1 under the model). NaN with no answers. Large negative values mean an unlikely pattern.
     """
-    x = np.asarray(responses, dtype=np.float64)
+    x = checked_responses(responses, params.n_categories)
     answered = ~np.isnan(x)
     codes = np.where(answered, x, 0).astype(np.int64)
     theta = np.asarray(theta, dtype=np.float64)

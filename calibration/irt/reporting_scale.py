@@ -31,6 +31,7 @@ class ReportingScale:
             raise ValueError("reporting scale minimum must be below its maximum")
 
     def transform(self, theta: FloatArray, se: FloatArray) -> tuple[FloatArray, FloatArray]:
+        """Theta and its SE on the reporting scale: rounded and clipped scores, SEs with one more decimal."""
         raw = self.location + self.scale * np.asarray(theta, dtype=np.float64)
         lo = -math.inf if self.minimum is None else self.minimum
         hi = math.inf if self.maximum is None else self.maximum

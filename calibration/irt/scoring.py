@@ -16,6 +16,7 @@ from calibration.irt.likelihood import (
     QuadratureGrid,
     ResponseDesign,
     build_design,
+    checked_responses,
     exp_by_rows,
     log_likelihood_grid,
     normal_log_weights,
@@ -31,11 +32,12 @@ from calibration.irt.models import (
     category_probability_derivatives,
     information_from,
 )
+from calibration.vocabulary import SCORING_METHODS
 
 METHOD_EAP = "eap"
 METHOD_MAP = "map"
 METHOD_ML = "ml"
-METHODS = (METHOD_EAP, METHOD_MAP, METHOD_ML)
+METHODS = SCORING_METHODS
 
 
 @dataclass(frozen=True)
@@ -88,7 +90,7 @@ def eap_scores(
     """
     grid = grid or QuadratureGrid()
     prior = prior or NormalPrior()
-    x = np.asarray(responses, dtype=np.float64)
+    x = checked_responses(responses, params.n_categories)
     points = grid.points
     log_prior = normal_log_weights(points, prior.mean, prior.sd)
     theta = np.empty(x.shape[0])
@@ -180,7 +182,7 @@ def map_scores(
     Started from the EAP, then Fisher scoring (expected information) to the mode.
     """
     prior = prior or NormalPrior()
-    x = np.asarray(responses, dtype=np.float64)
+    x = checked_responses(responses, params.n_categories)
     eap = eap_scores(params, x, grid=grid, prior=prior, chunk_size=chunk_size)
     theta = np.empty(x.shape[0])
     se = np.empty(x.shape[0])
@@ -208,7 +210,7 @@ def ml_scores(
     estimate is also kept within ``[-bound, bound]``. A respondent with no answers
     gets NaN.
     """
-    x = np.asarray(responses, dtype=np.float64)
+    x = checked_responses(responses, params.n_categories)
     design = build_design(x, params.n_categories)
     low, high = _extreme_low_high(design)
     extreme = low | high

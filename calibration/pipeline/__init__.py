@@ -11,16 +11,15 @@ from calibration.pipeline.calibrate import CalibrationOutcome, calibrate_data
 from calibration.pipeline.policy import PolicyTable
 from calibration.pipeline.prepare import PreparedData, collapse_sparse_categories, prepare_data, small_group_notes
 from calibration.pipeline.settings import (
-    DIF_ACTIONS,
     HARD_MIN_PER_GROUP,
     HARD_MIN_RESPONDENTS,
     MIN_CATEGORY_COUNT,
-    POLICY_STATUSES,
     RECOMMENDED_MIN_RESPONDENTS,
     SINGLE_GROUP,
     PipelineSettings,
     PolicyOverride,
 )
+from calibration.vocabulary import DIF_ACTIONS, POLICY_STATUSES
 
 __all__ = [
     "DIF_ACTIONS",

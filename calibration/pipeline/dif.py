@@ -16,9 +16,11 @@ from calibration.bundle.schema import (
     ObservedDifRow,
     PolicyEvidence,
 )
-from calibration.dif.irt import DifOutcome, DifSettings, ItemGroupTest, run_irt_dif
+from calibration.dif.anchored_lr import ItemGroupTest
+from calibration.dif.irt import DifOutcome, run_irt_dif
 from calibration.dif.logistic import logistic_dif
 from calibration.dif.observed import ObservedScreening, matching_scores, screen_observed
+from calibration.dif.settings import DifSettings
 from calibration.estimation import MultiGroupFit
 from calibration.io import finite_or_none
 from calibration.pipeline.fits import quiet_fit
@@ -87,7 +89,7 @@ def run_dif_stage(
     irt_rows += [_irt_row(t, "test", item_ids, group_names, settings.dif) for t in outcome.tests.values()]
     report = DifReport(
         settings=DifSettingsRecord(
-            fdr_alpha=settings.dif.alpha,
+            fdr_alpha=settings.dif.fdr_level,
             effect_moderate=settings.dif.effect_moderate,
             effect_large=settings.dif.effect_large,
             action=settings.dif_action,  # type: ignore[arg-type]
@@ -213,7 +215,7 @@ def _observed_rows(
                         method="mantel-haenszel",
                         chi_square=r.chi_square,
                         p_value=r.p_value,
-                        mh_odds_ratio=finite_or_none(r.alpha),
+                        mh_odds_ratio=finite_or_none(r.odds_ratio),
                         mh_d_dif=finite_or_none(r.d_dif),
                         mh_d_dif_se=finite_or_none(r.d_dif_se),
                         dif_class=r.category,

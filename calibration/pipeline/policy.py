@@ -9,7 +9,8 @@ import numpy as np
 
 from calibration.bundle.schema import PolicyEvidence
 from calibration.errors import CalibrationInputError
-from calibration.pipeline.settings import POLICY_STATUSES, PolicyOverride
+from calibration.pipeline.settings import PolicyOverride
+from calibration.vocabulary import POLICY_STATUSES
 
 Cell = tuple[int, int]
 """(item position, group position) in a prepared calibration; group 0 is the reference."""

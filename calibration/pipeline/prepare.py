@@ -12,7 +12,6 @@ from calibration.errors import CalibrationInputError
 from calibration.io import ResponseData
 from calibration.pipeline.policy import check_overrides
 from calibration.pipeline.settings import (
-    DIF_ACTIONS,
     HARD_MIN_PER_GROUP,
     HARD_MIN_RESPONDENTS,
     MIN_CATEGORY_COUNT,
@@ -21,6 +20,7 @@ from calibration.pipeline.settings import (
     PipelineSettings,
     PolicyOverride,
 )
+from calibration.vocabulary import DIF_ACTIONS
 
 
 def _group_setup(data: ResponseData, reference_group: str | None) -> tuple[list[str], np.ndarray]:

@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from calibration.bundle.schema import ReportingScaleSettings
-from calibration.dif.irt import DifSettings
+from calibration.dif.settings import DifSettings
 from calibration.estimation import EMSettings
 from calibration.irt.likelihood import QuadratureGrid
 
@@ -26,11 +26,6 @@ HARD_MIN_PER_GROUP = 30
 # A graded category with fewer answers than this in any group is merged with a neighbour (common practice).
 MIN_CATEGORY_COUNT = 5
 
-DIF_ACTIONS = ("exclude", "free")
-
-
-POLICY_STATUSES = ("invariant", "group_specific", "excluded")
-
 
 @dataclass(frozen=True)
 class PolicyOverride:
@@ -44,6 +39,8 @@ class PolicyOverride:
 
 @dataclass(frozen=True)
 class PipelineSettings:
+    """Every setting of a calibration run; each default is documented where it is defined."""
+
     em: EMSettings = field(default_factory=EMSettings)
     scoring_quadrature: QuadratureGrid = field(default_factory=QuadratureGrid)
     reporting_scale: ReportingScaleSettings = field(default_factory=ReportingScaleSettings)
@@ -55,6 +52,7 @@ class PipelineSettings:
     min_group_size: int = HARD_MIN_PER_GROUP  # refuse a multiple-group calibration with a smaller group
 
     def describe(self) -> dict[str, str | int | float | bool | None]:
+        """The settings as the bundle's provenance records them."""
         prior = self.em.slope_prior
         return {
             "max_iter": self.em.max_iter,
@@ -64,7 +62,7 @@ class PipelineSettings:
             "slope_prior": "none" if prior is None else f"lognormal(mean={prior.mean:g}, sd={prior.sd:g})",
             "acceleration": "squarem" if self.em.accelerate else "none",
             "dif_action": self.dif_action,
-            "dif_fdr_alpha": self.dif.alpha,
+            "dif_fdr_alpha": self.dif.fdr_level,
             "dif_anchors": ",".join(self.dif.anchors) or "automatic",
             "min_group_size": self.min_group_size,
         }

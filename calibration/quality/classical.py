@@ -12,6 +12,8 @@ from calibration.irt.models import FloatArray
 ALPHA_GROUP_USE = 0.70
 ALPHA_INDIVIDUAL_DECISIONS = 0.90
 ITEM_REST_MINIMUM = 0.15
+MIN_COMPLETE_ROWS_FOR_ALPHA = 10
+"""Alpha and alpha if deleted need at least this many complete rows (else null)."""
 
 
 @dataclass(frozen=True)
@@ -43,10 +45,11 @@ def cronbach_alpha(x: FloatArray) -> float:
 
 
 def classical_statistics(responses: FloatArray) -> ClassicalStatistics:
+    """Cronbach's alpha, alpha if item deleted and item-rest correlations of complete rows."""
     x = np.asarray(responses, dtype=np.float64)
     n_items = x.shape[1]
     complete = x[~np.isnan(x).any(axis=1)]
-    enough = complete.shape[0] >= 10
+    enough = complete.shape[0] >= MIN_COMPLETE_ROWS_FOR_ALPHA
     alpha = cronbach_alpha(complete) if enough else float("nan")
     if enough and n_items > 2:
         alpha_if = np.array([cronbach_alpha(np.delete(complete, j, axis=1)) for j in range(n_items)])

@@ -64,6 +64,8 @@ class Dimensionality:
 
 @dataclass(frozen=True)
 class ItemFit:
+    """S-X2 item fit (statistic, df, p) and RMSD per item; NaN where it could not be computed."""
+
     s_x2: FloatArray
     s_x2_df: IntArray
     s_x2_p: FloatArray
@@ -78,6 +80,7 @@ def item_fit(
     latent_sd: float = 1.0,
     grid: QuadratureGrid | None = None,
 ) -> ItemFit:
+    """S-X2 (complete rows, at least 100) and RMSD of every item in one group."""
     grid = grid or CALIBRATION_GRID
     points = grid.points
     weights = normal_weights(points, latent_mean, latent_sd)
@@ -153,6 +156,7 @@ def _rmsd(params: ItemParameters, x: FloatArray, points: FloatArray, mean: float
 
 
 def dimensionality(params: ItemParameters, responses: FloatArray, theta: FloatArray) -> Dimensionality:
+    """Eigenvalue ratio of the item correlations and the first eigenvalue of the residual PCA."""
     complete = ~np.isnan(responses).any(axis=1)
     x = responses[complete]
     if x.shape[0] < MIN_COMPLETE_ROWS or x.shape[1] < 3 or np.any(x.std(axis=0) == 0):

@@ -171,7 +171,7 @@ def test_verbagg_mantel_haenszel_equals_statsmodels(verbagg: dict) -> None:
         reference = StratifiedTable(np.array(tables, dtype=float).transpose(1, 2, 0))
         ours = screening.mh[(j, 1)]
         # Same strata, two implementations: equal to round-off.
-        assert ours.alpha == pytest.approx(reference.oddsratio_pooled, rel=1e-10)
+        assert ours.odds_ratio == pytest.approx(reference.oddsratio_pooled, rel=1e-10)
         assert ours.chi_square == pytest.approx(reference.test_null_odds(correction=True).statistic, rel=1e-10)
 
 

@@ -263,3 +263,13 @@ def test_corrected_person_fit_is_standard_normal_under_the_model(method: str) ->
     plain = person_fit_lz(params, x[keep], scores.theta[keep])
     assert abs(star.mean()) < 0.15 and 0.92 < star.std() < 1.08
     assert plain.std() < star.std()
+
+
+def test_library_scoring_refuses_codes_outside_the_items_categories() -> None:
+    # A code 5 on a right/wrong item once scored as if it were the top category; now the boundary refuses it.
+    params = ItemParameters.from_thresholds(np.array([1.0, 1.2]), np.array([0.0, 0.5]))
+    for bad in ([[1.0, 5.0]], [[0.5, 1.0]], [[-1.0, 0.0]]):
+        with pytest.raises(ValueError, match="row 0, item"):
+            eap_scores(params, np.array(bad))
+    with pytest.raises(ValueError, match="2 items"):
+        ml_scores(params, np.zeros((3, 3)))

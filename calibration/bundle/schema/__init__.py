@@ -1,0 +1,103 @@
+"""The calibration bundle: the contract between calibration, the stores and the service.
+
+A bundle is one JSON document. Its identity is (name, version); its content is fixed by a SHA-256
+over its canonical bytes (see :mod:`calibration.bundle.canonical`). Missing statistics are ``null``
+(JSON has no NaN). Rooms: ``common`` (versions, patterns, ranges), ``items`` (scale, items, policy,
+anchors), ``evidence`` (quality, DIF, invariance ladder), ``document`` (the bundle itself).
+"""
+
+from calibration.bundle.schema.common import (
+    ALIAS_PATTERN,
+    MAX_ABS_INTERCEPT,
+    MAX_ABS_LATENT_MEAN,
+    MAX_ABS_SLOPE,
+    MAX_LATENT_SD,
+    MAX_QUADRATURE_POINTS,
+    NAME_PATTERN,
+    READABLE_SCHEMA_VERSIONS,
+    SCHEMA_VERSION,
+    THRESHOLD_TOLERANCE,
+    Frozen,
+    check_item_parameters,
+    valid_alias,
+    valid_name,
+)
+from calibration.bundle.schema.document import (
+    Bundle,
+    FitSummary,
+    Provenance,
+    QuadratureSettings,
+    ReportingScaleSettings,
+    ScoringSettings,
+    upgrade_document,
+)
+from calibration.bundle.schema.evidence import (
+    EFFECT_LEVEL_RULE,
+    DifReport,
+    DifSettingsRecord,
+    Dimensionality,
+    GroupQuality,
+    InformationTable,
+    IrtDifRow,
+    ItemQuality,
+    LadderRow,
+    ObservedDifRow,
+    Quality,
+    SummedScoreRow,
+)
+from calibration.bundle.schema.items import (
+    AnchorCandidate,
+    Anchors,
+    ExcludedItem,
+    GroupMetric,
+    GroupPolicy,
+    ItemEntry,
+    Metric,
+    PolicyEvidence,
+)
+from calibration.vocabulary import PolicyStatus
+
+__all__ = [
+    "ALIAS_PATTERN",
+    "EFFECT_LEVEL_RULE",
+    "MAX_ABS_INTERCEPT",
+    "MAX_ABS_LATENT_MEAN",
+    "MAX_ABS_SLOPE",
+    "MAX_LATENT_SD",
+    "MAX_QUADRATURE_POINTS",
+    "NAME_PATTERN",
+    "READABLE_SCHEMA_VERSIONS",
+    "SCHEMA_VERSION",
+    "THRESHOLD_TOLERANCE",
+    "AnchorCandidate",
+    "Anchors",
+    "Bundle",
+    "DifReport",
+    "DifSettingsRecord",
+    "Dimensionality",
+    "ExcludedItem",
+    "FitSummary",
+    "Frozen",
+    "GroupMetric",
+    "GroupPolicy",
+    "GroupQuality",
+    "InformationTable",
+    "IrtDifRow",
+    "ItemEntry",
+    "ItemQuality",
+    "LadderRow",
+    "Metric",
+    "ObservedDifRow",
+    "PolicyEvidence",
+    "PolicyStatus",
+    "Provenance",
+    "QuadratureSettings",
+    "Quality",
+    "ReportingScaleSettings",
+    "ScoringSettings",
+    "SummedScoreRow",
+    "check_item_parameters",
+    "upgrade_document",
+    "valid_alias",
+    "valid_name",
+]
