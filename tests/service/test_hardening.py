@@ -22,9 +22,9 @@ import redis
 from fastapi.testclient import TestClient
 
 from calibration.bundle import DirectoryStore
+from calibration.bundle.directory_store import STALE_TEMP_SECONDS
 from calibration.bundle.redis_store import RedisStore
 from calibration.bundle.schema import Bundle
-from calibration.bundle.store import STALE_TEMP_SECONDS
 from service.main import create_app
 from service.settings import Settings
 from tests.helpers import (
