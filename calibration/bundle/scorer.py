@@ -20,7 +20,6 @@ from calibration.errors import UnknownGroup
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
 from calibration.irt.person_fit import person_fit_lz
-from calibration.irt.reporting_scale import ReportingScale
 from calibration.irt.scoring import METHODS, NormalPrior, score, score_tables
 
 FLAG_NO_ANSWERS = "no_answers"
@@ -88,7 +87,7 @@ class BundleScorer:
         self.grid = QuadratureGrid(settings.quadrature.n_points, settings.quadrature.lower, settings.quadrature.upper)
         self.prior = NormalPrior(settings.prior_mean, settings.prior_sd)
         scale = settings.reporting_scale
-        self.reporting_scale = ReportingScale(scale.location, scale.scale, scale.decimals, scale.minimum, scale.maximum)
+        self.reporting_scale = scale.to_scale()
         shared = _shared_parameters(bundle)
         self.plans: dict[str, GroupScoringPlan] = {}
         for group in bundle.metric.groups:

@@ -101,15 +101,15 @@ def prepare_groups(
         rows = responses[group_index == g]
         compressed = compress_patterns(rows) if (compress and rows.shape[0] > 0) else None
         if compressed is not None:
-            unique, weights, _ = compressed
+            unique, weights = compressed
             out.append(GroupData(build_design(unique, n_categories), weights, rows.shape[0]))
         else:
             out.append(GroupData(build_design(rows, n_categories), np.ones(rows.shape[0]), rows.shape[0]))
     return out
 
 
-def compress_patterns(responses: FloatArray) -> tuple[FloatArray, FloatArray, IntArray] | None:
-    """Unique response rows, their frequencies and the map back (NaN kept as missing).
+def compress_patterns(responses: FloatArray) -> tuple[FloatArray, FloatArray] | None:
+    """Unique response rows and their frequencies (NaN kept as missing).
 
     Returns None when compression would save less than 20% of the rows; a cheap
     1-D key (a fixed random projection of each row) decides that before the exact,
@@ -119,9 +119,9 @@ def compress_patterns(responses: FloatArray) -> tuple[FloatArray, FloatArray, In
     keys = coded @ np.random.default_rng(0).random(coded.shape[1])
     if np.unique(keys).size > 0.8 * coded.shape[0]:
         return None
-    unique, inverse, counts = np.unique(coded, axis=0, return_inverse=True, return_counts=True)
+    unique, counts = np.unique(coded, axis=0, return_counts=True)
     unique = np.where(unique < 0, np.nan, unique)
-    return unique, counts.astype(np.float64), inverse.reshape(-1)
+    return unique, counts.astype(np.float64)
 
 
 @dataclass(frozen=True)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 from scipy import stats
 
@@ -20,6 +22,7 @@ def invariance_ladder(
 
     Cells without variance in a group carry no data in any rung and stay shared.
     """
+    em = replace(em, standard_errors=False)  # the rungs are compared by likelihood: no SEs needed
     x, k, group_index, n_groups, models = (
         prepared.model_responses(),
         prepared.k,

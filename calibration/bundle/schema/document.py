@@ -26,6 +26,7 @@ from calibration.bundle.schema.items import (
     ItemEntry,
     Metric,
 )
+from calibration.irt.reporting_scale import ReportingScale
 from calibration.vocabulary import (
     ScoringMethod,
 )
@@ -61,17 +62,22 @@ class QuadratureSettings(Frozen):
 class ReportingScaleSettings(Frozen):
     """The linear reporting scale scores are shown on: location, scale, rounding, bounds."""
 
-    location: float = Field(500.0, ge=-1e9, le=1e9)
-    scale: float = Field(100.0, gt=0, le=1e9)
-    decimals: int = Field(0, ge=0, le=6)
-    minimum: float | None = Field(100.0, ge=-1e12, le=1e12)
-    maximum: float | None = Field(900.0, ge=-1e12, le=1e12)
+    # The defaults are the reporting scale's own (one place: calibration.irt.reporting_scale).
+    location: float = Field(ReportingScale.location, ge=-1e9, le=1e9)
+    scale: float = Field(ReportingScale.scale, gt=0, le=1e9)
+    decimals: int = Field(ReportingScale.decimals, ge=0, le=6)
+    minimum: float | None = Field(ReportingScale.minimum, ge=-1e12, le=1e12)
+    maximum: float | None = Field(ReportingScale.maximum, ge=-1e12, le=1e12)
 
     @model_validator(mode="after")
     def _bounds_ordered(self) -> ReportingScaleSettings:
         if self.minimum is not None and self.maximum is not None and not self.minimum < self.maximum:
             raise ValueError(f"reporting scale minimum {self.minimum:g} must be below its maximum {self.maximum:g}")
         return self
+
+    def to_scale(self) -> ReportingScale:
+        """The reporting scale these settings describe (the arithmetic lives there)."""
+        return ReportingScale(self.location, self.scale, self.decimals, self.minimum, self.maximum)
 
 
 class ScoringSettings(Frozen):

@@ -94,3 +94,51 @@ def test_rmsd_equals_a_person_by_person_computation() -> None:
         expected.append(math.sqrt(total) / top)
     got = item_fit(params, x, latent_mean=mean, latent_sd=sd, grid=grid).rmsd
     np.testing.assert_allclose(got, expected, rtol=1e-10)
+
+
+def test_s_x2_equals_brute_force_enumeration_of_patterns() -> None:
+    # Five right/wrong items: the expected proportions P(X_j = k | S = s) come from enumerating all 32 patterns
+    # (independent of the Lord-Wingersky recursion); with 4000 rows every expected cell is above 1, so no score
+    # groups merge and S-X2 = sum over s and k of (O - E)^2 / E with df = 4 score groups x 1 - 2 parameters.
+    import itertools
+
+    from calibration.irt.simulate import simulate_responses
+
+    slopes = [1.0, 1.4, 0.7, 1.2, 0.9]
+    intercepts = [0.5, -0.2, 0.0, 0.8, -0.6]
+    params = ItemParameters(
+        slopes=np.array(slopes),
+        intercepts=np.array(intercepts)[:, None],
+        n_categories=np.full(5, 2),
+        models=("2pl",) * 5,
+    )
+    rng = np.random.default_rng(21)
+    x = simulate_responses(params.slopes, params.thresholds()[:, 0], rng.normal(size=4000), rng)
+    grid = QuadratureGrid(31, -5.0, 5.0)
+    points = [float(p) for p in grid.points]
+    weights = [math.exp(-0.5 * t * t) for t in points]
+    weights = [w / sum(weights) for w in weights]
+
+    def p_right(j: int, t: float) -> float:
+        return 1 / (1 + math.exp(-(slopes[j] * t + intercepts[j])))
+
+    pattern_prob = {}
+    for pattern in itertools.product((0, 1), repeat=5):
+        pattern_prob[pattern] = sum(
+            w * math.prod(p_right(j, t) if v else 1 - p_right(j, t) for j, v in enumerate(pattern))
+            for t, w in zip(points, weights, strict=True)
+        )
+    totals = x.sum(axis=1)
+    got = item_fit(params, x, grid=grid)
+    for j in range(5):
+        stat = 0.0
+        for s in range(1, 5):
+            at_s = {p: v for p, v in pattern_prob.items() if sum(p) == s}
+            n_s = float(np.sum(totals == s))
+            for k in (0, 1):
+                expected = n_s * sum(v for p, v in at_s.items() if p[j] == k) / sum(at_s.values())
+                observed = float(np.sum((totals == s) & (x[:, j] == k)))
+                assert expected >= 1.0
+                stat += (observed - expected) ** 2 / expected
+        assert got.s_x2_df[j] == 2
+        assert got.s_x2[j] == pytest.approx(stat, rel=1e-9)
