@@ -22,7 +22,14 @@ from scipy import stats
 
 from calibration.dif.effect_size import effect_interval, effect_size
 from calibration.dif.settings import DifSettings
-from calibration.estimation import EMSettings, HeldItemFit, LatentSpec, MultiGroupFit, fit_item_given_offsets
+from calibration.estimation import (
+    EMSettings,
+    HeldItemFit,
+    HeldLikelihood,
+    LatentSpec,
+    MultiGroupFit,
+    fit_item_given_offsets,
+)
 from calibration.irt.likelihood import QuadratureGrid, build_design, log_likelihood_grid, split_log_table
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
 
@@ -135,10 +142,10 @@ def _test_item(
     k_j = int(template.n_categories[j])
     ref, foc = base[0], base[g]
     x_ref, x_foc = responses[ref.rows, j], responses[foc.rows, j]
-    answers = [x_ref, x_foc]
-    offsets = [
-        ref.loglik - _item_loglik(fit.group_params(0), j, x_ref, points),
-        foc.loglik - _item_loglik(fit.group_params(g), j, x_foc, points),
+    # The other items' likelihood, split by the studied item's answer once for all nested models.
+    held = [
+        HeldLikelihood.from_offset(ref.loglik - _item_loglik(fit.group_params(0), j, x_ref, points), x_ref, k_j),
+        HeldLikelihood.from_offset(foc.loglik - _item_loglik(fit.group_params(g), j, x_foc, points), x_foc, k_j),
     ]
     one = template.subset([j])
     start = np.stack([fit.tables[0, j : j + 1, :k_j], fit.tables[g, j : j + 1, :k_j]])
@@ -155,7 +162,7 @@ def _test_item(
     for free_slots in designs:
         group_free = np.zeros((2, 1, k_j), dtype=bool)
         group_free[1, 0] = free_slots
-        fits.append(fit_item_given_offsets(answers, offsets, one, start, latent, group_free, settings))
+        fits.append(fit_item_given_offsets(held, one, start, latent, group_free, settings))
     log_liks = [f.log_likelihood for f in fits]
     ll0, ll2 = log_liks[0], log_liks[-1]
     ll1 = log_liks[1] if not omnibus_only else float("nan")

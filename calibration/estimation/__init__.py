@@ -6,6 +6,7 @@ slots), ``estep``, ``mstep``, ``latent`` (group densities), ``optimizer`` (EM + 
 estimators).
 """
 
+from calibration.estimation.estep import HeldLikelihood
 from calibration.estimation.inference import threshold_se
 from calibration.estimation.latent import LatentSpec
 from calibration.estimation.mml import HeldItemFit, calibrate_groups, calibrate_single_group, fit_item_given_offsets
@@ -18,6 +19,7 @@ __all__ = [
     "ConvergenceWarning",
     "EMSettings",
     "HeldItemFit",
+    "HeldLikelihood",
     "LatentSpec",
     "MultiGroupFit",
     "SlopePrior",

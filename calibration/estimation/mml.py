@@ -7,7 +7,7 @@ from the observed information (:mod:`.inference`).
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -251,8 +251,7 @@ class HeldItemFit:
 
 
 def fit_item_given_offsets(
-    answers: list[FloatArray],
-    offsets: list[FloatArray],
+    rows: Sequence[HeldLikelihood],
     template: ItemParameters,
     start: FloatArray,
     latent: LatentSpec,
@@ -261,16 +260,15 @@ def fit_item_given_offsets(
 ) -> HeldItemFit:
     """Fit one item's parameters (shared or group-specific) and the focal latent density.
 
-    Every other item is held at fixed values: ``offsets[h]`` is their log-likelihood, shape
-    (n_rows_h, n_points) on ``settings.quadrature``, for the rows of group h (0 = reference,
-    1 = focal), and ``answers[h]`` the studied item's answers of those rows (NaN: none).
-    ``template`` is the one-item parameter template, ``start`` its (2, 1, K) starting tables,
-    ``group_free`` (2, 1, K) marks the focal group's own slots. The focal mean and SD are
-    estimated; the reference group's latent density stays as ``latent`` gives it.
+    Every other item is held at fixed values: ``rows[h]`` holds their likelihood for the rows of
+    group h (0 = reference, 1 = focal) split by the studied item's answer, built once from the
+    offsets (their log-likelihood on ``settings.quadrature``) by :meth:`HeldLikelihood.from_offset`
+    and shared by every model fitted to the same item. ``template`` is the one-item parameter
+    template, ``start`` its (2, 1, K) starting tables, ``group_free`` (2, 1, K) marks the focal
+    group's own slots. The focal mean and SD are estimated; the reference group's latent density
+    stays as ``latent`` gives it.
     """
     points = settings.quadrature.points
-    k = int(template.n_categories[0])
-    rows = [HeldLikelihood.from_offset(o, a, k) for o, a in zip(offsets, answers, strict=True)]
     layout = GroupLayout.build(template, 2, group_free=group_free)
     n_item = layout.n_free
 

@@ -57,7 +57,7 @@ def run_dif_stage(
     """
     x, k, group_index, n_groups = prepared.x, prepared.k, prepared.group_index, prepared.n_groups
     item_ids, group_names = prepared.item_ids, prepared.group_names
-    x_model = prepared.model_responses()
+    x_model = prepared.model_responses
     if progress is not None:
         progress("screen", 0, 0.0)
     screening = screen_observed(x, k, group_index, n_groups, greater_than_one_z=settings.mh_greater_than_one_z)

@@ -24,7 +24,7 @@ def invariance_ladder(
     """
     em = replace(em, standard_errors=False)  # the rungs are compared by likelihood: no SEs needed
     x, k, group_index, n_groups, models = (
-        prepared.model_responses(),
+        prepared.model_responses,
         prepared.k,
         prepared.group_index,
         prepared.n_groups,

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -67,11 +68,16 @@ class PreparedData:
         """Number of items kept for the calibration."""
         return len(self.item_ids)
 
+    @cached_property
     def model_responses(self) -> np.ndarray:
-        """The responses every model fits: cells without variance in a group count as not administered there."""
+        """The responses every model fits, built once and read-only.
+
+        Cells without variance in a group count as not administered there.
+        """
         x_model = self.x.copy()
         for j, g in self.no_variance_cells:
             x_model[self.group_index == g, j] = np.nan
+        x_model.flags.writeable = False
         return x_model
 
 
