@@ -6,6 +6,7 @@ import os
 import platform
 import time
 from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -32,6 +33,24 @@ def two_pl_data(n_persons: int, n_items: int, seed: int) -> tuple[np.ndarray, np
     b = rng.normal(0.0, 1.0, n_items)
     theta = rng.normal(size=n_persons)
     return simulate_responses(a, b, theta, rng), a, b
+
+
+@dataclass(frozen=True)
+class Timing:
+    """Process CPU seconds (every thread) and wall seconds of one call."""
+
+    cpu: float
+    wall: float
+
+    def __str__(self) -> str:
+        return f"{self.cpu:7.2f} CPU s {self.wall:7.2f} wall s"
+
+
+def measured(fn: Callable[[], Any]) -> tuple[Timing, Any]:
+    """CPU and wall time of one call, and its result."""
+    cpu, wall = time.process_time(), time.perf_counter()
+    result = fn()
+    return Timing(time.process_time() - cpu, time.perf_counter() - wall), result
 
 
 def timed(fn: Callable[[], Any], repeat: int = 1) -> tuple[float, Any]:

@@ -2,8 +2,8 @@
 
 The public names are here; the rooms behind them are ``settings``, ``layout`` (parameter
 slots), ``estep``, ``mstep``, ``latent`` (group densities), ``optimizer`` (EM + SQUAREM),
-``start`` (starting values), ``inference`` (covariance, SEs), ``results`` and ``mml`` (the
-estimators).
+``start`` (starting values), ``information`` (observed information, covariance), ``inference``
+(threshold SEs), ``results`` and ``mml`` (the estimators).
 """
 
 from calibration.estimation.estep import HeldLikelihood

@@ -1,42 +1,12 @@
-"""Standard errors: observed information from the analytic marginal score, and the delta method.
-
-The observed information is the central finite-difference Jacobian of the analytic
-marginal score (Fisher's identity: the score of the marginal likelihood is the posterior
-expectation of the complete-data score); this is the numerical form of Oakes' (1999,
-JRSS-B 61:479) identity.
-"""
+"""Standard errors on the threshold scale by the delta method (the covariance comes from :mod:`.information`)."""
 
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
 
 import numpy as np
 
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
-
-
-def observed_covariance(vec: FloatArray, score: Callable[[FloatArray], FloatArray]) -> FloatArray | None:
-    """Inverse of the observed information: central differences of the analytic marginal score.
-
-    Returns None when the information matrix is not positive definite (an
-    unidentified or boundary solution); callers then report NaN SEs.
-    """
-    n = vec.size
-    hessian = np.empty((n, n))
-    for p in range(n):
-        h = 1e-4 * max(1.0, abs(vec[p]))
-        up, down = vec.copy(), vec.copy()
-        up[p] += h
-        down[p] -= h
-        hessian[:, p] = (score(up) - score(down)) / (2 * h)
-    information = -0.5 * (hessian + hessian.T)
-    try:
-        chol = np.linalg.cholesky(information)
-    except np.linalg.LinAlgError:
-        return None
-    inv_chol = np.linalg.inv(chol)
-    return inv_chol.T @ inv_chol
 
 
 def threshold_se(params: ItemParameters, index: IntArray, covariance: FloatArray | None) -> FloatArray:

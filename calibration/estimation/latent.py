@@ -61,9 +61,25 @@ def latent_update(
 
 def latent_score(mass: FloatArray, points: FloatArray, mean: float, sd: float) -> tuple[float, float]:
     """d/d mean and d/d sd of ``sum_q mass_q log w_q`` for the grid-normalised normal weights."""
+    d_mean, d_sd = mass @ latent_derivatives(points, mean, sd)[0]
+    return float(d_mean), float(d_sd)
+
+
+def latent_derivatives(points: FloatArray, mean: float, sd: float) -> tuple[FloatArray, FloatArray]:
+    """First and second derivatives of ``log w_q`` in (mean, sd): shapes (n_points, 2) and (n_points, 2, 2).
+
+    ``w_q`` are the grid-normalised normal weights, ``log w_q = l_q - log sum_r exp(l_r)`` with
+    ``l_q = -(theta_q - mean)^2 / (2 sd^2)``; so the score is ``l'_q - E_w[l']`` and the Hessian
+    ``l''_q - E_w[l''] - Cov_w(l')``.
+    """
     w = normal_weights(points, mean, sd)
-    total = mass.sum()
     z = points - mean
-    d_mean = float((mass @ z - total * (w @ z)) / sd**2)
-    d_sd = float((mass @ z**2 - total * (w @ z**2)) / sd**3)
-    return d_mean, d_sd
+    first = np.stack([z / sd**2, z**2 / sd**3], axis=1)
+    second = np.empty((points.size, 2, 2))
+    second[:, 0, 0] = -1.0 / sd**2
+    second[:, 0, 1] = second[:, 1, 0] = -2.0 * z / sd**3
+    second[:, 1, 1] = -3.0 * z**2 / sd**4
+    centred = first - w @ first
+    score = centred
+    hessian = second - np.einsum("q,qst->st", w, second) - np.einsum("q,qs,qt->st", w, centred, centred)
+    return score, hessian

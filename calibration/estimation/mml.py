@@ -2,7 +2,7 @@
 
 Bock-Aitkin EM over a fixed quadrature grid (E-step :mod:`.estep`, M-step :mod:`.mstep`,
 latent densities :mod:`.latent`), SQUAREM-accelerated (:mod:`.optimizer`), standard errors
-from the observed information (:mod:`.inference`).
+from the analytic observed information (:mod:`.information`).
 """
 
 from __future__ import annotations
@@ -19,7 +19,11 @@ from calibration.estimation.estep import (
     held_item_counts,
     prepare_groups,
 )
-from calibration.estimation.inference import observed_covariance
+from calibration.estimation.information import (
+    held_item_information,
+    information_to_covariance,
+    observed_information,
+)
 from calibration.estimation.latent import LatentSpec, latent_score, latent_update
 from calibration.estimation.layout import GroupLayout, params_from_table, slot_table, valid_tables
 from calibration.estimation.mstep import item_gradient, m_step
@@ -126,19 +130,14 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
     tabs, mean, sd, _, results = e_step(vec)
     group_ll = np.array([r.log_likelihood for r in results])
 
-    def score(v: FloatArray) -> FloatArray:
-        t, m, s_, counts, res = e_step(v)
-        latent_grad = [latent_score(r.point_mass, points, m[g], s_[g]) for g, r in enumerate(res)]
-        d_mean = np.array([d[0] for d in latent_grad])[latent.free_mean]
-        d_sd = np.array([d[1] for d in latent_grad])[latent.free_sd]
-        return np.concatenate([item_gradient(t, template, counts, points, layout, prior=prior), d_mean, d_sd])
-
     covariance = None
     slot_se = np.full(tabs.shape, np.nan)
     mean_se = np.full(n_groups, np.nan)
     sd_se = np.full(n_groups, np.nan)
     if settings.standard_errors and vec.size > 0:
-        covariance = observed_covariance(vec, score)
+        fitted = LatentSpec(mean, sd, latent.free_mean, latent.free_sd)
+        information = observed_information(tabs, template, groups, points, fitted, layout, prior)
+        covariance = information_to_covariance(information)
         if covariance is not None:
             se = np.sqrt(np.clip(np.diag(covariance), 0.0, None))
             mask = layout.index >= 0
@@ -239,15 +238,20 @@ class HeldItemFit:
     template: ItemParameters
     _unpack: Callable[[FloatArray], tuple[FloatArray, FloatArray, FloatArray]]
     _score: Callable[[FloatArray], FloatArray]
+    _information: Callable[[], FloatArray]
 
     def group_params(self, h: int, vector: FloatArray | None = None) -> ItemParameters:
         """Group h's (0 reference, 1 focal) item parameters, at the estimate or at another ``vector``."""
         tables = self.tables if vector is None else self._unpack(vector)[0]
         return params_from_table(tables[h], self.template)
 
+    def score(self, vector: FloatArray) -> FloatArray:
+        """Gradient of the marginal log-likelihood at ``vector`` (Fisher's identity: the E-step's expected score)."""
+        return self._score(vector)
+
     def covariance(self) -> FloatArray | None:
         """Observed-information covariance of ``vector`` (None when the information is singular)."""
-        return observed_covariance(self.vector, self._score)
+        return information_to_covariance(self._information())
 
 
 def fit_item_given_offsets(
@@ -298,5 +302,10 @@ def fit_item_given_offsets(
 
     vec0 = np.concatenate([layout.to_vector(start), [latent.mean[1], latent.sd[1]]])
     vec, _, _, _ = run_em(vec0, em_map, settings, warn=False)
-    tables, _, _, _, _, log_lik = e_step(vec)
-    return HeldItemFit(log_lik, tables, vec, template, unpack, score)
+    tables, mean, sd, _, _, log_lik = e_step(vec)
+
+    def information() -> FloatArray:
+        params = [params_from_table(tables[h], template) for h in range(2)]
+        return held_item_information(rows, params, mean, sd, points, layout)
+
+    return HeldItemFit(log_lik, tables, vec, template, unpack, score, information)

@@ -15,8 +15,7 @@ from calibration.irt.models import (
     PROBABILITY_FLOOR,
     FloatArray,
     ItemParameters,
-    boundary_jacobian,
-    cumulative_probabilities,
+    category_parameter_derivatives,
     log_category_probabilities,
 )
 
@@ -36,13 +35,7 @@ def _item_blocks(
     Returns ``objective`` (n_items,), ``gradient`` (n_items, k_max) and
     ``information`` (n_items, k_max, k_max) over slots (slope, intercepts...).
     """
-    star = cumulative_probabilities(params, points)
-    prob = star[:, :-1, :] - star[:, 1:, :]
-    d_intercepts, d_eta = boundary_jacobian(np.moveaxis(star * (1.0 - star), 1, 2))
-    n_items, k_max, n_points = prob.shape
-    jac = np.empty((n_items, k_max, n_points, k_max))  # (item, category, point, slot)
-    jac[..., 0] = points[None, None, :] * np.moveaxis(d_eta, 2, 1)
-    jac[..., 1:] = np.moveaxis(d_intercepts, 2, 1)
+    prob, jac, _ = category_parameter_derivatives(params, points)
     positive = prob > PROBABILITY_FLOOR
     safe = np.where(positive, prob, 1.0)
     ratio = np.where(positive, counts / safe, 0.0)

@@ -35,6 +35,11 @@ class SlopePrior:
         safe = np.maximum(a, SLOPE_FLOOR)
         return -1.0 / safe - (np.log(safe) - self.mean) / (self.sd**2 * safe)
 
+    def second_derivative(self, a: FloatArray) -> FloatArray:
+        """Second derivative of the log prior density with respect to the slope."""
+        safe = np.maximum(a, SLOPE_FLOOR)
+        return (1.0 - (1.0 - (np.log(safe) - self.mean)) / self.sd**2) / (safe * safe)
+
     def curvature(self, a: FloatArray) -> FloatArray:
         """A positive stand-in for minus the second derivative (used in Fisher scoring)."""
         safe = np.maximum(a, SLOPE_FLOOR)

@@ -161,6 +161,45 @@ def boundary_jacobian(w: FloatArray) -> tuple[FloatArray, FloatArray]:
     return d_intercepts, w[..., :-1] - w[..., 1:]
 
 
+def category_parameter_derivatives(
+    params: ItemParameters, theta: FloatArray, *, second: bool = False
+) -> tuple[FloatArray, FloatArray, FloatArray | None]:
+    """Category probabilities and their derivatives with respect to each item's slots.
+
+    An item's slots are its slope (slot 0) and its intercepts ``c_1 .. c_{K-1}`` (slots 1..).
+    Returns ``prob`` (n_items, max_categories, n_theta), ``jac[j, k, q, s] = d P_jk / d slot_s``
+    (n_items, max_categories, n_theta, max_categories) and, with ``second``, the second
+    derivatives ``d2 P_jk / d slot_s d slot_t`` (..., max_categories, max_categories). With
+    ``eta = a theta + c_m`` at boundary m: ``dP*_m/d eta = W_m = P*_m (1 - P*_m)`` and
+    ``d2P*_m/d eta2 = W_m (1 - 2 P*_m)``; the slope's derivative carries ``theta``, an
+    intercept's only its own boundary. Padding slots and categories hold 0.
+    """
+    star = cumulative_probabilities(params, theta)
+    prob = star[:, :-1, :] - star[:, 1:, :]
+    points = np.asarray(theta, dtype=np.float64)
+
+    def slots(w: FloatArray) -> tuple[FloatArray, FloatArray]:
+        d_intercepts, d_eta = boundary_jacobian(np.moveaxis(w, 1, 2))
+        return np.moveaxis(d_intercepts, 2, 1), np.moveaxis(d_eta, 2, 1)  # (J, K, Q, K-1), (J, K, Q)
+
+    w = star * (1.0 - star)
+    d_intercepts, d_eta = slots(w)
+    n_items, k_max, n_theta = prob.shape
+    jac = np.empty((n_items, k_max, n_theta, k_max))
+    jac[..., 0] = points * d_eta
+    jac[..., 1:] = d_intercepts
+    if not second:
+        return prob, jac, None
+    dd_intercepts, dd_eta = slots(w * (1.0 - 2.0 * star))
+    hess = np.zeros((n_items, k_max, n_theta, k_max, k_max))
+    hess[..., 0, 0] = points * points * dd_eta
+    hess[..., 0, 1:] = points[:, None] * dd_intercepts
+    hess[..., 1:, 0] = hess[..., 0, 1:]
+    diagonal = np.arange(1, k_max)
+    hess[..., diagonal, diagonal] = dd_intercepts
+    return prob, jac, hess
+
+
 def linear_predictors(params: ItemParameters, theta: FloatArray) -> FloatArray:
     """``a_j * theta + c_jk`` of shape (n_items, max_categories - 1, n_theta); NaN for padding."""
     theta = np.asarray(theta, dtype=np.float64)

@@ -1,0 +1,158 @@
+"""Analytic observed information (Louis 1982) against an independent numerical route.
+
+The numerical route is the finite-difference Jacobian of the marginal score, the score itself
+from Fisher's identity (the E-step's expected complete-data score) — how equitheta computed
+item SEs before the analytic form, kept here as the check. Agreement required: SEs to 1e-4
+relative (the speed issue's rule), over 2PL, graded, 1PL, several groups with free latent
+means and SDs, group-specific slots, missing answers, a slope prior and the held-item fits of
+the DIF tests.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+import pytest
+
+from calibration.estimation import (
+    EMSettings,
+    HeldLikelihood,
+    LatentSpec,
+    SlopePrior,
+    calibrate_groups,
+    fit_item_given_offsets,
+)
+from calibration.estimation.estep import expected_counts, prepare_groups
+from calibration.estimation.latent import latent_score
+from calibration.estimation.layout import params_from_table, slot_table
+from calibration.estimation.mstep import item_gradient
+from calibration.irt.likelihood import build_design, log_likelihood_grid, normal_log_weights
+from calibration.irt.models import ItemParameters
+from tests.helpers import simulate_responses
+
+
+def numerical_information(vec: np.ndarray, score: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
+    """Minus the symmetrised central-difference Jacobian of ``score`` at ``vec``."""
+    n = vec.size
+    jac = np.empty((n, n))
+    for p in range(n):
+        h = 1e-4 * max(1.0, abs(vec[p]))
+        up, down = vec.copy(), vec.copy()
+        up[p] += h
+        down[p] -= h
+        jac[:, p] = (score(up) - score(down)) / (2 * h)
+    return -0.5 * (jac + jac.T)
+
+
+def fisher_score(fit, responses, group_index, prior):  # noqa: ANN001, ANN201 - test helper
+    """The fit's parameter vector and its marginal score by Fisher's identity."""
+    points = fit.settings.quadrature.points
+    layout, latent, template = fit.layout, fit.latent, fit.template
+    n_groups = fit.tables.shape[0]
+    groups = prepare_groups(responses, template.n_categories, group_index, n_groups)
+    n_free, free_mean, free_sd = layout.n_free, latent.free_mean, latent.free_sd
+
+    def unpack(vec: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        tables = layout.from_vector(vec[:n_free], fit.tables)
+        mean, sd = fit.latent_mean.copy(), fit.latent_sd.copy()
+        n_mean = int(free_mean.sum())
+        mean[free_mean] = vec[n_free : n_free + n_mean]
+        sd[free_sd] = vec[n_free + n_mean :]
+        return tables, mean, sd
+
+    def score(vec: np.ndarray) -> np.ndarray:
+        tables, mean, sd = unpack(vec)
+        results = [
+            expected_counts(
+                params_from_table(tables[g], template),
+                d.design,
+                points,
+                normal_log_weights(points, mean[g], sd[g]),
+                d.weights,
+            )
+            for g, d in enumerate(groups)
+        ]
+        counts = np.stack([r.counts for r in results])
+        moments = np.array([latent_score(r.point_mass, points, mean[g], sd[g]) for g, r in enumerate(results)])
+        item_part = item_gradient(tables, template, counts, points, layout, prior=prior)
+        return np.concatenate([item_part, moments[:, 0][free_mean], moments[:, 1][free_sd]])
+
+    vec = np.concatenate([layout.to_vector(fit.tables), fit.latent_mean[free_mean], fit.latent_sd[free_sd]])
+    return vec, score
+
+
+def simulated(seed: int, n: int, n_items: int, n_categories: int, n_groups: int, missing: float):  # noqa: ANN201
+    rng = np.random.default_rng(seed)
+    a = rng.uniform(0.7, 2.0, n_items)
+    b = np.sort(rng.normal(0.0, 1.0, (n_items, n_categories - 1)), axis=1)
+    group_index = rng.integers(0, n_groups, n)
+    x = simulate_responses(a, b, rng.normal(size=n) + 0.3 * group_index, rng).astype(float)
+    x[rng.random(x.shape) < missing] = np.nan
+    return x, group_index
+
+
+CASES = {
+    # name: (seed, N, items, categories, groups, share missing, slope prior, models, focal-own item)
+    "2PL": (1, 800, 6, 2, 1, 0.0, None, (), None),
+    "2PL, missing answers, slope prior": (2, 800, 6, 2, 1, 0.1, SlopePrior(0.0, 1.0), (), None),
+    "graded, 4 categories": (3, 700, 5, 4, 1, 0.0, None, (), None),
+    "graded, 2 groups, one item free in the focal group, missing": (4, 900, 5, 3, 2, 0.05, None, (), 0),
+    "1PL, 3 groups": (5, 900, 5, 2, 3, 0.0, None, ("1pl",) * 5, None),
+}
+
+
+@pytest.mark.parametrize("case", list(CASES))
+def test_analytic_standard_errors_equal_numerical_hessian(case: str) -> None:
+    seed, n, n_items, n_categories, n_groups, missing, prior, models, own = CASES[case]
+    x, group_index = simulated(seed, n, n_items, n_categories, n_groups, missing)
+    k = np.full(n_items, n_categories)
+    group_free = None
+    if own is not None:
+        group_free = np.zeros((n_groups, n_items, n_categories), dtype=bool)
+        group_free[1:, own, :] = True
+    fit = calibrate_groups(
+        x, k, group_index, n_groups, models=models, settings=EMSettings(slope_prior=prior), group_free=group_free
+    )
+    assert fit.covariance is not None
+    vec, score = fisher_score(fit, x, group_index, prior)
+    numerical_se = np.sqrt(np.diag(np.linalg.inv(numerical_information(vec, score))))
+    np.testing.assert_allclose(np.sqrt(np.diag(fit.covariance)), numerical_se, rtol=1e-4)
+    # The whole matrix, not only its diagonal.
+    np.testing.assert_allclose(fit.covariance, np.linalg.inv(numerical_information(vec, score)), rtol=1e-4, atol=1e-9)
+
+
+@pytest.mark.parametrize("n_categories", [2, 4])
+def test_held_item_information_equals_numerical_hessian(n_categories: int) -> None:
+    # The DIF tests' one-item fits (every other item held) with a free focal item and latent density.
+    x, group_index = simulated(11 + n_categories, 1200, 6, n_categories, 2, 0.05)
+    k = np.full(6, n_categories)
+    settings = EMSettings(standard_errors=False)
+    base = calibrate_groups(x, k, group_index, 2, settings=settings)
+    points = settings.quadrature.points
+    j = 2
+    held = []
+    for g in range(2):
+        rows = x[group_index == g]
+        params = base.group_params(g)
+        full = log_likelihood_grid(params, points, build_design(rows, k))
+        one = params.subset([j])
+        own = log_likelihood_grid(one, points, build_design(rows[:, j : j + 1], one.n_categories))
+        held.append(HeldLikelihood.from_offset(full - own, rows[:, j], n_categories))
+    template = ItemParameters(
+        slopes=base.tables[0, j : j + 1, 0],
+        intercepts=base.tables[0, j : j + 1, 1:],
+        n_categories=k[j : j + 1],
+    )
+    start = np.stack([slot_table(template), slot_table(template)])
+    focal_only = np.array([False, True])
+    latent = LatentSpec(
+        np.array([0.0, base.latent_mean[1]]), np.array([1.0, base.latent_sd[1]]), focal_only, focal_only
+    )
+    group_free = np.ones((2, 1, n_categories), dtype=bool)
+    group_free[0] = False
+    fit = fit_item_given_offsets(held, template, start, latent, group_free, settings)
+    covariance = fit.covariance()
+    assert covariance is not None
+    numerical = np.linalg.inv(numerical_information(fit.vector, fit.score))
+    np.testing.assert_allclose(np.sqrt(np.diag(covariance)), np.sqrt(np.diag(numerical)), rtol=1e-4)
