@@ -78,7 +78,8 @@ def main() -> int:
                     cmd += ["--out", str(folder / "scores.csv")]
                     rows.append((label, *child(cmd)))
                 for label, cpu, wall, rss in rows:
-                    print(f"{n:>9,} {label:<28} {cpu:7.2f} {wall:7.2f} {rss:8.0f} {cpu / base_cpu:14.1f}x  (pass {run})")
+                    ratio = cpu / base_cpu
+                    print(f"{n:>9,} {label:<28} {cpu:7.2f} {wall:7.2f} {rss:8.0f} {ratio:14.1f}x  (pass {run})")
         os.sync()
     return 0
 

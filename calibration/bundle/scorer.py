@@ -70,6 +70,15 @@ def _shared_parameters(bundle: Bundle) -> ItemParameters:
     )
 
 
+def group_codes(groups: Sequence[str]) -> tuple[list[str], IntArray]:
+    """The distinct groups (sorted) and each respondent's position among them."""
+    distinct = sorted(set(groups))
+    if len(distinct) <= 1:
+        return distinct, np.zeros(len(groups), dtype=np.int64)
+    position = {g: i for i, g in enumerate(distinct)}
+    return distinct, np.fromiter((position[g] for g in groups), dtype=np.int64, count=len(groups))
+
+
 class BundleScorer:
     """Holds a bundle's per-group parameters, built once (the service keeps one per bundle)."""
 
@@ -124,9 +133,11 @@ class BundleScorer:
         """Check every respondent's group; raise :class:`UnknownGroup` listing every bad one."""
         known = set(self.plans)
         reference = self.bundle.metric.reference_group
+        default = self.default_group
+        if groups is None and default is not None:
+            return (default,) * n_persons
         if groups is not None and known.issuperset(groups):
             return tuple(groups)  # type: ignore[arg-type]
-        default = self.default_group
         if groups is None:
             groups = [None] * n_persons
         resolved: list[str] = []
@@ -184,14 +195,15 @@ class BundleScorer:
         extreme = np.zeros(n, dtype=bool)
         person_fit = np.full(n, np.nan)
         summed = np.full(n, np.nan)
-        group_array = np.asarray(groups, dtype=object)
-        for name, plan in self.plans.items():
-            rows = np.flatnonzero(group_array == name)
-            if rows.size == 0:
-                continue
+        names, which = group_codes(groups)
+        for g, name in enumerate(names):
+            plan = self.plans[name]
+            rows = np.flatnonzero(which == g) if len(names) > 1 else np.arange(n)
+            whole = len(names) == 1 and plan.columns.size == x.shape[1]
+            sub = x if whole else x[np.ix_(rows, plan.columns)]
             result = score(
                 plan.params,
-                x[np.ix_(rows, plan.columns)],
+                sub,
                 method=method,
                 grid=self.grid,
                 prior=self.prior,
@@ -201,7 +213,6 @@ class BundleScorer:
             theta[rows], se[rows] = result.theta, result.se
             minimum[rows] = min(self.bundle.scoring.min_items_answered, plan.columns.size)
             n_answered[rows], extreme[rows] = result.n_answered, result.extreme
-            sub = x[np.ix_(rows, plan.columns)]
             finite = np.isfinite(theta[rows])
             # l_z* with the estimating equation of the method: ML has no prior term, MAP and EAP the prior's.
             person_fit[rows[finite]] = person_fit_lz(

@@ -3,17 +3,19 @@
 from __future__ import annotations
 
 import argparse
+from collections import Counter
 from pathlib import Path
+from typing import Any
 
 import numpy as np
-import pandas as pd
 
 from calibration.bundle import Bundle, resolve
-from calibration.bundle.scorer import BundleScorer, UnknownGroup
+from calibration.bundle.scorer import BundleScorer, ScoredBatch, UnknownGroup, group_codes
 from calibration.cli import UsageError, store_from
 from calibration.cli.console import error_console, out_console
 from calibration.cli.render import CAUTION
-from calibration.io import MAX_PROBLEMS, read_for_scoring, read_header, row_label, write_csv_atomic
+from calibration.io import MAX_PROBLEMS, ScoringInput, read_header, row_label
+from calibration.io.write import atomic_output, csv_line, csv_rows, csv_text, fixed_decimals
 
 # The output columns, in order (an interface: keep the names).
 SCORE_COLUMNS = (
@@ -33,36 +35,46 @@ SCORE_COLUMNS = (
 
 
 def run_score(args: argparse.Namespace) -> int:
-    """``equitheta score``: score a response file with a published bundle."""
+    """``equitheta score``: score a response file with a published bundle, batch by batch.
+
+    The file is read, scored and written in batches (memory flat in its length) to a temporary
+    file renamed into place at the end; a problem anywhere in the file leaves ``--out`` untouched.
+    """
     store = store_from(args.store)
     bundle = resolve(store, args.bundle)
     scorer = BundleScorer(bundle)
     ignore = [c.strip() for c in args.ignore_columns.split(",") if c.strip()]
     if args.group_column is None and scorer.default_group is None:
         raise UsageError(_missing_group_column(args.responses, bundle, scorer, args.id_column, ignore))
-    data = read_for_scoring(
+    opened = ScoringInput(
         args.responses,
         item_categories=scorer.item_categories,
         id_column=args.id_column,
         group_column=args.group_column,
         ignore_columns=ignore,
     )
-    groups = None if data.groups is None else list(data.groups)
-    try:
-        frame = score_frame(
-            scorer,
-            data.responses,
-            list(data.ids),
-            groups,
-            method=args.method,
-            unknown_to_reference=args.unknown_group == "reference",
-        )
-    except UnknownGroup as exc:
-        raise UsageError(_unknown_group_message(exc, data.ids, data.header_lines, args.group_column, scorer)) from exc
-    write_csv_atomic(frame, args.out)
-    for note in data.notes:
+    summary = ScoreSummary()
+    unknown: list[tuple[int, str, str | None]] = []
+    with atomic_output(args.out) as handle:
+        handle.write(csv_line(SCORE_COLUMNS))
+        for batch in opened.batches():
+            try:
+                resolved = scorer.resolve_groups(
+                    batch.groups, len(batch.ids), unknown_to_reference=args.unknown_group == "reference"
+                )
+            except UnknownGroup as exc:
+                unknown.extend((batch.first_row + i, batch.ids[i].as_py(), g) for i, g in exc.problems)
+                continue
+            if unknown:
+                continue  # read on only to list every unknown group
+            result = scorer.score(batch.responses, resolved, method=args.method)
+            handle.write(score_rows(scorer, batch.ids, resolved, result))
+            summary.add(result)
+        if unknown:
+            raise UsageError(_unknown_group_message(unknown, opened.header_lines, args.group_column, scorer))
+    for note in opened.notes:
         error_console().print(f"note: {note}", highlight=False)
-    _print_score_summary(frame, bundle, args.out)
+    summary.print(bundle, args.out, scorer.bundle.scoring.reporting_scale.decimals)
     return 0
 
 
@@ -81,76 +93,96 @@ def _missing_group_column(path: Path, bundle: Bundle, scorer: BundleScorer, id_c
 
 
 def _unknown_group_message(
-    exc: UnknownGroup, ids: tuple[str, ...], header_lines: int, column: str | None, scorer: BundleScorer
+    problems: list[tuple[int, str, str | None]], header_lines: int, column: str | None, scorer: BundleScorer
 ) -> str:
     lines = [
-        f"{row_label(i, header_lines)}, id {ids[i]!r}"
+        f"{row_label(i, header_lines)}, id {respondent!r}"
         + (f", column {column!r}: group {g!r} is not in the bundle" if g else ": no group given")
-        for i, g in exc.problems[:MAX_PROBLEMS]
+        for i, respondent, g in problems[:MAX_PROBLEMS]
     ]
-    more = f"\n  ... and {len(exc.problems) - MAX_PROBLEMS} more" if len(exc.problems) > MAX_PROBLEMS else ""
+    more = f"\n  ... and {len(problems) - MAX_PROBLEMS} more" if len(problems) > MAX_PROBLEMS else ""
     return (
-        f"{len(exc.problems)} respondent(s) with a group that bundle {scorer.bundle.label} does not know "
+        f"{len(problems)} respondent(s) with a group that bundle {scorer.bundle.label} does not know "
         f"(its groups: {', '.join(scorer.plans)}); fix the group column or pass --unknown-group reference to "
         "score them with the reference group's items\n" + "\n".join(f"  - {line}" for line in lines) + more
     )
 
 
-def score_frame(
-    scorer: BundleScorer,
-    responses: np.ndarray,
-    ids: list[str],
-    groups: list[str] | None,
-    *,
-    method: str | None,
-    unknown_to_reference: bool = False,
-) -> pd.DataFrame:
-    """The scored output table (the column names are an interface: keep them).
+def score_rows(scorer: BundleScorer, ids: Any, groups: tuple[str, ...], result: ScoredBatch) -> bytes:
+    """The scored rows as CSV lines in SCORE_COLUMNS order (the column names are an interface: keep them).
 
-    Reporting-scale columns are written with the bundle's decimals (the SE with one more).
+    Theta, SE and person fit with 6 decimals; reporting-scale columns with the bundle's decimals (the
+    SE with one more); empty where there is no value.
     """
-    resolved = scorer.resolve_groups(groups, len(ids), unknown_to_reference=unknown_to_reference)
-    result = scorer.score(responses, resolved, method=method)
-    excluded = {g: ";".join(item for item, _ in scorer.excluded_for(g)) for g in scorer.plans}
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    n = len(ids)
     decimals = scorer.bundle.scoring.reporting_scale.decimals
-    return pd.DataFrame(
-        {
-            "id": ids,
-            "group": resolved,
-            "theta": result.theta,
-            "se": result.se,
-            "scale_score": _fixed(result.scale_score, decimals),
-            "scale_se": _fixed(result.scale_se, decimals + 1),
-            "items_answered": result.n_answered,
-            "method": result.method,
-            "person_fit_lz_star": result.person_fit,
-            "flags": [";".join(f) for f in result.flags],
-            "excluded_items": [excluded[g] for g in resolved],
-            "bundle": scorer.bundle.label,
-        },
-        columns=list(SCORE_COLUMNS),
-    )
+    names, which = group_codes(groups)
+    positions = pa.array(which)
+    excluded = [";".join(item for item, _ in scorer.excluded_for(g)) for g in names]
+
+    def per_group(texts: list[str]) -> Any:
+        return pc.take(csv_text(pa.array(texts, type=pa.string())), positions)
+
+    def repeated(text: str) -> Any:
+        return csv_text(pa.repeat(pa.scalar(text, type=pa.string()), n))
+
+    flags = [";".join(f) for f in result.flags] if any(result.flags) else pa.repeat(pa.scalar("", type=pa.string()), n)
+    columns = [
+        csv_text(ids),
+        per_group(names),
+        fixed_decimals(result.theta, 6),
+        fixed_decimals(result.se, 6),
+        fixed_decimals(result.scale_score, decimals),
+        fixed_decimals(result.scale_se, decimals + 1),
+        pc.cast(pa.array(result.n_answered), pa.string()),
+        repeated(result.method),
+        fixed_decimals(result.person_fit, 6),
+        csv_text(flags),
+        per_group(excluded),
+        repeated(scorer.bundle.label),
+    ]
+    return csv_rows(columns)
 
 
-def _fixed(values: np.ndarray, decimals: int) -> list[str]:
-    """Numbers as text with exactly ``decimals`` places; empty where there is none."""
-    return ["" if not np.isfinite(v) else f"{v:.{decimals}f}" for v in values]
+class ScoreSummary:
+    """Running figures of a scored file for the closing summary (a few floats per respondent)."""
 
+    def __init__(self) -> None:
+        self.theta: list[np.ndarray] = []
+        self.se: list[np.ndarray] = []
+        self.scale: list[np.ndarray] = []
+        self.flags: Counter[str] = Counter()
+        self.method = ""
+        self.n_rows = 0
 
-def _print_score_summary(frame: pd.DataFrame, bundle: Bundle, path: Path) -> None:
-    console = out_console()
-    ok = frame["theta"].notna()
-    scale = pd.to_numeric(frame.loc[ok, "scale_score"])
-    console.print(
-        f"scored {len(frame)} respondents with {bundle.label} ({frame['method'].iloc[0]}) -> {path}", highlight=False
-    )
-    console.print(
-        f"  theta mean {frame.loc[ok, 'theta'].mean():.3f}, SD {frame.loc[ok, 'theta'].std():.3f}; "
-        f"median SE {frame.loc[ok, 'se'].median():.3f}; scale score mean {scale.mean():.1f}",
-        highlight=False,
-    )
-    flagged = frame["flags"].str.len() > 0
-    if flagged.any():
-        counts = frame.loc[flagged, "flags"].str.split(";").explode().value_counts()
-        console.print("  flags: " + ", ".join(f"{k} {v}" for k, v in counts.items()), highlight=False)
-    console.print(f"  {CAUTION}", style="dim", highlight=False)
+    def add(self, result: ScoredBatch) -> None:
+        """Take in one scored batch."""
+        ok = np.isfinite(result.theta)
+        self.theta.append(result.theta[ok].astype(np.float32))
+        self.se.append(result.se[ok].astype(np.float32))
+        self.scale.append(result.scale_score[ok])
+        self.flags.update(f for flags in result.flags for f in flags)
+        self.method = result.method
+        self.n_rows += len(result.theta)
+
+    def print(self, bundle: Bundle, path: Path, decimals: int) -> None:
+        """The summary lines: count, theta mean and SD, median SE, scale mean, flags, the caution."""
+        console = out_console()
+        theta, se = np.concatenate(self.theta or [np.zeros(0)]), np.concatenate(self.se or [np.zeros(0)])
+        scale = np.round(np.concatenate(self.scale or [np.zeros(0)]), decimals)
+        n = sum(len(t) for t in self.theta)
+        console.print(
+            f"scored {self.n_rows} respondents with {bundle.label} ({self.method}) -> {path}", highlight=False
+        )
+        if n:
+            console.print(
+                f"  theta mean {theta.mean(dtype=np.float64):.3f}, SD {theta.std(ddof=1, dtype=np.float64):.3f}; "
+                f"median SE {np.median(se):.3f}; scale score mean {scale.mean():.1f}",
+                highlight=False,
+            )
+        if self.flags:
+            console.print("  flags: " + ", ".join(f"{k} {v}" for k, v in self.flags.most_common()), highlight=False)
+        console.print(f"  {CAUTION}", style="dim", highlight=False)

@@ -8,7 +8,15 @@ once so a user can fix a file in one pass. Rooms: ``tables`` (reading text table
 """
 
 from calibration.errors import InputError
-from calibration.io.responses import ItemSpec, ResponseData, file_sha256, read_for_scoring, read_responses
+from calibration.io.responses import (
+    ItemSpec,
+    ResponseData,
+    ScoringBatch,
+    ScoringInput,
+    file_sha256,
+    read_for_scoring,
+    read_responses,
+)
 from calibration.io.specs import read_item_spec, read_policy_overrides
 from calibration.io.tables import MAX_PROBLEMS, TextTable, parse_codes, read_header, row_label
 from calibration.io.write import current_umask, finite_or_none, write_csv_atomic
@@ -18,6 +26,8 @@ __all__ = [
     "InputError",
     "ItemSpec",
     "ResponseData",
+    "ScoringBatch",
+    "ScoringInput",
     "TextTable",
     "current_umask",
     "file_sha256",

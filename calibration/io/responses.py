@@ -3,10 +3,10 @@
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -15,7 +15,18 @@ from calibration.errors import InputError
 if TYPE_CHECKING:
     pass
 
-from calibration.io.tables import MAX_PROBLEMS, TextTable, open_respondent_table, parse_codes, row_label
+from calibration.io.tables import (
+    MAX_PROBLEMS,
+    CodesNotTyped,
+    TextTable,
+    as_text,
+    check_required_columns,
+    iter_tables,
+    open_respondent_table,
+    parse_codes,
+    read_header,
+    row_label,
+)
 from calibration.irt.models import MODEL_1PL, MODEL_2PL, MODEL_GRM, FloatArray, IntArray
 
 MISSING_CODE_GAP = 4
@@ -131,11 +142,13 @@ def read_responses(
     if problems:
         raise InputError(source, problems)
 
-    ids, problems = _respondent_ids(table, id_column)
-    responses, code_problems = parse_codes(table, item_ids)
-    problems.extend(code_problems)
+    ids, problems = _empty_ids(table, id_column)
+    duplicates = _duplicate_ids(table.cells[id_column], id_column, header)
+    responses, code_problems, bad_cells = parse_codes(table, item_ids)
+    problems += duplicates + code_problems
     if problems:
-        raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
+        total = len(problems) - len(code_problems) + bad_cells
+        raise InputError(source, problems[:MAX_PROBLEMS], total=total)
 
     n_categories, models, category_problems = _categories_and_models(
         responses, item_ids, declared, header, dichotomous_model
@@ -158,37 +171,199 @@ def read_responses(
     )
 
 
-def _respondent_ids(table: TextTable, id_column: str) -> tuple[list[str], list[str]]:
-    """Ids as text; empty and duplicate ids are problems naming their rows."""
-    problems: list[str] = []
-    header = table.header_lines
+def _empty_ids(table: TextTable, id_column: str) -> tuple[list[str], list[str]]:
+    """Ids as text (trimmed); an empty id is a problem naming its row."""
     ids = table.text(id_column)
-    first_row: dict[str, int] = {}
-    for i, value in enumerate(ids):
-        if not value:
-            problems.append(f"{row_label(i, header)}, column {id_column!r}: empty respondent id")
-        elif value in first_row:
-            problems.append(
-                f"{row_label(i, header)}, column {id_column!r}: duplicate id {value!r} "
-                f"(first seen at {row_label(first_row[value], header)})"
-            )
-        first_row.setdefault(value, i)
+    problems = [f"{table.label(i)}, column {id_column!r}: empty respondent id" for i, v in enumerate(ids) if not v]
     return ids, problems
+
+
+def _duplicate_ids(ids: Any, id_column: str, header_lines: int) -> list[str]:
+    """Every repeat of an id, naming its row and the row it was first seen at (Arrow finds them; few are listed)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    trimmed = pc.utf8_trim_whitespace(as_text(ids))
+    if isinstance(trimmed, pa.ChunkedArray):
+        trimmed = trimmed.combine_chunks()
+    counts = pc.value_counts(trimmed)
+    repeated = pc.filter(counts.field("values"), pc.greater(counts.field("counts"), 1))
+    repeated = pc.filter(repeated, pc.not_equal(repeated, ""))  # empty ids are reported as empty
+    if len(repeated) == 0:
+        return []
+    rows = pc.indices_nonzero(pc.is_in(trimmed, value_set=repeated)).to_pylist()
+    values = pc.take(trimmed, pa.array(rows, type=pa.uint64())).to_pylist()
+    first_row: dict[str, int] = {}
+    problems = []
+    for row, value in zip(rows, values, strict=True):
+        if value in first_row:
+            problems.append(
+                f"{row_label(row, header_lines)}, column {id_column!r}: duplicate id {value!r} "
+                f"(first seen at {row_label(first_row[value], header_lines)})"
+            )
+        first_row.setdefault(value, row)
+    return problems
+
+
+def _batch_ids(table: TextTable, id_column: str) -> tuple[Any, list[str]]:
+    """A batch's ids as a trimmed Arrow string array; an empty id is a problem naming its row."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    ids = pc.utf8_trim_whitespace(as_text(table.cells[id_column]))
+    if isinstance(ids, pa.ChunkedArray):
+        ids = ids.combine_chunks()
+    empty = pc.indices_nonzero(pc.equal(pc.utf8_length(ids), 0)).to_pylist()
+    return ids, [f"{table.label(i)}, column {id_column!r}: empty respondent id" for i in empty]
+
+
+def _group_problems(groups: list[str], table: TextTable, group_column: str) -> list[str]:
+    return [f"{table.label(i)}, column {group_column!r}: empty group" for i, g in enumerate(groups) if not g]
 
 
 def _group_labels(table: TextTable, group_column: str | None, source: str) -> tuple[str, ...] | None:
     if group_column is None:
         return None
-    header = table.header_lines
-    groups = tuple(table.text(group_column))
-    empty = [i for i, g in enumerate(groups) if not g]
-    if empty:
-        raise InputError(
-            source,
-            [f"{row_label(i, header)}, column {group_column!r}: empty group" for i in empty[:MAX_PROBLEMS]],
-            total=len(empty),
-        )
-    return groups
+    groups = table.text(group_column)
+    problems = _group_problems(groups, table, group_column)
+    if problems:
+        raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
+    return tuple(groups)
+
+
+SCORING_BATCH_ROWS = 32_768
+"""Rows per batch when a response file is read for scoring."""
+
+
+@dataclass(frozen=True)
+class ScoringBatch:
+    """Rows of a response file, validated and aligned to the bundle's items (NaN = not administered)."""
+
+    first_row: int
+    ids: Any  # Arrow string array, trimmed
+    groups: list[str] | None
+    responses: FloatArray
+
+
+class ScoringInput:
+    """A response file opened for scoring: the header is checked at once, the rows are read in batches.
+
+    Item columns must be items of the bundle (``item_categories`` maps each to its number of
+    categories) and codes must lie within those categories. A column that is neither an item, the
+    id, the group nor listed in ``ignore_columns`` is an error (a misspelt item would otherwise be
+    silently unscored). Bundle items without a column count as not administered, with a note.
+    :meth:`batches` yields valid batches in file order; once a problem is found it yields no more,
+    reads on to count every problem and raises one :class:`InputError` at the end (duplicate ids
+    are found at the end too), so a caller that writes its output under a temporary name loses
+    nothing.
+    """
+
+    def __init__(  # noqa: PLR0913 - keyword-only options of the public reader
+        self,
+        path: Path | str,
+        *,
+        item_categories: dict[str, int],
+        id_column: str = "id",
+        group_column: str | None = None,
+        ignore_columns: Sequence[str] = (),
+        batch_rows: int = SCORING_BATCH_ROWS,
+    ) -> None:
+        self.path = Path(path)
+        self.source = self.path.name
+        columns = read_header(self.path)
+        check_required_columns(self.path, columns, id_column, group_column)
+        reserved = {id_column, *ignore_columns} | ({group_column} if group_column else set())
+        unknown = [c for c in columns if c not in reserved and c not in item_categories]
+        problems = [
+            f"column {c!r} is not an item of the bundle (known items: {', '.join(list(item_categories)[:8])}"
+            f"{', ...' if len(item_categories) > 8 else ''}); pass --ignore-columns {c} to skip it"
+            for c in unknown
+        ]
+        if problems:
+            raise InputError(self.source, problems[:MAX_PROBLEMS], total=len(problems))
+        self.present = [c for c in columns if c in item_categories]
+        if not self.present:
+            raise InputError(self.source, ["no column matches an item of the bundle"])
+        self.item_ids = tuple(item_categories)
+        self.n_categories = np.array([item_categories[c] for c in self.item_ids], dtype=np.int64)
+        self.positions = np.array([self.item_ids.index(c) for c in self.present], dtype=np.int64)
+        absent = [c for c in self.item_ids if c not in self.present]
+        self.notes = [f"bundle items with no column, scored as not administered: {', '.join(absent)}"] if absent else []
+        self.id_column, self.group_column, self.batch_rows = id_column, group_column, batch_rows
+        self.header_lines = 0 if self.path.suffix.lower() in (".parquet", ".pq") else 1
+
+    def batches(self) -> Iterator[ScoringBatch]:
+        """Valid batches in file order; one InputError at the end if any row has a problem.
+
+        A CSV file is first read with its item columns as small integers; a cell that is not one
+        (or any other problem) sends the reader back to the start to read the file as text, which
+        names every bad cell. Rows already yielded are not yielded again.
+        """
+        needed = [self.id_column, *([self.group_column] if self.group_column else []), *self.present]
+        typed = self.header_lines == 1
+        yielded = 0
+        if typed:
+            try:
+                for batch in self._batches(iter_tables(self.path, self.batch_rows, codes=self.present, include=needed)):
+                    yield batch
+                    yielded += len(batch.ids)
+                return
+            except CodesNotTyped:
+                pass
+        yield from self._batches(iter_tables(self.path, self.batch_rows, include=needed), skip=yielded, exact=True)
+
+    def _batches(self, tables: Iterator[TextTable], *, skip: int = 0, exact: bool = False) -> Iterator[ScoringBatch]:
+        """The batches of ``tables`` after the first ``skip`` rows; problems end in one InputError (``exact``)
+        or in :class:`CodesNotTyped` (a typed read, whose bad cells the text read names)."""
+        problems: list[str] = []
+        total = 0
+        id_chunks = []
+        n_rows = 0
+        for table in tables:
+            n_rows += table.n_rows
+            ids, batch_problems = _batch_ids(table, self.id_column)
+            id_chunks.append(ids)
+            groups = None if self.group_column is None else table.text(self.group_column)
+            if groups is not None and self.group_column is not None:
+                batch_problems += _group_problems(groups, table, self.group_column)
+            parsed, code_problems, bad_cells = parse_codes(table, self.present)
+            range_problems, out_of_range = self._range_problems(parsed, table)
+            total += len(batch_problems) + bad_cells + out_of_range
+            if total and not exact:
+                raise CodesNotTyped
+            problems.extend((batch_problems + code_problems + range_problems)[: max(0, MAX_PROBLEMS - len(problems))])
+            if total or n_rows <= skip:
+                continue
+            start = max(0, skip - table.first_row)
+            responses = np.full((table.n_rows - start, len(self.item_ids)), np.nan)
+            responses[:, self.positions] = parsed[start:]
+            yield ScoringBatch(
+                table.first_row + start, ids.slice(start), None if groups is None else groups[start:], responses
+            )
+        if n_rows == 0:
+            raise InputError(self.source, ["the file has a header but no respondents"])
+        import pyarrow as pa
+
+        duplicates = _duplicate_ids(pa.chunked_array(id_chunks), self.id_column, self.header_lines)
+        total += len(duplicates)
+        problems.extend(duplicates[: max(0, MAX_PROBLEMS - len(problems))])
+        if total:
+            raise InputError(self.source, problems, total=total)
+
+    def _range_problems(self, parsed: FloatArray, table: TextTable) -> tuple[list[str], int]:
+        limits = self.n_categories[self.positions]
+        over = parsed >= limits[None, :]  # NaN compares False
+        if not over.any():
+            return [], 0
+        problems = []
+        for row, j in zip(*np.nonzero(over), strict=True):
+            if len(problems) == MAX_PROBLEMS:
+                break
+            problems.append(
+                f"{table.label(int(row))}, column {self.present[j]!r}: category code {int(parsed[row, j])} is outside "
+                f"the item's categories 0..{limits[j] - 1}"
+            )
+        return problems, int(over.sum())
 
 
 def read_for_scoring(
@@ -199,60 +374,27 @@ def read_for_scoring(
     group_column: str | None = None,
     ignore_columns: Sequence[str] = (),
 ) -> ResponseData:
-    """Read a response table to score against known items.
-
-    Item columns must be items of the bundle (``item_categories`` maps each to its
-    number of categories) and codes must lie within those categories. A column
-    that is neither an item, the id, the group nor listed in ``ignore_columns`` is
-    an error (a misspelt item would otherwise be silently unscored). Bundle items
-    without a column count as not administered, with a note.
-    """
-    path = Path(path)
-    table = open_respondent_table(path, id_column, group_column)
-    columns, header = table.columns, table.header_lines
-    source = path.name
-    reserved = {id_column, *ignore_columns} | ({group_column} if group_column else set())
-    unknown = [c for c in columns if c not in reserved and c not in item_categories]
-    problems = [
-        f"column {c!r} is not an item of the bundle (known items: {', '.join(list(item_categories)[:8])}"
-        f"{', ...' if len(item_categories) > 8 else ''}); pass --ignore-columns {c} to skip it"
-        for c in unknown
-    ]
-    if problems:
-        raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
-    present = [c for c in columns if c in item_categories]
-    if not present:
-        raise InputError(source, ["no column matches an item of the bundle"])
-    ids, problems = _respondent_ids(table, id_column)
-    parsed, code_problems = parse_codes(table, present)
-    problems.extend(code_problems)
-    for j, item in enumerate(present):
-        k = item_categories[item]
-        over = np.flatnonzero(parsed[:, j] >= k)
-        for row in over[: max(0, MAX_PROBLEMS - len(problems))]:
-            problems.append(
-                f"{row_label(int(row), header)}, column {item!r}: category code {int(parsed[row, j])} is outside "
-                f"the item's categories 0..{k - 1}"
-            )
-    if problems:
-        raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
-    order = list(item_categories)
-    responses = np.full((table.n_rows, len(order)), np.nan)
-    for j, item in enumerate(present):
-        responses[:, order.index(item)] = parsed[:, j]
-    absent = [c for c in order if c not in present]
-    notes = [f"bundle items with no column, scored as not administered: {', '.join(absent)}"] if absent else []
+    """Read a whole response table to score against known items (see :class:`ScoringInput`, which streams)."""
+    opened = ScoringInput(
+        path,
+        item_categories=item_categories,
+        id_column=id_column,
+        group_column=group_column,
+        ignore_columns=ignore_columns,
+    )
+    batches = list(opened.batches())
+    groups = None if group_column is None else tuple(g for b in batches for g in (b.groups or []))
     return ResponseData(
-        ids=tuple(ids),
-        item_ids=tuple(order),
-        responses=responses,
-        n_categories=np.array([item_categories[c] for c in order], dtype=np.int64),
-        models=tuple(MODEL_GRM if item_categories[c] > 2 else MODEL_2PL for c in order),
-        groups=_group_labels(table, group_column, source),
-        source=source,
-        source_sha256=file_sha256(path),
-        notes=tuple(notes),
-        header_lines=header,
+        ids=tuple(i for b in batches for i in b.ids.to_pylist()),
+        item_ids=opened.item_ids,
+        responses=np.concatenate([b.responses for b in batches]),
+        n_categories=opened.n_categories,
+        models=tuple(MODEL_GRM if k > 2 else MODEL_2PL for k in opened.n_categories),
+        groups=groups,
+        source=opened.source,
+        source_sha256=file_sha256(opened.path),
+        notes=tuple(opened.notes),
+        header_lines=opened.header_lines,
     )
 
 

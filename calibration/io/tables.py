@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import csv
 import math
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -73,26 +74,75 @@ def check_file(path: Path) -> None:
 
 @dataclass(frozen=True)
 class TextTable:
-    """A file's cells as text columns (Arrow string arrays), as read; no cell converted yet.
+    """A file's cells as read (Arrow arrays: text for CSV, the stored types for Parquet); no cell converted yet.
 
-    ``header_lines`` is 1 for CSV (the header line), 0 for Parquet, for row and line numbers
-    in messages.
+    Empty CSV cells are nulls. ``header_lines`` is 1 for CSV (the header line), 0 for Parquet;
+    ``first_row`` is the 0-based row of the table's first row in its file (a batch of a larger
+    file starts later): both are for row and line numbers in messages.
     """
 
     columns: list[str]
-    cells: dict[str, Any]  # column -> pyarrow ChunkedArray of strings, no nulls
+    cells: dict[str, Any]  # column -> pyarrow (Chunked)Array
     n_rows: int
     header_lines: int
+    first_row: int = 0
 
     def text(self, column: str) -> list[str]:
-        """A column's cells with surrounding white space removed."""
+        """A column's cells as text with surrounding white space removed ("" for an empty cell)."""
         import pyarrow.compute as pc
 
-        return pc.utf8_trim_whitespace(self.cells[column]).to_pylist()  # type: ignore[no-any-return]
+        return pc.utf8_trim_whitespace(as_text(self.cells[column])).to_pylist()  # type: ignore[no-any-return]
+
+    def label(self, index: int) -> str:
+        """The row and line label of the table's row ``index`` in its file."""
+        return row_label(self.first_row + index, self.header_lines)
+
+
+def as_text(column: Any) -> Any:
+    """Cells as an Arrow string array without nulls: a float's integral value loses its ".0"."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if pa.types.is_floating(column.type):
+        # 3.0 from a float column is the code 3: drop an integral value's ".0".
+        as_int = pc.cast(column, pa.int64(), safe=False)
+        integral = pc.equal(pc.cast(as_int, column.type), column)
+        column = pc.if_else(integral, pc.cast(as_int, pa.string()), pc.cast(column, pa.string()))
+    elif not pa.types.is_string(column.type):
+        column = pc.cast(column, pa.string())
+    return pc.fill_null(column, "")
+
+
+class CodesNotTyped(Exception):  # noqa: N818 - a signal, not an error a user sees
+    """A CSV file's code columns did not all read as small whole numbers: read the file as text instead."""
+
+
+def _csv_options(
+    path: Path, *, codes: Sequence[str] = (), include: Sequence[str] | None = None
+) -> tuple[list[str], Any, Any]:
+    """The columns read, and Arrow's parse and convert options: text columns, empty cells null.
+
+    ``codes`` columns are read as small integers (one pass, no text); ``include`` limits the
+    columns read (in that order).
+    """
+    import pyarrow as pa
+    import pyarrow.csv as pa_csv
+
+    first, delimiter = header_fields(path)
+    names = unique_header(path, [c.strip() for c in first])
+    raw = dict(zip(names, first, strict=True))
+    wanted = set(codes)
+    convert = pa_csv.ConvertOptions(
+        column_types={raw[name]: pa.int8() if name in wanted else pa.string() for name in names},
+        strings_can_be_null=True,
+        null_values=[""],
+        include_columns=[raw[c] for c in include] if include else [],
+    )
+    return list(include) if include else names, pa_csv.ParseOptions(delimiter=delimiter), convert
 
 
 def read_table(path: Path) -> TextTable:
-    """Read a CSV or Parquet file with every cell as text (Arrow, no Python object per cell).
+    """Read a CSV or Parquet file whole, no cell converted (Arrow, no Python object per cell).
 
     The CSV delimiter is taken from the header line (comma, semicolon, tab or bar,
     whichever occurs most), so a semicolon-delimited export reads as it is.
@@ -101,23 +151,74 @@ def read_table(path: Path) -> TextTable:
     import pyarrow as pa  # here, not at import: a missing file or a bad header answers without it
 
     if _is_parquet(path):
-        return _read_parquet_text(path)
+        import pyarrow.parquet as pq
+
+        try:
+            table = pq.read_table(path)
+        except (pa.ArrowInvalid, OSError) as exc:
+            raise InputError(path.name, [f"cannot be read as Parquet: {exc}"]) from exc
+        return _parquet_table(table, 0)
     import pyarrow.csv as pa_csv
 
-    first, delimiter = header_fields(path)
-    names = unique_header(path, [c.strip() for c in first])
+    names, parse, convert = _csv_options(path)
     try:
-        table = pa_csv.read_csv(
-            path,
-            parse_options=pa_csv.ParseOptions(delimiter=delimiter),
-            convert_options=pa_csv.ConvertOptions(
-                column_types={name: pa.string() for name in first}, strings_can_be_null=False
-            ),
-        )
+        table = pa_csv.read_csv(path, parse_options=parse, convert_options=convert)
     except (pa.ArrowInvalid, UnicodeDecodeError, OSError) as exc:
         raise InputError(path.name, [f"cannot be read as CSV: {_arrow_message(exc)}"]) from exc
-    cells = {name.strip(): table.column(i) for i, name in enumerate(table.column_names)}
-    return TextTable(names, cells, table.num_rows, 1)
+    return TextTable(names, dict(zip(names, table.columns, strict=True)), table.num_rows, 1)
+
+
+def iter_tables(
+    path: Path, batch_rows: int, *, codes: Sequence[str] = (), include: Sequence[str] | None = None
+) -> Iterator[TextTable]:
+    """Read a CSV or Parquet file in batches of about ``batch_rows`` rows (memory flat in the file's length).
+
+    ``include`` limits the columns read. CSV ``codes`` columns are read as small integers; if any
+    cell of them is not one, :class:`CodesNotTyped` is raised and the caller reads the file again
+    as text (which names the bad cells). Parquet columns keep their stored types.
+    """
+    check_file(path)
+    import pyarrow as pa
+
+    first_row = 0
+    if _is_parquet(path):
+        import pyarrow.parquet as pq
+
+        try:
+            batches = pq.ParquetFile(path).iter_batches(
+                batch_size=batch_rows, columns=list(include) if include else None
+            )
+            for batch in batches:
+                yield _parquet_table(batch, first_row)
+                first_row += batch.num_rows
+        except (pa.ArrowInvalid, OSError) as exc:
+            raise InputError(path.name, [f"cannot be read as Parquet: {exc}"]) from exc
+        return
+    import pyarrow.csv as pa_csv
+
+    names, parse, convert = _csv_options(path, codes=codes, include=include)
+    read = pa_csv.ReadOptions(block_size=_block_bytes(path, batch_rows))
+    try:
+        reader = pa_csv.open_csv(path, read_options=read, parse_options=parse, convert_options=convert)
+        for batch in reader:
+            yield TextTable(names, dict(zip(names, batch.columns, strict=True)), batch.num_rows, 1, first_row)
+            first_row += batch.num_rows
+    except (pa.ArrowInvalid, UnicodeDecodeError, OSError) as exc:
+        if codes:
+            raise CodesNotTyped from exc
+        raise InputError(path.name, [f"cannot be read as CSV: {_arrow_message(exc)}"]) from exc
+
+
+def _block_bytes(path: Path, batch_rows: int) -> int:
+    """Bytes of CSV text that hold about ``batch_rows`` rows, judged from the file's first 64 kB.
+
+    At least four times the longest line seen there (a row must not straddle more than two blocks).
+    """
+    with path.open("rb") as handle:
+        sample = handle.read(1 << 16)
+    lines = sample.split(b"\n")
+    average = len(sample) / max(len(lines) - 1, 1)
+    return int(np.clip(batch_rows * average, max(4 * max(len(line) for line in lines), 64), 1 << 26))
 
 
 def _arrow_message(exc: Exception) -> str:
@@ -125,26 +226,9 @@ def _arrow_message(exc: Exception) -> str:
     return str(exc).removeprefix("CSV parse error: ")
 
 
-def _read_parquet_text(path: Path) -> TextTable:
-    import pyarrow as pa
-    import pyarrow.compute as pc
-    import pyarrow.parquet as pq
-
-    try:
-        table = pq.read_table(path)
-    except (pa.ArrowInvalid, OSError) as exc:
-        raise InputError(path.name, [f"cannot be read as Parquet: {exc}"]) from exc
-    cells = {}
-    for name, column in zip(table.column_names, table.columns, strict=True):
-        if pa.types.is_floating(column.type):
-            # 3.0 from a float column is the code 3: drop an integral value's ".0".
-            as_int = pc.cast(column, pa.int64(), safe=False)
-            integral = pc.equal(pc.cast(as_int, column.type), column)
-            column = pc.if_else(integral, pc.cast(as_int, pa.string()), pc.cast(column, pa.string()))
-        elif not pa.types.is_string(column.type):
-            column = pc.cast(column, pa.string())
-        cells[str(name).strip()] = pc.fill_null(column, "")
-    return TextTable([str(c).strip() for c in table.column_names], cells, table.num_rows, 0)
+def _parquet_table(table: Any, first_row: int) -> TextTable:
+    names = [str(c).strip() for c in table.column_names]
+    return TextTable(names, dict(zip(names, table.columns, strict=True)), table.num_rows, 0, first_row)
 
 
 def open_respondent_table(path: Path, id_column: str, group_column: str | None) -> TextTable:
@@ -191,46 +275,76 @@ def table_rows(table: TextTable, columns: list[str]) -> list[dict[str, str]]:
     return [{c: present[c][i] if c in present else "" for c in columns} for i in range(table.n_rows)]
 
 
-def parse_codes(table: TextTable, columns: list[str]) -> tuple[FloatArray, list[str]]:
-    """Text cells to float codes: empty = NaN, otherwise a whole number >= 0.
+def parse_codes(table: TextTable, columns: list[str]) -> tuple[FloatArray, list[str], int]:
+    """Cells to float codes: empty = NaN, otherwise a whole number >= 0.
 
-    Each column is converted by Arrow in one pass; only a column that fails is looked at
-    cell by cell, to name its bad cells.
+    Returns the codes, up to MAX_PROBLEMS messages and the number of bad cells. A column is
+    converted by Arrow in one pass (integer Parquet columns are read as they are); only a column
+    that fails is looked at cell by cell, to name its bad cells.
     """
-    import pyarrow as pa
-    import pyarrow.compute as pc
-
-    out = np.full((table.n_rows, len(columns)), np.nan)
+    out = np.empty((table.n_rows, len(columns)))
     bad_cells: list[tuple[int, int, str]] = []
     total_bad = 0
     for j, column in enumerate(columns):
-        trimmed = pc.utf8_trim_whitespace(table.cells[column])
-        missing = _numpy_view(pc.utf8_length(trimmed), np.int32) == 0
-        # An empty cell becomes the text "nan" so that one cast converts the column; ``missing`` tells
-        # it apart from a cell that really says "nan" (which is not a code).
-        filled = pc.replace_substring_regex(trimmed, pattern="^$", replacement="nan")
-        try:
-            values = _numpy_view(pc.cast(filled, pa.float64()), np.float64).copy()
-        except pa.ArrowInvalid:
-            values = np.array([_code_or_nan(v) for v in filled.to_pylist()], dtype=np.float64)
-        bad = ~missing & ~(np.isfinite(values) & (values >= 0) & (np.floor(values) == values))
-        if bad.any():
-            total_bad += int(bad.sum())
-            texts = table.cells[column].to_pylist()
-            bad_cells.extend((int(i), j, texts[i]) for i in np.flatnonzero(bad)[:MAX_PROBLEMS])
-        out[:, j] = np.where(missing | bad, np.nan, values)
+        codes = _valid_codes(table.cells[column])
+        if codes is not None:
+            out[:, j] = codes
+            continue
+        values, bad, texts = _codes_cell_by_cell(table.cells[column])
+        total_bad += int(bad.sum())
+        bad_cells.extend((int(i), j, texts[i]) for i in np.flatnonzero(bad)[:MAX_PROBLEMS])
+        out[:, j] = values
     problems = [
-        f"{row_label(i, table.header_lines)}, column {columns[j]!r}: value {text!r} is not a category code "
+        f"{table.label(i)}, column {columns[j]!r}: value {text!r} is not a category code "
         "(a whole number >= 0, or empty for not administered)"
         for i, j, text in sorted(bad_cells)[:MAX_PROBLEMS]
     ]
-    if total_bad > len(problems):
-        problems.append(f"... {total_bad - len(problems)} more cells like these")
-    return out, problems
+    return out, problems, total_bad
+
+
+def _valid_codes(column: Any) -> FloatArray | None:
+    """A column's codes as float64 (NaN where empty) when every cell is one, else None (one Arrow cast)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    kind = column.type
+    try:
+        if pa.types.is_string(kind):
+            column = pc.cast(column, pa.int32())
+        elif not (pa.types.is_integer(kind) or pa.types.is_floating(kind)):
+            return None
+        values = _numpy_view(pc.fill_null(pc.cast(column, pa.float64()), math.nan), np.float64)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        return None
+    answered = ~np.isnan(values)
+    if pa.types.is_floating(kind) and (pc.sum(pc.is_nan(column)).as_py() or 0) > 0:
+        return None  # a stored NaN (not an empty cell) is not a code
+    if np.any(values[answered] < 0) or np.any(np.floor(values[answered]) != values[answered]):
+        return None
+    return values
+
+
+def _codes_cell_by_cell(column: Any) -> tuple[FloatArray, np.ndarray, list[str]]:
+    """Codes (NaN where empty or bad), the bad cells and the cells' text, for a column that failed the cast."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    text = as_text(column)
+    trimmed = pc.utf8_trim_whitespace(text)
+    missing = _numpy_view(pc.utf8_length(trimmed), np.int32) == 0
+    # An empty cell becomes the text "nan" so that one cast converts the column; ``missing`` tells
+    # it apart from a cell that really says "nan" (which is not a code).
+    filled = pc.replace_substring_regex(trimmed, pattern="^$", replacement="nan")
+    try:
+        values = _numpy_view(pc.cast(filled, pa.float64()), np.float64).copy()
+    except pa.ArrowInvalid:
+        values = np.array([_code_or_nan(v) for v in filled.to_pylist()], dtype=np.float64)
+    bad = ~missing & ~(np.isfinite(values) & (values >= 0) & (np.floor(values) == values))
+    return np.where(missing | bad, np.nan, values), bad, text.to_pylist()
 
 
 def _numpy_view(array: Any, dtype: type) -> np.ndarray:
-    """The values of a null-free, fixed-width Arrow array as numpy, read from its data buffer.
+    """The values of a null-free, fixed-width Arrow array as numpy, read from its data buffer (read-only).
 
     (``to_numpy`` would do, but it loads pandas, half a second of start-up for a CLI error.)
     """

@@ -141,9 +141,17 @@ def checked_responses(responses: FloatArray, n_categories: IntArray) -> FloatArr
     k = np.asarray(n_categories, dtype=np.int64)
     if x.ndim != 2 or x.shape[1] != k.size:
         raise ValueError(f"responses must be (respondents, {k.size} items); got shape {x.shape}")
-    answered = ~np.isnan(x)
-    bad = answered & ((x < 0) | (x >= k[None, :]) | (x != np.floor(x)))
-    if bad.any():
+    if x.shape[0] == 0:
+        return x
+    # Cheap passes first (column minima and maxima ignore NaN; NaN - floor(NaN) > 0 is False); only
+    # a table that fails one is searched cell by cell for the first bad code.
+    low, high = np.fmin.reduce(x, axis=0), np.fmax.reduce(x, axis=0)
+    fraction = np.floor(x)
+    with np.errstate(invalid="ignore"):  # inf - floor(inf) is NaN; the maxima catch inf
+        np.subtract(x, fraction, out=fraction)
+    if np.any(low < 0) or np.any(high >= k) or np.any(fraction > 0):
+        answered = ~np.isnan(x)
+        bad = answered & ((x < 0) | (x >= k[None, :]) | (x != np.floor(x)))
         row, item = (int(v[0]) for v in np.nonzero(bad))
         raise ValueError(
             f"responses row {row}, item {item}: code {x[row, item]:g} is not a category of the item (0..{k[item] - 1})"

@@ -42,6 +42,30 @@ def person_fit_lz(
     out = np.full(x.shape[0], np.nan)
     k = np.arange(params.max_categories)
 
+    def dichotomous(rows: slice) -> None:
+        # The same statistic with every item right/wrong: (n, J) arrays instead of (n, J, K).
+        ok = answered[rows]
+        eta = params.slopes[None, :] * theta[rows, None] + params.intercepts[None, :, 0]
+        with np.errstate(over="ignore"):
+            p1 = 1.0 / (1.0 + np.exp(-eta))
+        p0 = 1.0 - p1
+        log_p1, log_p0 = np.log(np.maximum(p1, PROBABILITY_FLOOR)), np.log(np.maximum(p0, PROBABILITY_FLOOR))
+        statistic = np.sum(np.where(ok, (codes[rows] - p1) * (log_p1 - log_p0), 0.0), axis=1)
+        w1, w0 = log_p1, log_p0
+        if corrected:
+            d1 = params.slopes[None, :] * p1 * p0  # dP1/dtheta; dP0/dtheta = -d1
+            r1 = np.where(p1 > PROBABILITY_FLOOR, d1 / np.maximum(p1, PROBABILITY_FLOOR), 0.0)
+            r0 = np.where(p0 > PROBABILITY_FLOOR, -d1 / np.maximum(p0, PROBABILITY_FLOOR), 0.0)
+            slope_w = np.sum(np.where(ok, d1 * (log_p1 - log_p0), 0.0), axis=1)
+            slope_r = np.sum(np.where(ok, d1 * (r1 - r0), 0.0), axis=1)
+            c = np.where(slope_r > 0, slope_w / np.maximum(slope_r, PROBABILITY_FLOOR), 0.0)
+            w1, w0 = log_p1 - c[:, None] * r1, log_p0 - c[:, None] * r0
+            if prior is not None:
+                statistic = statistic + c * (-(theta[rows] - prior.mean) / prior.sd**2)
+        var = np.where(ok, p1 * p0 * (w1 - w0) ** 2, 0.0).sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out[rows] = np.where((ok.sum(axis=1) > 0) & (var > 0), statistic / np.sqrt(var), np.nan)
+
     def block(rows: slice) -> None:
         # Plain probabilities suffice here (no far-tail precision needed); floor them before the log.
         prob = np.moveaxis(category_probabilities(params, theta[rows]), 2, 0)  # (n, J, K)
@@ -66,5 +90,5 @@ def person_fit_lz(
         with np.errstate(invalid="ignore", divide="ignore"):
             out[rows] = np.where((ok.sum(axis=1) > 0) & (var > 0), statistic / np.sqrt(var), np.nan)
 
-    run_blocks(block, x.shape[0], DEFAULT_CHUNK, workers=None)
+    run_blocks(dichotomous if params.max_categories == 2 else block, x.shape[0], DEFAULT_CHUNK, workers=None)
     return out

@@ -52,6 +52,25 @@ def test_score_output_matches_the_library(published: tuple[Path, Path], tmp_path
     assert (frame["items_answered"] == (~np.isnan(x)).sum(axis=1)).all()
 
 
+def test_score_error_late_in_a_large_file_leaves_the_output_untouched(
+    published: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    # The file is scored in batches; a bad cell in its last rows must not leave a partial output.
+    data, store_dir = published
+    frame = pd.concat([pd.read_csv(data, dtype=str, keep_default_na=False)] * 50, ignore_index=True)
+    frame["id"] = [f"p{i}" for i in range(len(frame))]
+    frame.loc[len(frame) - 2, "DOC03"] = "yes"
+    bad = tmp_path / "late.csv"
+    frame.to_csv(bad, index=False)
+    out = tmp_path / "scores.csv"
+    out.write_text("earlier scores\n")
+    args = ["score", str(bad), "--bundle", "skills@1", "--store", str(store_dir), "--out", str(out)]
+    assert main(args) == 2
+    assert f"row {len(frame) - 1} (line {len(frame)}), column 'DOC03': value 'yes'" in capsys.readouterr().err
+    assert out.read_text() == "earlier scores\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["late.csv", "scores.csv"]
+
+
 def test_bad_cell_exits_2_names_the_cell_and_publishes_nothing(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     data = tmp_path / "bad.csv"
     frame = make_demo_responses(100, seed=1, with_sites=False).astype(str)

@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from calibration.io import InputError, read_for_scoring, read_item_spec, read_responses
+from calibration.io import InputError, ScoringInput, read_for_scoring, read_item_spec, read_responses
 
 
 def write(tmp_path: Path, text: str, name: str = "responses.csv") -> Path:
@@ -110,3 +110,74 @@ def test_repeated_header_is_refused(tmp_path: Path) -> None:
     # pandas alone would rename the second Q1 to "Q1.1" and calibrate it as another item.
     with pytest.raises(InputError, match="column 'Q1' appears more than once in the header"):
         read_responses(write(tmp_path, "id,Q1,Q2,Q1\na,1,0,1\nb,0,1,1\n"))
+
+
+def _batches(path: Path, categories: dict[str, int], batch_rows: int) -> list:
+    return list(ScoringInput(path, item_categories=categories, batch_rows=batch_rows).batches())
+
+
+def test_scoring_input_in_small_batches_reads_what_the_whole_file_holds(tmp_path: Path) -> None:
+    # Independent route: pandas reads the same file whole. Batches of 3 rows cover every row once,
+    # in order, with their rows numbered from the file's start; cells pandas sees as " 1" or "1.0"
+    # (text the integer read refuses) send the reader to its text read without losing a row.
+    rng = np.random.default_rng(3)
+    codes = rng.integers(0, 3, (20, 4)).astype(float)
+    codes[rng.random(codes.shape) < 0.2] = np.nan
+    lines = ["id,Q1,Q2,Q3,Q4"]
+    for i, row in enumerate(codes):
+        cells = ["" if np.isnan(v) else str(int(v)) for v in row]
+        if i == 13:
+            cells[2] = f" {cells[2]} " if cells[2] else "1.0"
+            codes[i, 2] = 1.0 if np.isnan(row[2]) else row[2]
+        lines.append(f"r{i}," + ",".join(cells))
+    path = write(tmp_path, "\n".join(lines) + "\n")
+    categories = {"Q1": 3, "Q2": 3, "Q3": 3, "Q4": 3}
+    for batch_rows in (3, 7, 64):
+        batches = _batches(path, categories, batch_rows)
+        assert len(batches) > 1 or batch_rows == 64
+        assert [b.first_row for b in batches] == sorted(b.first_row for b in batches)
+        ids = [i for b in batches for i in b.ids.to_pylist()]
+        assert ids == pd.read_csv(path)["id"].tolist()
+        np.testing.assert_array_equal(np.concatenate([b.responses for b in batches]), codes)
+
+
+def test_a_bad_cell_late_in_the_file_is_named_and_every_problem_counted(tmp_path: Path) -> None:
+    rows = [f"r{i},{i % 2},{(i + 1) % 2}" for i in range(30)]
+    rows[25] = "r25,x,1"
+    rows[27] = "r3,0,1"  # a repeat of row 4's id, in another batch
+    path = write(tmp_path, "id,Q1,Q2\n" + "\n".join(rows) + "\n")
+    seen = []
+    with pytest.raises(InputError) as err:
+        for batch in ScoringInput(path, item_categories={"Q1": 2, "Q2": 2}, batch_rows=8).batches():
+            seen.append(batch.first_row)
+    message = str(err.value)
+    assert "row 26 (line 27), column 'Q1': value 'x' is not a category code" in message
+    assert "row 28 (line 29), column 'id': duplicate id 'r3' (first seen at row 4 (line 5))" in message
+    assert "2 problem(s)" in message
+    assert max(seen) < 25  # no batch with or after the bad row was handed out
+
+
+def test_fixed_decimals_equal_python_formatting() -> None:
+    # Reference: Python's own correctly rounded fixed-point formatting (f"{v:.{d}f}").
+    from calibration.io.write import fixed_decimals
+
+    rng = np.random.default_rng(9)
+    values = np.concatenate(
+        [rng.normal(0, 3, 20_000), np.round(rng.normal(0, 1, 20_000), 3), [0.5, 2.675, -0.0, -4e-7, np.nan, np.inf]]
+    )
+    for decimals in (0, 1, 2, 6):
+        expected = ["" if not np.isfinite(v) else f"{v:.{decimals}f}" for v in values]
+        assert fixed_decimals(values, decimals).to_pylist() == expected
+
+
+def test_csv_text_round_trips_through_the_csv_module() -> None:
+    # Reference: Python's csv module reads back what the writer quoted.
+    import csv
+    import io
+
+    from calibration.io.write import csv_line, csv_rows, csv_text
+
+    texts = ["plain", "with,comma", 'with "quote"', "line\nbreak", ""]
+    body = csv_line(["id", "note"]) + csv_rows([csv_text(texts), csv_text(["x"] * len(texts))])
+    parsed = list(csv.reader(io.StringIO(body.decode())))
+    assert parsed == [["id", "note"], *[[t, "x"] for t in texts]]

@@ -242,6 +242,29 @@ def test_corrected_person_fit_equals_snijders_binary_formula() -> None:
     np.testing.assert_allclose(got, numerator / denominator, rtol=1e-9)
 
 
+@pytest.mark.parametrize("corrected", [False, True])
+def test_person_fit_right_wrong_path_equals_the_category_path(corrected: bool) -> None:
+    # Two routes in the library: right/wrong tests take (n, J) arrays, others the (n, J, K) category
+    # form. A graded item nobody answered adds nothing, so appending one sends the same answers
+    # down the category form: both must agree to rounding.
+    from calibration.irt.person_fit import person_fit_lz
+
+    rng = np.random.default_rng(21)
+    a, b = rng.uniform(0.8, 2.0, 15), rng.normal(0, 1, 15)
+    theta = rng.normal(size=500)
+    x = simulate_responses(a, b, theta, rng).astype(float)
+    x[rng.random(x.shape) < 0.1] = np.nan
+    prior = NormalPrior(0.2, 1.1)
+    fast = person_fit_lz(ItemParameters.from_thresholds(a, b), x, theta, corrected=corrected, prior=prior)
+    thresholds = np.full((16, 2), np.nan)
+    thresholds[:15, 0] = b
+    thresholds[15] = [-0.5, 0.5]
+    padded = ItemParameters.from_thresholds(np.r_[a, 1.0], thresholds)
+    unanswered = np.column_stack([x, np.full(500, np.nan)])
+    slow = person_fit_lz(padded, unanswered, theta, corrected=corrected, prior=prior)
+    np.testing.assert_allclose(fast, slow, rtol=1e-12, atol=1e-12)
+
+
 @pytest.mark.parametrize("method", ["ml", "eap"])
 def test_corrected_person_fit_is_standard_normal_under_the_model(method: str) -> None:
     # Simulation (seeded, invented parameters): under the model l_z* has mean near 0 and SD near 1
