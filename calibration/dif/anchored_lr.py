@@ -127,26 +127,40 @@ def _effect_se(fit: HeldItemFit, mean: float, sd: float) -> float:
     return float(np.sqrt(variance)) if variance >= 0 else float("nan")
 
 
-def _test_item(
+def _held_rows(
+    fit: MultiGroupFit, base: list[_GroupRows], responses: FloatArray, j: int, g: int, points: FloatArray
+) -> HeldLikelihood:
+    """Group g's rows with every item but j held at the base model's values, split by the answer to j."""
+    rows = base[g]
+    x = responses[rows.rows, j]
+    k_j = int(fit.template.n_categories[j])
+    return HeldLikelihood.from_offset(rows.loglik - _item_loglik(fit.group_params(g), j, x, points), x, k_j)
+
+
+def _fitted_latent(latent: LatentSpec, vector: FloatArray) -> LatentSpec:
+    """``latent`` with the focal mean and SD taken from a one-item fit's vector (its last two entries)."""
+    mean, sd = latent.mean.copy(), latent.sd.copy()
+    mean[1], sd[1] = vector[-2], vector[-1]
+    return LatentSpec(mean, sd, latent.free_mean, latent.free_sd)
+
+
+def _test_item(  # noqa: PLR0913 - the cell, the base model and its data
     j: int,
     g: int,
     fit: MultiGroupFit,
     base: list[_GroupRows],
     responses: FloatArray,
     settings: EMSettings,
+    reference: HeldLikelihood,
     *,
     omnibus_only: bool = False,
 ) -> ItemGroupTest:
     points = settings.quadrature.points
     template = fit.template
     k_j = int(template.n_categories[j])
-    ref, foc = base[0], base[g]
-    x_ref, x_foc = responses[ref.rows, j], responses[foc.rows, j]
-    # The other items' likelihood, split by the studied item's answer once for all nested models.
-    held = [
-        HeldLikelihood.from_offset(ref.loglik - _item_loglik(fit.group_params(0), j, x_ref, points), x_ref, k_j),
-        HeldLikelihood.from_offset(foc.loglik - _item_loglik(fit.group_params(g), j, x_foc, points), x_foc, k_j),
-    ]
+    # The other items' likelihood, split by the studied item's answer once for all nested models
+    # (the reference group's split once for every focal group).
+    held = [reference, _held_rows(fit, base, responses, j, g, points)]
     one = template.subset([j])
     start = np.stack([fit.tables[0, j : j + 1, :k_j], fit.tables[g, j : j + 1, :k_j]])
     latent = LatentSpec(
@@ -158,10 +172,12 @@ def _test_item(
     designs = [np.zeros(k_j, dtype=bool), np.arange(k_j) > 0, np.ones(k_j, dtype=bool)]
     if omnibus_only:
         designs = [designs[0], designs[2]]
-    fits = []
+    fits: list[HeldItemFit] = []
     for free_slots in designs:
         group_free = np.zeros((2, 1, k_j), dtype=bool)
         group_free[1, 0] = free_slots
+        if fits:  # each model nests the one before it: start from that one's estimates
+            start, latent = fits[-1].tables, _fitted_latent(latent, fits[-1].vector)
         fits.append(fit_item_given_offsets(held, one, start, latent, group_free, settings))
     log_liks = [f.log_likelihood for f in fits]
     ll0, ll2 = log_liks[0], log_liks[-1]
@@ -215,11 +231,14 @@ def anchored_lr_tests(  # noqa: PLR0913 - the base fit, the data and keyword-onl
     out: dict[tuple[int, int], ItemGroupTest] = {}
     n_groups = fit.tables.shape[0]
     total = len(items) * (n_groups - 1)
+    points = settings.quadrature.points
     for j in items:
-        for g in range(1, n_groups):
-            if skip and (j, g) in skip:
-                continue
-            out[(j, g)] = _test_item(j, g, fit, base, responses, settings, omnibus_only=omnibus_only)
+        focal = [g for g in range(1, n_groups) if not (skip and (j, g) in skip)]
+        if not focal:
+            continue
+        reference = _held_rows(fit, base, responses, j, 0, points)
+        for g in focal:
+            out[(j, g)] = _test_item(j, g, fit, base, responses, settings, reference, omnibus_only=omnibus_only)
             if progress is not None:
                 progress(len(out), total)
     return out

@@ -154,15 +154,41 @@ def polytomous_category(p_value: float, smd_over_sd: float) -> str:
 
 def matching_scores(responses: FloatArray, n_categories: IntArray, items: np.ndarray) -> tuple[FloatArray, np.ndarray]:
     """Prorated summed score over ``items`` (bool mask) and whether enough of them were answered."""
-    sub = responses[:, items]
-    top = (n_categories[items] - 1).astype(np.float64)
-    answered = ~np.isnan(sub)
-    got = np.where(answered, sub, 0.0).sum(axis=1)
-    possible = answered @ top
-    full = top.sum()
-    score = np.where(possible > 0, np.round(got * full / np.maximum(possible, 1e-12)), np.nan)
-    enough = answered.sum(axis=1) * 2 >= items.sum()
-    return score, enough
+    matching = MatchingSet(responses, n_categories, items)
+    return matching.prorate(matching.got, matching.possible, matching.count, int(items.sum()))
+
+
+class MatchingSet:
+    """Sums over a matching set computed once; each studied item adds its own answer (``for_item``)."""
+
+    def __init__(self, responses: FloatArray, n_categories: IntArray, items: np.ndarray) -> None:
+        self.responses = responses
+        self.items = np.asarray(items, dtype=bool)
+        self.top = (n_categories - 1).astype(np.float64)
+        sub = responses[:, self.items]
+        answered = ~np.isnan(sub)
+        self.got = np.where(answered, sub, 0.0).sum(axis=1)
+        self.possible = answered @ self.top[self.items]
+        self.count = answered.sum(axis=1)
+        self.full = float(self.top[self.items].sum())
+
+    def for_item(self, j: int) -> tuple[FloatArray, np.ndarray]:
+        """The matching score with item j in the set (it always is part of its own matching score)."""
+        if self.items[j]:
+            return self.prorate(self.got, self.possible, self.count, int(self.items.sum()))
+        answered = ~np.isnan(self.responses[:, j])
+        got = self.got + np.where(answered, self.responses[:, j], 0.0)
+        possible = self.possible + answered * self.top[j]
+        full = self.full + self.top[j]
+        return self.prorate(got, possible, self.count + answered, int(self.items.sum()) + 1, full=full)
+
+    def prorate(
+        self, got: FloatArray, possible: FloatArray, count: np.ndarray, n_items: int, *, full: float | None = None
+    ) -> tuple[FloatArray, np.ndarray]:
+        """Score rounded from the answered share to the full set; enough when half the set was answered."""
+        full = self.full if full is None else full
+        score = np.where(possible > 0, np.round(got * full / np.maximum(possible, 1e-12)), np.nan)
+        return score, count * 2 >= n_items
 
 
 @dataclass(frozen=True)
@@ -176,25 +202,22 @@ class ObservedScreening:
 
 
 def _item_result(
-    responses: FloatArray,
+    matching: MatchingSet,
     n_categories: IntArray,
     j: int,
-    rows: np.ndarray,
     is_focal: np.ndarray,
-    matching: np.ndarray,
     greater_than_one_z: float,
 ) -> MantelHaenszelResult | MantelResult:
-    items = matching.copy()
-    items[j] = True  # the studied item is always part of its own matching score
-    score, enough = matching_scores(responses[rows], n_categories, items)
-    y = responses[rows, j]
+    score, enough = matching.for_item(j)
+    y = matching.responses[:, j]
     ok = enough & ~np.isnan(y) & ~np.isnan(score)
     y, score, focal = y[ok], score[ok].astype(np.int64), is_focal[ok]
     n_ref, n_foc = int((~focal).sum()), int(focal.sum())
     if n_categories[j] == 2:
-        levels, inverse = np.unique(score, return_inverse=True)
-        tables = np.zeros((levels.size, 2, 2))
-        np.add.at(tables, (inverse, focal.astype(int), (1 - y).astype(int)), 1.0)
+        # One 2 x 2 table per observed score level (levels nobody has are left out).
+        cell = score * 4 + focal.astype(np.int64) * 2 + (1 - y).astype(np.int64)
+        counts = np.bincount(cell, minlength=4 * (int(score.max(initial=0)) + 1)).reshape(-1, 2, 2)
+        tables = counts[counts.sum(axis=(1, 2)) > 0].astype(np.float64)
         odds_ratio, se_log, chi, p = mantel_haenszel(tables)
         if 0 < odds_ratio < math.inf:
             d = -D_DIF_SCALE * math.log(odds_ratio)
@@ -238,12 +261,11 @@ def screen_observed(
     matching_used: dict[int, tuple[int, ...]] = {}
     for g in range(1, n_groups):
         rows = (group_index == 0) | (group_index == g)
+        members = responses[rows]
         is_focal = group_index[rows] == g
         all_items = np.ones(n_items, dtype=bool)
-        first = [
-            _item_result(responses, n_categories, j, rows, is_focal, all_items, greater_than_one_z)
-            for j in range(n_items)
-        ]
+        every = MatchingSet(members, n_categories, all_items)
+        first = [_item_result(every, n_categories, j, is_focal, greater_than_one_z) for j in range(n_items)]
         flagged = tuple(j for j, r in enumerate(first) if _flagged(r))
         stage1[g] = flagged
         matching = all_items.copy()
@@ -251,8 +273,9 @@ def screen_observed(
         if matching.sum() < 2:  # nearly every item flagged: purification has nothing left to match on
             matching = all_items
         matching_used[g] = tuple(int(j) for j in np.flatnonzero(matching))
+        purified = MatchingSet(members, n_categories, matching)
         for j in range(n_items):
-            result = _item_result(responses, n_categories, j, rows, is_focal, matching, greater_than_one_z)
+            result = _item_result(purified, n_categories, j, is_focal, greater_than_one_z)
             if isinstance(result, MantelHaenszelResult):
                 mh[(j, g)] = result
             else:

@@ -15,4 +15,4 @@ class DifSettings:
     anchor_fraction: float = 0.20
     min_anchors: int = 4
     anchors: tuple[str, ...] = ()  # user-named anchors (item ids); empty: select automatically
-    sub_tolerance: float = 1e-3
+    sub_tolerance: float = 1e-3  # EM tolerance of a one-item fit where Newton cannot go on (rare)

@@ -98,7 +98,7 @@ def prepare_groups(
     """Split rows by group (original order within a group); compress patterns where it pays."""
     out = []
     for g in range(n_groups):
-        rows = responses[group_index == g]
+        rows = responses if n_groups == 1 else responses[group_index == g]  # one group: no copy
         compressed = compress_patterns(rows) if (compress and rows.shape[0] > 0) else None
         if compressed is not None:
             unique, weights = compressed
@@ -115,10 +115,16 @@ def compress_patterns(responses: FloatArray) -> tuple[FloatArray, FloatArray] | 
     1-D key (a fixed random projection of each row) decides that before the exact,
     costlier row-wise ``np.unique``.
     """
-    coded = np.where(np.isnan(responses), -1.0, responses)
-    keys = coded @ np.random.default_rng(0).random(coded.shape[1])
-    if np.unique(keys).size > 0.8 * coded.shape[0]:
+    projection = np.random.default_rng(0).random(responses.shape[1])
+    keys = np.concatenate(
+        [
+            np.where(np.isnan(block), -1.0, block) @ projection
+            for block in np.array_split(responses, max(1, responses.shape[0] // 65_536))
+        ]
+    )  # block by block: no full copy of the table just to decide
+    if np.unique(keys).size > 0.8 * responses.shape[0]:
         return None
+    coded = np.where(np.isnan(responses), -1.0, responses)
     unique, counts = np.unique(coded, axis=0, return_counts=True)
     unique = np.where(unique < 0, np.nan, unique)
     return unique, counts.astype(np.float64)

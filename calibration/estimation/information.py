@@ -170,7 +170,17 @@ def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, 
         cross = mean_score.T @ (mean_score * n_i[:, None])
         return gram, cross, indicators.T @ weighted, z[:, 1 : 1 + gappy.size].T @ weighted, weighted.sum(axis=0)
 
-    parts = run_blocks(block, design.n_persons, GRAM_BLOCK_ROWS, workers=None)
+    def span(rows: slice) -> tuple[FloatArray, ...]:
+        # A few large spans per thread, each summing its small blocks as it goes: memory stays flat.
+        sums: tuple[FloatArray, ...] = ()
+        for start in range(rows.start, rows.stop, GRAM_BLOCK_ROWS):
+            part = block(slice(start, min(start + GRAM_BLOCK_ROWS, rows.stop)))
+            sums = part if not sums else tuple(a + b for a, b in zip(sums, part, strict=True))
+        return sums
+
+    n_spans = 8
+    span_rows = max(GRAM_BLOCK_ROWS, -(-design.n_persons // n_spans))
+    parts = [p for p in run_blocks(span, design.n_persons, span_rows, workers=None) if p]
     gram_upper = sum(p[0] for p in parts)
     cross = sum(p[1] for p in parts)
     category_counts = sum(p[2] for p in parts)
@@ -243,25 +253,38 @@ def observed_information(
     return information
 
 
-def held_item_information(
+@dataclass(frozen=True)
+class HeldTerms:
+    """Log-likelihood, gradient and observed information of a held-item model at one parameter vector."""
+
+    log_likelihood: float
+    gradient: FloatArray
+    information: FloatArray
+
+
+def held_item_terms(
     rows: Sequence[HeldLikelihood],
     params: Sequence[ItemParameters],
     mean: FloatArray,
     sd: FloatArray,
     points: FloatArray,
     layout: GroupLayout,
-) -> FloatArray:
-    """Observed information of one studied item's free slots and the focal group's latent mean and SD.
+) -> HeldTerms:
+    """Marginal log-likelihood, its gradient and observed information for one studied item.
 
-    Every other item is held (their likelihood in ``rows``, reference group 0 and focal group 1).
-    Within a block of rows that gave the studied item the same answer the complete-data score at
-    a point is the same for every row, so ``E[s s^T]`` is the block's expected counts times the
-    score's outer product. Order: the layout's free slots, then the focal mean and SD.
+    Every other item is held (their likelihood in ``rows``, reference group 0 and focal group 1);
+    the parameters are the layout's free slots of the studied item, then the focal mean and SD.
+    Within a block of rows that gave the studied item the same answer the complete-data score at a
+    point is the same for every row, so one product of the block with ``[v, v * score]`` gives each
+    row's likelihood and posterior mean score, and ``E[s s^T]`` is the block's expected counts
+    times the score's outer product. Two passes over each block, no (rows x points) temporary.
     """
     n_item = layout.n_free
     k_max = params[0].max_categories
     size = k_max + 2
     information = np.zeros((n_item + 2, n_item + 2))
+    gradient = np.zeros(n_item + 2)
+    log_lik = 0.0
     for h, group_rows in enumerate(rows):
         items = _ItemTables.build(params[h], points)
         lat_score, lat_hessian = latent_derivatives(points, float(mean[h]), float(sd[h]))
@@ -269,23 +292,32 @@ def held_item_information(
         prob = category_parameter_derivatives(params[h], points)[0][0]
         focal = h == 1
         local = np.zeros((size, size))
+        local_gradient = np.zeros(size)
         blocks = [(k, e) for k, e in enumerate(group_rows.by_category)] + [(-1, group_rows.missing)]
         for k, e in blocks:
             if e.shape[0] == 0:
                 continue
             v = w if k < 0 else prob[k] * w
-            post = e * v
-            post /= post.sum(axis=1, keepdims=True)
-            counts = post.sum(axis=0)
             score = np.zeros((points.size, size))
             if k >= 0:
                 score[:, :k_max] = items.score[0, k]
-                local[:k_max, :k_max] += np.einsum("q,qst->st", counts, items.hessian[0, k])
             if focal:
                 score[:, k_max:] = lat_score
+            products = e @ np.column_stack([v, v[:, None] * score])
+            likelihood = products[:, 0]
+            mean_score = products[:, 1:] / likelihood[:, None]
+            counts = v * (e.T @ (1.0 / likelihood))
+            log_lik += float(np.log(likelihood).sum())
+            if k >= 0:
+                local[:k_max, :k_max] += np.einsum("q,qst->st", counts, items.hessian[0, k])
+            if focal:
                 local[k_max:, k_max:] += np.einsum("q,qst->st", counts, lat_hessian)
-            mean_score = post @ score
             local += score.T @ (score * counts[:, None]) - mean_score.T @ mean_score
+            local_gradient += counts @ score
+        log_lik += group_rows.constant
         latent_at = np.array([n_item, n_item + 1] if focal else [-1, -1], dtype=np.int64)
-        _scatter(information, -local, np.concatenate([layout.index[h].reshape(-1), latent_at]))
-    return information
+        index = np.concatenate([layout.index[h].reshape(-1), latent_at])
+        _scatter(information, -local, index)
+        keep = np.flatnonzero(index >= 0)
+        np.add.at(gradient, index[keep], local_gradient[keep])
+    return HeldTerms(log_lik, gradient, information)

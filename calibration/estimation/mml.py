@@ -20,13 +20,14 @@ from calibration.estimation.estep import (
     prepare_groups,
 )
 from calibration.estimation.information import (
-    held_item_information,
+    HeldTerms,
+    held_item_terms,
     information_to_covariance,
     observed_information,
 )
-from calibration.estimation.latent import LatentSpec, latent_score, latent_update
+from calibration.estimation.latent import LatentSpec, latent_update
 from calibration.estimation.layout import GroupLayout, params_from_table, slot_table, valid_tables
-from calibration.estimation.mstep import item_gradient, m_step
+from calibration.estimation.mstep import STEP_HALVINGS, m_step
 from calibration.estimation.optimizer import run_em
 from calibration.estimation.results import CalibrationFit, MultiGroupFit
 from calibration.estimation.settings import EMSettings
@@ -295,17 +296,62 @@ def fit_item_given_offsets(
         mean[1], sd[1] = latent_update(mass[1], points, float(mean[1]), float(sd[1]), free_mean=True, free_sd=True)
         return np.concatenate([layout.to_vector(tables), [mean[1], sd[1]]]), log_lik
 
-    def score(vec: FloatArray) -> FloatArray:
-        tables, mean, sd, counts, mass, _ = e_step(vec)
-        latent_part = latent_score(mass[1], points, float(mean[1]), float(sd[1]))
-        return np.concatenate([item_gradient(tables, template, counts, points, layout), latent_part])
-
-    vec0 = np.concatenate([layout.to_vector(start), [latent.mean[1], latent.sd[1]]])
-    vec, _, _, _ = run_em(vec0, em_map, settings, warn=False)
-    tables, mean, sd, _, _, log_lik = e_step(vec)
-
-    def information() -> FloatArray:
+    def terms(vec: FloatArray) -> HeldTerms | None:
+        tables, mean, sd = unpack(vec)
+        if sd[1] <= 0 or not valid_tables(tables, template.n_categories).all():
+            return None
         params = [params_from_table(tables[h], template) for h in range(2)]
-        return held_item_information(rows, params, mean, sd, points, layout)
+        return held_item_terms(rows, params, mean, sd, points, layout)
 
-    return HeldItemFit(log_lik, tables, vec, template, unpack, score, information)
+    vec = np.concatenate([layout.to_vector(start), [latent.mean[1], latent.sd[1]]])
+    vec, current = _newton(vec, terms)
+    if current is None:
+        # Newton could not go on (information not positive definite, or no step raised the
+        # likelihood): EM, which always can, from where Newton stopped.
+        vec, _, _, _ = run_em(vec, em_map, settings, warn=False)
+        current = terms(vec)
+        if current is None:
+            raise ValueError("the one-item fit left the valid parameter region")
+    tables = unpack(vec)[0]
+    final = current
+
+    def score(at: FloatArray) -> FloatArray:
+        value = terms(at)
+        if value is None:
+            raise ValueError("invalid parameters")
+        return value.gradient
+
+    return HeldItemFit(final.log_likelihood, tables, vec, template, unpack, score, lambda: final.information)
+
+
+NEWTON_MAX_ITER = 30
+"""Newton steps of a one-item fit before EM takes over."""
+NEWTON_TOLERANCE = 1e-6
+"""A Newton step whose largest component is below this ends the one-item fit (the next would be ~1e-12)."""
+
+
+def _newton(vec: FloatArray, terms: Callable[[FloatArray], HeldTerms | None]) -> tuple[FloatArray, HeldTerms | None]:
+    """Newton-Raphson with step halving on a one-item marginal likelihood (analytic gradient and Hessian).
+
+    Returns the estimate and its terms, or the last point and None when Newton cannot go on.
+    """
+    current = terms(vec)
+    if current is None:
+        return vec, None
+    for _ in range(NEWTON_MAX_ITER):
+        try:
+            chol = np.linalg.cholesky(current.information)
+        except np.linalg.LinAlgError:
+            return vec, None
+        step = np.linalg.solve(chol.T, np.linalg.solve(chol, current.gradient))
+        for _halving in range(STEP_HALVINGS):
+            trial = terms(vec + step)
+            if trial is not None and trial.log_likelihood >= current.log_likelihood - 1e-10:
+                break
+            step = step * 0.5
+        else:
+            return vec, None
+        vec, current = vec + step, trial
+        if np.max(np.abs(step)) < NEWTON_TOLERANCE:
+            return vec, current
+    return vec, None

@@ -20,15 +20,16 @@ def starting_values(responses: FloatArray, n_categories: IntArray, models: tuple
     x = np.asarray(responses, dtype=np.float64)
     n_items = x.shape[1]
     k = np.asarray(n_categories, dtype=np.int64)
-    scaled = x / (k - 1)[None, :]
-    answered = ~np.isnan(scaled)
-    row_total = np.nansum(scaled, axis=1)
+    answered = ~np.isnan(x)
+    row_total = np.zeros(x.shape[0])
+    for j in range(n_items):  # column by column: no scaled copy of the whole table
+        row_total += np.where(answered[:, j], x[:, j] / (k[j] - 1), 0.0)
     row_count = answered.sum(axis=1)
     slopes = np.empty(n_items)
     intercepts = np.full((n_items, int(k.max()) - 1), np.nan)
     for j in range(n_items):
         ok = answered[:, j] & (row_count > 1)
-        item = scaled[ok, j]
+        item = x[ok, j] / (k[j] - 1)
         rest = (row_total[ok] - item) / (row_count[ok] - 1)
         r = 0.5
         if item.size > 2 and item.std() > 0 and rest.std() > 0:

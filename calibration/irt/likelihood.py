@@ -15,6 +15,7 @@ the first product is a constant row, so the work is one (N x J) by (J x Q) produ
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import os
 import threading
@@ -55,20 +56,29 @@ def _pool_and_blas() -> tuple[ThreadPoolExecutor, ThreadpoolController]:
         return _POOL, _BLAS
 
 
+def single_threaded_blas() -> contextlib.AbstractContextManager[object]:
+    """BLAS held to one thread inside the block (equitheta splits its large work into row blocks itself).
+
+    Small products gain nothing from BLAS threads, and idle BLAS threads spin on the other core.
+    """
+    return _pool_and_blas()[1].limit(limits=1, user_api="blas")
+
+
 def run_blocks(block: Callable[[slice], T], n_rows: int, chunk_size: int, *, workers: int | None) -> list[T]:
     """Call ``block`` on every row slice (several threads for large inputs); results in order.
 
-    numpy releases the GIL in its kernels, so threads scale; BLAS is held to one
-    thread meanwhile so the two levels of parallelism do not oversubscribe the cores.
-    Calls from inside a worker run serially (no nested pools).
+    numpy releases the GIL in its kernels, so threads scale; BLAS is held to one thread
+    (on the single-block path too) so the two levels of parallelism do not oversubscribe the
+    cores. Calls from inside a worker run serially (no nested pools).
     """
     slices = chunks(n_rows, chunk_size)
     n_workers = min(workers or _DEFAULT_WORKERS, len(slices))
-    if n_workers <= 1 or threading.current_thread().name.startswith("equitheta"):
+    if threading.current_thread().name.startswith("equitheta"):
         return [block(rows) for rows in slices]
-    pool, blas = _pool_and_blas()
-    with blas.limit(limits=1, user_api="blas"):
-        return list(pool.map(block, slices))
+    with single_threaded_blas():
+        if n_workers <= 1:
+            return [block(rows) for rows in slices]
+        return list(_pool_and_blas()[0].map(block, slices))
 
 
 @dataclass(frozen=True)
@@ -130,6 +140,10 @@ def posterior_weights(log_joint: FloatArray) -> FloatArray:
     return scaled
 
 
+CHECK_ROWS = 65_536
+"""Rows per block of the code check (its temporaries stay a few MB)."""
+
+
 def checked_responses(responses: FloatArray, n_categories: IntArray) -> FloatArray:
     """The responses as float64, refused with a ValueError naming the first bad row, item and value.
 
@@ -146,10 +160,12 @@ def checked_responses(responses: FloatArray, n_categories: IntArray) -> FloatArr
     # Cheap passes first (column minima and maxima ignore NaN; NaN - floor(NaN) > 0 is False); only
     # a table that fails one is searched cell by cell for the first bad code.
     low, high = np.fmin.reduce(x, axis=0), np.fmax.reduce(x, axis=0)
-    fraction = np.floor(x)
-    with np.errstate(invalid="ignore"):  # inf - floor(inf) is NaN; the maxima catch inf
-        np.subtract(x, fraction, out=fraction)
-    if np.any(low < 0) or np.any(high >= k) or np.any(fraction > 0):
+    fractional = False
+    for start in range(0, x.shape[0], CHECK_ROWS):  # in blocks: no full-size temporary
+        block = x[start : start + CHECK_ROWS]
+        with np.errstate(invalid="ignore"):  # inf - floor(inf) is NaN; the maxima catch inf
+            fractional = fractional or bool(np.any(block - np.floor(block) > 0))
+    if np.any(low < 0) or np.any(high >= k) or fractional:
         answered = ~np.isnan(x)
         bad = answered & ((x < 0) | (x >= k[None, :]) | (x != np.floor(x)))
         row, item = (int(v[0]) for v in np.nonzero(bad))

@@ -28,8 +28,7 @@ from calibration.irt.models import (
     FloatArray,
     IntArray,
     ItemParameters,
-    category_probabilities,
-    category_probability_derivatives,
+    cumulative_probabilities,
     information_from,
 )
 from calibration.vocabulary import SCORING_METHODS
@@ -124,15 +123,52 @@ def score_tables(params: ItemParameters, grid: QuadratureGrid) -> tuple[FloatArr
 def _gradient_and_information(
     params: ItemParameters, codes: IntArray, answered: np.ndarray, theta: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
-    """d log L / d theta and test information at each respondent's theta (answered items only)."""
-    prob = category_probabilities(params, theta)  # (n_items, K, n_persons)
-    deriv = category_probability_derivatives(params, theta)
+    """d log L / d theta and the expected test information at each respondent's theta (answered items only)."""
+    a = params.slopes
+    if params.max_categories == 2:
+        # Right/wrong items: d log L / d theta = sum a (x - P), information sum a^2 P (1 - P), which is
+        # also minus the second derivative.
+        with np.errstate(over="ignore"):
+            p = 1.0 / (1.0 + np.exp(-(theta[:, None] * a + params.intercepts[:, 0])))
+        gradient = np.where(answered, a * (codes - p), 0.0).sum(axis=1)
+        information = np.where(answered, a * a * p * (1.0 - p), 0.0).sum(axis=1)
+        return gradient, information
+    star = cumulative_probabilities(params, theta)  # (n_items, K + 1, n_persons)
+    w = star * (1.0 - star)
+    prob = star[:, :-1, :] - star[:, 1:, :]
+    deriv = a[:, None, None] * (w[:, :-1, :] - w[:, 1:, :])
     picked = codes.T[:, None, :]
     p_answer = np.maximum(np.take_along_axis(prob, picked, axis=1)[:, 0, :], PROBABILITY_FLOOR)
-    d_answer = np.take_along_axis(deriv, picked, axis=1)[:, 0, :]
-    gradient = np.where(answered, (d_answer / p_answer).T, 0.0).sum(axis=1)
+    gradient = np.where(answered, (np.take_along_axis(deriv, picked, axis=1)[:, 0, :] / p_answer).T, 0.0).sum(axis=1)
     information = np.where(answered, information_from(prob, deriv).T, 0.0).sum(axis=1)
     return gradient, information
+
+
+def _answer_curves(
+    params: ItemParameters, codes: IntArray, answered: np.ndarray, theta: FloatArray
+) -> tuple[FloatArray, FloatArray]:
+    """d log P(answer) / d theta and minus its second derivative, summed over the answered items.
+
+    Only the answered category's two boundaries are evaluated, ``P_x = P*_x - P*_{x+1}`` with
+    ``P*_0 = 1`` and ``P*_K = 0``: (n, J) arrays, not (n, J, K).
+    """
+    a = params.slopes
+    padded = np.full((params.n_items, params.max_categories + 1), -np.inf)
+    padded[:, 0] = np.inf
+    for j, k in enumerate(params.n_categories):
+        padded[j, 1:k] = params.intercepts[j, : k - 1]
+    items = np.arange(params.n_items)
+    lower, upper = padded[items, codes], padded[items, codes + 1]  # boundaries x and x + 1 per cell
+    eta = theta[:, None] * a
+    with np.errstate(over="ignore", invalid="ignore"):
+        star_lo = 1.0 / (1.0 + np.exp(-(eta + lower)))
+        star_hi = 1.0 / (1.0 + np.exp(-(eta + upper)))
+    w_lo, w_hi = star_lo * (1.0 - star_lo), star_hi * (1.0 - star_hi)
+    p_answer = np.maximum(star_lo - star_hi, PROBABILITY_FLOOR)
+    first = a * (w_lo - w_hi) / p_answer
+    second = a * a * (w_lo * (1.0 - 2.0 * star_lo) - w_hi * (1.0 - 2.0 * star_hi)) / p_answer
+    gradient = np.where(answered, first, 0.0).sum(axis=1)
+    return gradient, np.where(answered, first * first - second, 0.0).sum(axis=1)
 
 
 def _newton_theta(
@@ -145,28 +181,86 @@ def _newton_theta(
     max_iter: int = 50,
     tolerance: float = 1e-8,
 ) -> tuple[FloatArray, FloatArray]:
-    """Fisher scoring for the mode of the (penalised) likelihood, vectorised over persons."""
+    """Newton-Raphson for the mode of the (penalised) likelihood, vectorised over persons.
+
+    The steps use the observed curvature (the expected information where that is not positive);
+    the SE is from the expected information at the mode.
+    """
     answered = ~np.isnan(x)
     codes = np.where(answered, x, 0).astype(np.int64)
     theta = np.clip(start.copy(), -bound, bound)
     active = np.ones(theta.shape[0], dtype=bool)
+    prior_curvature = 0.0 if prior is None else 1.0 / prior.sd**2
+    curves = _gradient_and_information if params.max_categories == 2 else _answer_curves
     for _ in range(max_iter):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        gradient, info = _gradient_and_information(params, codes[idx], answered[idx], theta[idx])
+        gradient, curvature = curves(params, codes[idx], answered[idx], theta[idx])
         if prior is not None:
             gradient = gradient - (theta[idx] - prior.mean) / prior.sd**2
-            info = info + 1.0 / prior.sd**2
-        step = np.clip(gradient / np.maximum(info, 1e-12), -1.0, 1.0)
+        curvature = curvature + prior_curvature
+        bent = np.flatnonzero(curvature <= 1e-12)
+        if bent.size:
+            rows = idx[bent]
+            expected = _gradient_and_information(params, codes[rows], answered[rows], theta[rows])[1]
+            curvature[bent] = expected + prior_curvature
+        step = np.clip(gradient / np.maximum(curvature, 1e-12), -1.0, 1.0)
         theta[idx] = np.clip(theta[idx] + step, -bound, bound)
         active[idx] = np.abs(step) > tolerance
     _, info = _gradient_and_information(params, codes, answered, theta)
-    if prior is not None:
-        info = info + 1.0 / prior.sd**2
+    info = info + prior_curvature
     with np.errstate(divide="ignore"):
         se = np.where(info > 0, 1.0 / np.sqrt(info), np.inf)
     return theta, se
+
+
+def _grid_mode(log_values: FloatArray, points: FloatArray) -> FloatArray:
+    """Each row's maximum over the grid, refined by the parabola through it and its two neighbours.
+
+    A start for Newton within a small fraction of the grid spacing of the mode.
+    """
+    best = np.clip(np.argmax(log_values, axis=1), 1, points.size - 2)
+    rows = np.arange(log_values.shape[0])
+    left, mid, right = (log_values[rows, best + d] for d in (-1, 0, 1))
+    curvature = left - 2.0 * mid + right
+    with np.errstate(invalid="ignore", divide="ignore"):
+        shift = np.where(curvature < 0, 0.5 * (left - right) / curvature, 0.0)
+    return points[best] + np.clip(shift, -1.0, 1.0) * (points[1] - points[0])
+
+
+def _mode_scores(  # noqa: PLR0913 - the test, the data and the mode's options
+    params: ItemParameters,
+    x: FloatArray,
+    *,
+    prior: NormalPrior | None,
+    grid: QuadratureGrid,
+    bound: float,
+    chunk_size: int,
+) -> tuple[FloatArray, FloatArray, ResponseDesign]:
+    """Mode of the likelihood (ML) or posterior (MAP) per row: the grid's maximum, then Fisher scoring."""
+    points = grid.points
+    inside = np.abs(points) <= bound
+    points = points[inside] if inside.sum() >= 3 else points
+    scoped = QuadratureGrid(points.size, float(points[0]), float(points[-1]))
+    tables = score_tables(params, scoped)
+    log_prior = None if prior is None else normal_log_weights(scoped.points, prior.mean, prior.sd)
+    theta = np.empty(x.shape[0])
+    se = np.empty(x.shape[0])
+    design = build_design(x, params.n_categories)
+
+    def block(rows: slice) -> None:
+        part = design.rows(rows)
+        log_values = log_likelihood_grid(params, scoped.points, part, tables=tables, log_prior=log_prior)
+        start = _grid_mode(log_values, scoped.points)
+        theta[rows], se[rows] = _newton_theta(params, x[rows], start, prior=prior, bound=bound)
+
+    run_blocks(block, x.shape[0], chunk_size, workers=None)
+    return theta, se, design
+
+
+MAP_BOUND = 10.0
+"""MAP estimates are kept within +-10 (the prior keeps every mode finite; the bound only guards Newton)."""
 
 
 def map_scores(
@@ -179,19 +273,16 @@ def map_scores(
 ) -> ThetaScores:
     """Maximum a posteriori theta with ``SE = (I(theta) + 1/sigma^2)^(-1/2)``.
 
-    Started from the EAP, then Fisher scoring (expected information) to the mode.
+    Started from the posterior's maximum on the grid (refined by a parabola), then Fisher scoring
+    (expected information) to the mode.
     """
     prior = prior or NormalPrior()
     x = checked_responses(responses, params.n_categories)
-    eap = eap_scores(params, x, grid=grid, prior=prior, chunk_size=chunk_size)
-    theta = np.empty(x.shape[0])
-    se = np.empty(x.shape[0])
-
-    def block(rows: slice) -> None:
-        theta[rows], se[rows] = _newton_theta(params, x[rows], eap.theta[rows], prior=prior, bound=10.0)
-
-    run_blocks(block, x.shape[0], chunk_size, workers=None)
-    return ThetaScores(theta=theta, se=se, n_answered=eap.n_answered, extreme=eap.extreme, method=METHOD_MAP)
+    theta, se, design = _mode_scores(
+        params, x, prior=prior, grid=grid or QuadratureGrid(), bound=MAP_BOUND, chunk_size=chunk_size
+    )
+    low, high = _extreme_low_high(design)
+    return ThetaScores(theta=theta, se=se, n_answered=design.n_answered, extreme=low | high, method=METHOD_MAP)
 
 
 def ml_scores(
@@ -208,24 +299,14 @@ def ml_scores(
     limit), so theta is set to ``-bound`` / ``+bound`` (default +-4) with the SE
     from the information at that point, and ``extreme`` is True. Every other
     estimate is also kept within ``[-bound, bound]``. A respondent with no answers
-    gets NaN.
+    gets NaN. Started from the likelihood's maximum on a grid within the bound.
     """
     x = checked_responses(responses, params.n_categories)
-    design = build_design(x, params.n_categories)
+    theta, se, design = _mode_scores(params, x, prior=None, grid=QuadratureGrid(), bound=bound, chunk_size=chunk_size)
     low, high = _extreme_low_high(design)
     extreme = low | high
     n_answered = design.n_answered
-    theta = np.full(x.shape[0], np.nan)
-    se = np.full(x.shape[0], np.nan)
     answered_any = n_answered > 0
-    # Start from the proportion of the maximum score, stretched to the theta range.
-    fraction = design.summed_score / np.maximum(design.max_score, 1.0)
-    start = np.clip((fraction - 0.5) * 4.0, -bound, bound)
-
-    def block(rows: slice) -> None:
-        theta[rows], se[rows] = _newton_theta(params, x[rows], start[rows], prior=None, bound=bound)
-
-    run_blocks(block, x.shape[0], chunk_size, workers=None)
     theta[extreme] = np.where(low[extreme], -bound, bound)
     if extreme.any():
         ext_rows = np.flatnonzero(extreme)

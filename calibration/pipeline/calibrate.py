@@ -26,6 +26,7 @@ from calibration.dif.irt import DifOutcome
 from calibration.errors import CalibrationInputError
 from calibration.estimation import MultiGroupFit
 from calibration.io import ResponseData
+from calibration.irt.likelihood import single_threaded_blas
 from calibration.pipeline.build import CalibrationRun, Findings, build_bundle
 from calibration.pipeline.dif import SINGLE_GROUP_ANCHORS, DifStage, ProgressCallback, run_dif_stage
 from calibration.pipeline.fits import quiet_fit
@@ -55,8 +56,23 @@ def calibrate_data(
     overrides: Sequence[PolicyOverride] = (),
     progress: ProgressCallback | None = None,
 ) -> CalibrationOutcome:
-    """Calibrate a response table (one or several groups) and build the unpublished bundle."""
-    settings = settings or PipelineSettings()
+    """Calibrate a response table (one or several groups) and build the unpublished bundle.
+
+    BLAS runs single-threaded throughout: the large products are split into row blocks on
+    equitheta's own threads, and BLAS threads on the small rest only spin.
+    """
+    with single_threaded_blas():
+        return _calibrate(data, name, settings or PipelineSettings(), reference_group, overrides, progress)
+
+
+def _calibrate(  # noqa: PLR0913 - calibrate_data's arguments, passed on
+    data: ResponseData,
+    name: str,
+    settings: PipelineSettings,
+    reference_group: str | None,
+    overrides: Sequence[PolicyOverride],
+    progress: ProgressCallback | None,
+) -> CalibrationOutcome:
     prepared = prepare_data(data, settings=settings, reference_group=reference_group, overrides=overrides)
     notes = list(prepared.notes)
     policy = PolicyTable(prepared.n_items, prepared.n_groups)

@@ -19,7 +19,7 @@ from calibration.bundle.schema import (
 from calibration.dif.anchored_lr import ItemGroupTest
 from calibration.dif.irt import DifOutcome, run_irt_dif
 from calibration.dif.logistic import logistic_dif
-from calibration.dif.observed import ObservedScreening, matching_scores, screen_observed
+from calibration.dif.observed import MatchingSet, ObservedScreening, screen_observed
 from calibration.dif.settings import DifSettings
 from calibration.estimation import MultiGroupFit
 from calibration.io import finite_or_none
@@ -193,11 +193,10 @@ def _observed_rows(
         members = (group_index == 0) | (group_index == g)
         matching = np.zeros(x.shape[1], dtype=bool)
         matching[list(screening.matching_items[g])] = True
+        scores = MatchingSet(x[members], k, matching)
         for j in range(x.shape[1]):
-            items = matching.copy()
-            items[j] = True
-            score, enough = matching_scores(x[members], k, items)
-            y = x[members, j]
+            score, enough = scores.for_item(j)
+            y = scores.responses[:, j]
             ok = enough & ~np.isnan(y) & ~np.isnan(score)
             logistic = logistic_dif(y[ok], score[ok], group_index[members][ok] == g, int(k[j]))
             common = {

@@ -14,6 +14,7 @@ from collections.abc import Callable
 
 import numpy as np
 import pytest
+from scipy import optimize, stats
 
 from calibration.estimation import (
     EMSettings,
@@ -28,7 +29,7 @@ from calibration.estimation.latent import latent_score
 from calibration.estimation.layout import params_from_table, slot_table
 from calibration.estimation.mstep import item_gradient
 from calibration.irt.likelihood import build_design, log_likelihood_grid, normal_log_weights
-from calibration.irt.models import ItemParameters
+from calibration.irt.models import ItemParameters, category_probabilities
 from tests.helpers import simulate_responses
 
 
@@ -156,3 +157,30 @@ def test_held_item_information_equals_numerical_hessian(n_categories: int) -> No
     assert covariance is not None
     numerical = np.linalg.inv(numerical_information(fit.vector, fit.score))
     np.testing.assert_allclose(np.sqrt(np.diag(covariance)), np.sqrt(np.diag(numerical)), rtol=1e-4)
+
+    # The Newton maximum against scipy.optimize on the same likelihood written out here:
+    # sum over rows of log sum_q E_iq P_k(theta_q) w(theta_q), the held items' part E_iq fixed.
+    def log_likelihood(vec: np.ndarray) -> float:
+        total = 0.0
+        for h, group_rows in enumerate(held):
+            tables = fit.group_params(h, vec)
+            mean, sd = (0.0, 1.0) if h == 0 else (vec[-2], vec[-1])
+            if sd <= 0 or not np.all(np.diff(tables.intercepts[0]) < 0):
+                return -np.inf
+            w = stats.norm.pdf(points, mean, sd)
+            w /= w.sum()
+            prob = category_probabilities(tables, points)[0]
+            for k, e in enumerate(group_rows.by_category):
+                total += np.log(e @ (prob[k] * w)).sum()
+            total += np.log(group_rows.missing @ w).sum() + group_rows.constant
+        return total
+
+    best = optimize.minimize(
+        lambda v: -log_likelihood(v),
+        fit.vector + 0.05,
+        method="Nelder-Mead",
+        options={"xatol": 1e-9, "fatol": 1e-10, "maxiter": 20_000, "maxfev": 40_000},
+    )
+    assert fit.log_likelihood == pytest.approx(log_likelihood(fit.vector), abs=1e-8)
+    assert fit.log_likelihood >= -best.fun - 1e-7
+    np.testing.assert_allclose(fit.vector, best.x, atol=2e-4)
