@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import logging
 import threading
+import time
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -53,6 +54,10 @@ class StoreView:
     aliases: dict[str, dict[str, int]] = field(default_factory=dict)
 
 
+FEED_TRUST = 5.0
+"""Seconds an unpinned request may rely on the change feed alone before the view is re-read from the store."""
+
+
 class BundleRegistry:
     """Verified bundles and scorers shared by the routes, kept fresh by a background probe and the change feed."""
 
@@ -67,6 +72,8 @@ class BundleRegistry:
         self._stop = threading.Event()
         self._threads: list[threading.Thread] = []
         self.skipped_store_calls = 0  # requests answered from memory while the store was down
+        self._feed_since: float | None = None  # monotonic time the change feed last (re)subscribed
+        self._viewed: dict[str, float] = {}  # monotonic time each name's view was last read from the store
         self.reseeded: list[str] = []  # name@version written back to a store that had lost them
 
     # -- state --------------------------------------------------------------------------------------
@@ -86,6 +93,8 @@ class BundleRegistry:
         return self.degraded_reason is None
 
     def _mark(self, error: Exception | None) -> None:
+        if error is not None:
+            self._feed_since = None  # a store that failed a call: its change feed cannot be trusted
         if error is None:
             if self.degraded_reason is not None:
                 log_event(logging.INFO, "store-reachable")
@@ -158,6 +167,7 @@ class BundleRegistry:
         with self._lock:
             self._view.versions[name] = versions
             self._view.aliases[name] = aliases
+            self._viewed[name] = time.monotonic()
 
     def _reseed(self, name: str, versions: list[int], held: list[int]) -> list[int]:
         """Write back the verified versions the store no longer has (it restarted empty)."""
@@ -169,6 +179,10 @@ class BundleRegistry:
         return sorted(set(versions) | set(missing))
 
     # -- resolution ---------------------------------------------------------------------------------
+    def held(self, name: str, version: int) -> LoadedBundle | None:
+        """The version if this replica already holds it verified (no store call), else None."""
+        return self._loaded.get((name, version))
+
     def get(self, name: str, version: int) -> LoadedBundle:
         """One verified version (from memory when held, else from the store)."""
         return self._load(name, version)
@@ -180,6 +194,28 @@ class BundleRegistry:
         except StoreUnavailable:
             if name not in self._view.versions:
                 raise
+
+    def default_held(self, name: str) -> LoadedBundle | None:
+        """The default version from memory alone, when the change feed keeps the view current; else None.
+
+        With a live change feed (Redis) every publish and alias move reaches the view as an event, so
+        an unpinned request needs no store call; the view is still re-read at least every
+        ``FEED_TRUST`` seconds in case an event was lost. Stores without a feed always return None.
+        """
+        if self._feed_since is None or self.degraded_reason is not None:
+            return None
+        seen = self._viewed.get(name)
+        if seen is None or seen < self._feed_since or time.monotonic() - seen > FEED_TRUST:
+            return None
+        version = self._default_version(name)
+        return None if version is None else self.held(name, version)
+
+    def _default_version(self, name: str) -> int | None:
+        aliases = self._view.aliases.get(name, {})
+        if DEFAULT_ALIAS in aliases:
+            return aliases[DEFAULT_ALIAS]
+        versions = self._view.versions.get(name, [])
+        return versions[-1] if versions else None
 
     def default(self, name: str) -> LoadedBundle:
         """The version the ``production`` alias points at, else the newest."""
@@ -195,7 +231,8 @@ class BundleRegistry:
     def listing(self) -> dict[str, tuple[list[int], dict[str, int]]]:
         """Every bundle name with its versions and aliases."""
         try:
-            names = self._store(self.store.names)
+            # Names held here count too: a store that came back empty is re-seeded, not listed as empty.
+            names = sorted(set(self._store(self.store.names)) | {n for n, _ in self._loaded})
             for name in names:
                 self._store(self._refresh_view, name)
         except StoreUnavailable:
@@ -265,10 +302,13 @@ class BundleRegistry:
             try:
                 for event in self.store.events(self._stop):
                     if event is None:  # (re)subscribed: catch up on anything missed while disconnected
+                        subscribed = time.monotonic()
                         self.preload()
+                        self._feed_since = subscribed if self.degraded_reason is None else None
                     else:
                         self._on_event(event)
-                return  # a store without a change feed
+                self._feed_since = None
+                return  # a store without a change feed, or stopping
             except StoreUnavailable as exc:
                 self._mark(exc)
                 self._stop.wait(RETRY_FIRST)

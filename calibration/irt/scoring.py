@@ -130,6 +130,8 @@ def _gradient_and_information(
         # also minus the second derivative.
         with np.errstate(over="ignore"):
             p = 1.0 / (1.0 + np.exp(-(theta[:, None] * a + params.intercepts[:, 0])))
+        if answered.all():
+            return (codes - p) @ a, (p * (1.0 - p)) @ (a * a)
         gradient = np.where(answered, a * (codes - p), 0.0).sum(axis=1)
         information = np.where(answered, a * a * p * (1.0 - p), 0.0).sum(axis=1)
         return gradient, information
@@ -191,7 +193,11 @@ def _newton_theta(
     theta = np.clip(start.copy(), -bound, bound)
     active = np.ones(theta.shape[0], dtype=bool)
     prior_curvature = 0.0 if prior is None else 1.0 / prior.sd**2
-    curves = _gradient_and_information if params.max_categories == 2 else _answer_curves
+    dichotomous = params.max_categories == 2
+    curves = _gradient_and_information if dichotomous else _answer_curves
+    # Right/wrong items: the curvature of the last step is the expected information, so a row whose
+    # last step was below SE_REUSE_STEP keeps it for its SE (it changes by far less than 1e-6 there).
+    last_info = np.full(theta.shape[0], np.nan)
     for _ in range(max_iter):
         idx = np.flatnonzero(active)
         if idx.size == 0:
@@ -208,11 +214,20 @@ def _newton_theta(
         step = np.clip(gradient / np.maximum(curvature, 1e-12), -1.0, 1.0)
         theta[idx] = np.clip(theta[idx] + step, -bound, bound)
         active[idx] = np.abs(step) > tolerance
-    _, info = _gradient_and_information(params, codes, answered, theta)
-    info = info + prior_curvature
+        if dichotomous:
+            last_info[idx] = np.where(np.abs(step) < SE_REUSE_STEP, curvature, np.nan)
+    info = last_info
+    again = np.flatnonzero(~np.isfinite(info))
+    if again.size:
+        info[again] = _gradient_and_information(params, codes[again], answered[again], theta[again])[1]
+        info[again] += prior_curvature
     with np.errstate(divide="ignore"):
         se = np.where(info > 0, 1.0 / np.sqrt(info), np.inf)
     return theta, se
+
+
+SE_REUSE_STEP = 1e-7
+"""A right/wrong Newton step below this lets the row keep that step's information for its SE."""
 
 
 def _grid_mode(log_values: FloatArray, points: FloatArray) -> FloatArray:

@@ -2,6 +2,8 @@
 
 A route declares what it needs (``ReadScope``, ``DefaultBundle``, ``ScoreBatch`` ...) and receives it
 checked; a failed check raises a domain exception that ``service.errors`` turns into a problem document.
+Dependencies are coroutines that do no I/O on the event loop (no thread hand-off per request); a
+store read (a version not yet held, aliases without a live change feed) runs in the thread pool.
 """
 
 from __future__ import annotations
@@ -11,6 +13,7 @@ from typing import Annotated
 
 from fastapi import Body, Depends, Header, Request
 from fastapi import Path as PathParam
+from fastapi.concurrency import run_in_threadpool
 
 from calibration.bundle.schema import ALIAS_PATTERN, NAME_PATTERN
 from service.api.docs import example
@@ -28,22 +31,22 @@ AuthorizationHeader = Annotated[str | None, Header(description="Bearer <API key>
 ApiKeyHeader = Annotated[str | None, Header(description="the API key (alternative header)")]
 
 
-def settings_dep(request: Request) -> Settings:
+async def settings_dep(request: Request) -> Settings:
     """The settings the app was created with."""
     return request.app.state.settings  # type: ignore[no-any-return]
 
 
-def registry_dep(request: Request) -> BundleRegistry:
+async def registry_dep(request: Request) -> BundleRegistry:
     """The registry of verified bundles (started by the lifespan)."""
     return request.app.state.registry  # type: ignore[no-any-return]
 
 
-def metrics_dep(request: Request) -> Metrics:
+async def metrics_dep(request: Request) -> Metrics:
     """The app's metrics."""
     return request.app.state.metrics  # type: ignore[no-any-return]
 
 
-def principal_dep(
+async def principal_dep(
     request: Request, authorization: AuthorizationHeader = None, x_api_key: ApiKeyHeader = None
 ) -> Principal:
     """The caller named by the API key (or the open-access principal when no keys are configured)."""
@@ -58,7 +61,7 @@ PrincipalDep = Annotated[Principal, Depends(principal_dep)]
 
 
 def _needs(scope: str) -> Callable[[Principal], Principal]:
-    def check(principal: PrincipalDep) -> Principal:
+    async def check(principal: PrincipalDep) -> Principal:
         KeyRing.require(principal, scope)
         return principal
 
@@ -70,25 +73,35 @@ ReadScope = Annotated[Principal, Depends(_needs("read"))]
 PublishScope = Annotated[Principal, Depends(_needs("publish"))]
 
 
-def metrics_access(
+async def metrics_access(
     request: Request, settings: SettingsDep, authorization: AuthorizationHeader = None, x_api_key: ApiKeyHeader = None
 ) -> None:
     """Open by default like /healthz and /readyz (scrapers rarely carry keys); ``metrics_scope`` closes it."""
     if settings.metrics_scope is not None:
-        KeyRing.require(principal_dep(request, authorization, x_api_key), settings.metrics_scope)
+        KeyRing.require(await principal_dep(request, authorization, x_api_key), settings.metrics_scope)
 
 
 MetricsAccess = Annotated[None, Depends(metrics_access)]
 
 
-def default_bundle(name: NameParam, registry: RegistryDep) -> LoadedBundle:
-    """The version the ``production`` alias points at, else the newest version (store errors map to problems)."""
-    return registry.default(name)
+async def default_bundle(name: NameParam, registry: RegistryDep) -> LoadedBundle:
+    """The version the ``production`` alias points at, else the newest version (store errors map to problems).
+
+    Answered from memory while the store's change feed keeps the view current; otherwise the store
+    is read in the thread pool.
+    """
+    held = registry.default_held(name)
+    if held is not None:
+        return held
+    return await run_in_threadpool(registry.default, name)
 
 
-def pinned_bundle(name: NameParam, version: VersionParam, registry: RegistryDep) -> LoadedBundle:
-    """One published version, verified."""
-    return registry.get(name, version)
+async def pinned_bundle(name: NameParam, version: VersionParam, registry: RegistryDep) -> LoadedBundle:
+    """One published version, verified (a version already held is answered without a thread hand-off)."""
+    held = registry.held(name, version)
+    if held is not None:
+        return held
+    return await run_in_threadpool(registry.get, name, version)
 
 
 DefaultBundle = Annotated[LoadedBundle, Depends(default_bundle)]
@@ -101,7 +114,7 @@ ScoreBody = Annotated[
 ]
 
 
-def score_batch(body: ScoreBody, settings: SettingsDep) -> ScoreRequest:
+async def score_batch(body: ScoreBody, settings: SettingsDep) -> ScoreRequest:
     """The score request, refused (413) when it holds more vectors than ``max_vectors``."""
     if len(body.responses) > settings.max_vectors:
         raise PayloadTooLarge(

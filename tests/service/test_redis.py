@@ -13,6 +13,7 @@ import pytest
 from calibration.bundle import BundleNotFound, VersionConflict, seal
 from calibration.bundle.redis_store import RedisStore, StoreUnavailable
 from service.main import create_app
+from service.registry import FEED_TRUST
 from service.settings import Settings
 from tests.helpers import auth, example_bundle, example_keys, live_server, poll
 
@@ -68,8 +69,13 @@ def test_two_replicas_share_one_registry(shared_redis: tuple[str, str]) -> None:
         httpx.put(
             f"{first}/v1/bundles/pantry-checkout/aliases/production", json={"version": 2}, headers=auth("publisher")
         )
-        scored = httpx.post(f"{second}/v1/bundles/pantry-checkout/scores", json=SCORE, headers=auth("scorer"))
-        assert scored.json()["bundle"]["version"] == 2
+
+        # The second replica learns of the move from the change feed (milliseconds; FEED_TRUST at most).
+        def second_scores_with_two() -> bool:
+            scored = httpx.post(f"{second}/v1/bundles/pantry-checkout/scores", json=SCORE, headers=auth("scorer"))
+            return scored.json()["bundle"]["version"] == 2
+
+        assert poll(second_scores_with_two, timeout=FEED_TRUST + 1)
         listing = httpx.get(f"{second}/v1/bundles", headers=auth("reader")).json()
         assert listing == {"bundles": [{"name": "pantry-checkout", "versions": [1, 2], "aliases": {"production": 2}}]}
 
@@ -178,3 +184,30 @@ def test_cli_publishes_to_redis_and_the_service_scores_it(
             json={"responses": [{"id": "x", "answers": {"NUM01": 1, "DIG01": 2}}]},
         )
     assert reply.status_code == 200 and reply.json()["bundle"]["version"] == 1
+
+
+def test_unpinned_requests_are_answered_from_memory_while_the_feed_is_live(shared_redis: tuple[str, str]) -> None:
+    # With the change feed subscribed, the default route makes no store call; an alias moved by
+    # another client straight in Redis still reaches it through the feed.
+    url, prefix = shared_redis
+    document = json.loads(example_bundle().model_dump_json())
+    app = create_app(_settings(url, prefix))
+    with live_server(app) as server:
+        httpx.put(f"{server}/v1/bundles/pantry-checkout/versions/1", json=document, headers=auth("publisher"))
+        document["provenance"]["notes"] = ["second calibration"]
+        document["hash"] = ""
+        httpx.post(f"{server}/v1/bundles/pantry-checkout/versions", json=document, headers=auth("publisher"))
+        registry = app.state.registry
+        assert poll(lambda: registry.default_held("pantry-checkout") is not None)
+        calls = []
+        original = registry.store.aliases
+        registry.store.aliases = lambda name: calls.append(name) or original(name)  # count store reads
+        answer = httpx.post(f"{server}/v1/bundles/pantry-checkout/scores", json=SCORE, headers=auth("scorer"))
+        assert answer.json()["bundle"]["version"] == 2 and calls == []
+        RedisStore(url, prefix=prefix).set_alias("pantry-checkout", "production", 1)  # another client
+
+        def moved() -> bool:
+            scored = httpx.post(f"{server}/v1/bundles/pantry-checkout/scores", json=SCORE, headers=auth("scorer"))
+            return scored.json()["bundle"]["version"] == 1
+
+        assert poll(moved, timeout=FEED_TRUST + 1)

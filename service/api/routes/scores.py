@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import orjson
 from fastapi import APIRouter
+from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
 from service.api.deps import DefaultBundle, MetricsDep, PinnedBundle, ScoreBatch, ScoreScope
@@ -28,13 +29,23 @@ def _scored(loaded: LoadedBundle, body: ScoreRequest, metrics: Metrics) -> Respo
     return Response(orjson.dumps(document), media_type="application/json")
 
 
+INLINE_VECTORS = 16
+"""Batches up to this size are scored on the event loop (well under a millisecond); larger ones in a thread."""
+
+
+async def _answer(loaded: LoadedBundle, body: ScoreRequest, metrics: Metrics) -> Response:
+    if len(body.responses) <= INLINE_VECTORS:
+        return _scored(loaded, body, metrics)
+    return await run_in_threadpool(_scored, loaded, body, metrics)
+
+
 @router.post("/v1/bundles/{name}/scores", response_model=ScoreResponse, responses=_ANSWERS)
-def score_default(_: ScoreScope, body: ScoreBatch, loaded: DefaultBundle, metrics: MetricsDep) -> Response:
+async def score_default(_: ScoreScope, body: ScoreBatch, loaded: DefaultBundle, metrics: MetricsDep) -> Response:
     """Score with the version the ``production`` alias points at, else the newest version."""
-    return _scored(loaded, body, metrics)
+    return await _answer(loaded, body, metrics)
 
 
 @router.post("/v1/bundles/{name}/versions/{version}/scores", response_model=ScoreResponse, responses=_ANSWERS)
-def score_version(_: ScoreScope, body: ScoreBatch, loaded: PinnedBundle, metrics: MetricsDep) -> Response:
+async def score_version(_: ScoreScope, body: ScoreBatch, loaded: PinnedBundle, metrics: MetricsDep) -> Response:
     """Score with one pinned version."""
-    return _scored(loaded, body, metrics)
+    return await _answer(loaded, body, metrics)
