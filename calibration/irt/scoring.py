@@ -146,8 +146,19 @@ def _gradient_and_information(
     return gradient, information
 
 
+def _answer_bounds(params: ItemParameters, codes: IntArray) -> tuple[FloatArray, FloatArray]:
+    """Intercepts of each answer's two boundaries, ``c_x`` and ``c_{x+1}`` (``+inf`` below category 1,
+    ``-inf`` above the top): (n, J) each, built once per batch."""
+    padded = np.full((params.n_items, params.max_categories + 1), -np.inf)
+    padded[:, 0] = np.inf
+    for j, k in enumerate(params.n_categories):
+        padded[j, 1:k] = params.intercepts[j, : k - 1]
+    items = np.arange(params.n_items)
+    return padded[items, codes], padded[items, codes + 1]
+
+
 def _answer_curves(
-    params: ItemParameters, codes: IntArray, answered: np.ndarray, theta: FloatArray
+    params: ItemParameters, lower: FloatArray, upper: FloatArray, answered: np.ndarray, theta: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
     """d log P(answer) / d theta and minus its second derivative, summed over the answered items.
 
@@ -155,12 +166,6 @@ def _answer_curves(
     ``P*_0 = 1`` and ``P*_K = 0``: (n, J) arrays, not (n, J, K).
     """
     a = params.slopes
-    padded = np.full((params.n_items, params.max_categories + 1), -np.inf)
-    padded[:, 0] = np.inf
-    for j, k in enumerate(params.n_categories):
-        padded[j, 1:k] = params.intercepts[j, : k - 1]
-    items = np.arange(params.n_items)
-    lower, upper = padded[items, codes], padded[items, codes + 1]  # boundaries x and x + 1 per cell
     eta = theta[:, None] * a
     with np.errstate(over="ignore", invalid="ignore"):
         star_lo = 1.0 / (1.0 + np.exp(-(eta + lower)))
@@ -173,6 +178,31 @@ def _answer_curves(
     return gradient, np.where(answered, first * first - second, 0.0).sum(axis=1)
 
 
+def _expected_information(params: ItemParameters, answered: np.ndarray, theta: FloatArray) -> FloatArray:
+    """Test information ``sum_j sum_k (dP_jk/dtheta)^2 / P_jk`` over the answered items, category by category.
+
+    (n, J) arrays per boundary, not (J, K, n): ``P_k = P*_k - P*_{k+1}``, ``P'_k = a (W_k - W_{k+1})``.
+    """
+    a = params.slopes
+    eta = theta[:, None] * a
+    total = np.zeros_like(eta)
+    upper_star, upper_w = np.ones_like(eta), np.zeros_like(eta)  # boundary 0: P* = 1, W = 0
+    for m in range(1, params.max_categories + 1):
+        if m < params.max_categories:
+            c = params.intercepts[:, m - 1]
+            with np.errstate(over="ignore"):
+                star = np.where(np.isnan(c), 0.0, 1.0 / (1.0 + np.exp(-(eta + np.nan_to_num(c)))))
+        else:
+            star = np.zeros_like(eta)
+        w = star * (1.0 - star)
+        prob = upper_star - star
+        deriv = a * (upper_w - w)
+        positive = prob > PROBABILITY_FLOOR
+        total += np.where(positive, deriv * deriv / np.where(positive, prob, 1.0), 0.0)
+        upper_star, upper_w = star, w
+    return np.where(answered, total, 0.0).sum(axis=1)
+
+
 def _newton_theta(
     params: ItemParameters,
     x: FloatArray,
@@ -181,12 +211,13 @@ def _newton_theta(
     prior: NormalPrior | None,
     bound: float,
     max_iter: int = 50,
-    tolerance: float = 1e-8,
+    tolerance: float = 1e-6,
 ) -> tuple[FloatArray, FloatArray]:
     """Newton-Raphson for the mode of the (penalised) likelihood, vectorised over persons.
 
-    The steps use the observed curvature (the expected information where that is not positive);
-    the SE is from the expected information at the mode.
+    The steps use the observed curvature (the expected information where that is not positive), so
+    convergence is quadratic: a row stops once its step is below ``tolerance`` (1e-6), which leaves
+    it within about 1e-12 of the mode. The SE is from the expected information at the mode.
     """
     answered = ~np.isnan(x)
     codes = np.where(answered, x, 0).astype(np.int64)
@@ -194,7 +225,7 @@ def _newton_theta(
     active = np.ones(theta.shape[0], dtype=bool)
     prior_curvature = 0.0 if prior is None else 1.0 / prior.sd**2
     dichotomous = params.max_categories == 2
-    curves = _gradient_and_information if dichotomous else _answer_curves
+    lower, upper = (None, None) if dichotomous else _answer_bounds(params, codes)
     # Right/wrong items: the curvature of the last step is the expected information, so a row whose
     # last step was below SE_REUSE_STEP keeps it for its SE (it changes by far less than 1e-6 there).
     last_info = np.full(theta.shape[0], np.nan)
@@ -202,7 +233,10 @@ def _newton_theta(
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        gradient, curvature = curves(params, codes[idx], answered[idx], theta[idx])
+        if lower is None or upper is None:
+            gradient, curvature = _gradient_and_information(params, codes[idx], answered[idx], theta[idx])
+        else:
+            gradient, curvature = _answer_curves(params, lower[idx], upper[idx], answered[idx], theta[idx])
         if prior is not None:
             gradient = gradient - (theta[idx] - prior.mean) / prior.sd**2
         curvature = curvature + prior_curvature
@@ -219,8 +253,7 @@ def _newton_theta(
     info = last_info
     again = np.flatnonzero(~np.isfinite(info))
     if again.size:
-        info[again] = _gradient_and_information(params, codes[again], answered[again], theta[again])[1]
-        info[again] += prior_curvature
+        info[again] = _expected_information(params, answered[again], theta[again]) + prior_curvature
     with np.errstate(divide="ignore"):
         se = np.where(info > 0, 1.0 / np.sqrt(info), np.inf)
     return theta, se
