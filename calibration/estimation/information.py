@@ -52,6 +52,8 @@ from calibration.irt.models import (
 POSTERIOR_FLOOR = 1e-15
 """Grid points where no respondent of a block has posterior weight above this are left out of its Gram
 tables (their share of any entry is below 1e-15 of a respondent's weight)."""
+GRAM_SPANS = 8
+"""Spans of rows the Gram pass hands to the threads (each sums its blocks as it goes)."""
 GRAM_BLOCK_ROWS = 2_048
 """Rows per block of the Gram pass: few enough that a block's posteriors share a narrow band of the grid."""
 
@@ -178,8 +180,7 @@ def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, 
             sums = part if not sums else tuple(a + b for a, b in zip(sums, part, strict=True))
         return sums
 
-    n_spans = 8
-    span_rows = max(GRAM_BLOCK_ROWS, -(-design.n_persons // n_spans))
+    span_rows = max(GRAM_BLOCK_ROWS, -(-design.n_persons // GRAM_SPANS))
     parts = [p for p in run_blocks(span, design.n_persons, span_rows, workers=None) if p]
     gram_upper = sum(p[0] for p in parts)
     cross = sum(p[1] for p in parts)
