@@ -43,7 +43,7 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
     ]
     results = [
         {
-            "id": vector.id,
+            "id": vector["id"],
             "group": g,
             "theta": theta,
             "se": se,
@@ -83,7 +83,7 @@ def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
     x = np.full((len(request.responses), len(scorer.item_ids)), np.nan)
     layouts: dict[tuple[str, ...], list[int]] = {}
     for i, vector in enumerate(request.responses):
-        layouts.setdefault(tuple(vector.answers), []).append(i)
+        layouts.setdefault(tuple(vector["answers"]), []).append(i)
     problems: list[tuple[int, ProblemError]] = []
     for keys, members in layouts.items():
         if not keys:
@@ -93,7 +93,7 @@ def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
             problems.append(_unknown_item(loaded, request, members[0], keys[int(np.flatnonzero(cols < 0)[0])]))
             continue
         values = np.fromiter(
-            chain.from_iterable(request.responses[i].answers.values() for i in members),
+            chain.from_iterable(request.responses[i]["answers"].values() for i in members),
             dtype=np.int64,
             count=len(members) * len(keys),
         ).reshape(len(members), len(keys))
@@ -105,7 +105,7 @@ def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
                 (
                     i,
                     AnswerOutOfRange(
-                        f"responses[{i}] (id {request.responses[i].id!r}), item {item!r}: answer {value} is "
+                        f"responses[{i}] (id {request.responses[i]['id']!r}), item {item!r}: answer {value} is "
                         f"outside the item's categories 0..{limits[cols[c]] - 1}",
                         field=f"responses.{i}.answers.{item}",
                     ),
@@ -119,14 +119,15 @@ def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
 
 
 def _unknown_item(loaded: LoadedBundle, request: ScoreRequest, i: int, item: str) -> tuple[int, ProblemError]:
-    message = f"responses[{i}] (id {request.responses[i].id!r}): item {item!r} is not in bundle {loaded.bundle.label}"
+    respondent = request.responses[i]["id"]
+    message = f"responses[{i}] (id {respondent!r}): item {item!r} is not in bundle {loaded.bundle.label}"
     return i, UnknownItem(message, field=f"responses.{i}.answers.{item}")
 
 
 def _resolve_groups(loaded: LoadedBundle, request: ScoreRequest) -> tuple[str, ...]:
     scorer = loaded.scorer
     try:
-        return scorer.resolve_groups([v.group for v in request.responses], len(request.responses))
+        return scorer.resolve_groups([v.get("group") for v in request.responses], len(request.responses))
     except UnknownGroup as exc:
         vector = request.responses[exc.index]
         known = ", ".join(sorted(scorer.plans))
@@ -136,7 +137,8 @@ def _resolve_groups(loaded: LoadedBundle, request: ScoreRequest) -> tuple[str, .
             else f"group {exc.group!r} is not in bundle {loaded.bundle.label}"
         )
         raise UnknownGroupProblem(
-            f"responses[{exc.index}] (id {vector.id!r}): {what} (groups: {known})", field=f"responses.{exc.index}.group"
+            f"responses[{exc.index}] (id {vector['id']!r}): {what} (groups: {known})",
+            field=f"responses.{exc.index}.group",
         ) from exc
 
 
