@@ -74,6 +74,7 @@ class BundleRegistry:
         self.skipped_store_calls = 0  # requests answered from memory while the store was down
         self._feed_since: float | None = None  # monotonic time the change feed last (re)subscribed
         self._viewed: dict[str, float] = {}  # monotonic time each name's view was last read from the store
+        self._tokens: dict[str, Any] = {}  # each name's change token when its view was read
         self.reseeded: list[str] = []  # name@version written back to a store that had lost them
 
     # -- state --------------------------------------------------------------------------------------
@@ -152,7 +153,14 @@ class BundleRegistry:
         except StoreUnavailable as exc:
             self._mark(exc)
 
+    def _token(self, name: str) -> Any:
+        try:
+            return self.store.change_token(name)
+        except (OSError, BundleError, StoreUnavailable):
+            return None
+
     def _refresh_view(self, name: str) -> None:
+        token = self._token(name)  # read before the view: a write during the refresh shows next time
         versions = self.store.versions(name)
         held = sorted(v for n, v in self._loaded if n == name)
         if any(v not in versions for v in held):
@@ -168,6 +176,7 @@ class BundleRegistry:
             self._view.versions[name] = versions
             self._view.aliases[name] = aliases
             self._viewed[name] = time.monotonic()
+            self._tokens[name] = token
 
     def _reseed(self, name: str, versions: list[int], held: list[int]) -> list[int]:
         """Write back the verified versions the store no longer has (it restarted empty)."""
@@ -196,17 +205,25 @@ class BundleRegistry:
                 raise
 
     def default_held(self, name: str) -> LoadedBundle | None:
-        """The default version from memory alone, when the change feed keeps the view current; else None.
+        """The default version from memory alone, when the view is known to be current; else None.
 
-        With a live change feed (Redis) every publish and alias move reaches the view as an event, so
-        an unpinned request needs no store call; the view is still re-read at least every
-        ``FEED_TRUST`` seconds in case an event was lost. Stores without a feed always return None.
+        With a live change feed (Redis) every publish and alias move reaches the view as an event; a
+        store with a change token (the directory store: two stats) says whether anything was written
+        since the view was read. Either way an unpinned request then needs no store read, and the view
+        is still re-read at least every ``FEED_TRUST`` seconds.
         """
-        if self._feed_since is None or self.degraded_reason is not None:
+        if self.degraded_reason is not None:
             return None
         seen = self._viewed.get(name)
-        if seen is None or seen < self._feed_since or time.monotonic() - seen > FEED_TRUST:
+        if seen is None or time.monotonic() - seen > FEED_TRUST:
             return None
+        if self._feed_since is not None:
+            if seen < self._feed_since:
+                return None
+        else:
+            token = self._token(name)
+            if token is None or token != self._tokens.get(name):
+                return None
         version = self._default_version(name)
         return None if version is None else self.held(name, version)
 

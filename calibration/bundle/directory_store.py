@@ -104,6 +104,24 @@ class DirectoryStore:
             p.name for p in self.root.iterdir() if p.is_dir() and valid_name(p.name) and self.versions(p.name)
         )
 
+    def change_token(self, name: str) -> tuple[int, tuple[int, int, int] | None] | None:
+        """A value that changes whenever a version of ``name`` is published or an alias moves (two stats).
+
+        Publishing renames a version file into the name's directory and moving an alias replaces
+        ``aliases.json``, so the directory's modification time and the alias file's inode, time and
+        size together change with every write. None when the name has no directory.
+        """
+        try:
+            directory = self._dir(name).stat()
+        except OSError:
+            return None
+        try:
+            alias = (self._dir(name) / "aliases.json").stat()
+            alias_key: tuple[int, int, int] | None = (alias.st_ino, alias.st_mtime_ns, alias.st_size)
+        except OSError:
+            alias_key = None
+        return directory.st_mtime_ns, alias_key
+
     def versions(self, name: str) -> list[int]:
         """Published versions of ``name``, ascending."""
         directory = self._dir(name)

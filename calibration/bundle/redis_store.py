@@ -127,6 +127,10 @@ class RedisStore:
         password = self.client.connection_pool.connection_kwargs.get("password")
         return text.replace(password, "***") if password else text
 
+    def change_token(self, name: str) -> None:  # noqa: ARG002 - the contract's signature
+        """None: Redis replicas learn of changes through the change feed (:meth:`events`)."""
+        return None
+
     def ping(self) -> bool:
         """Whether Redis answers (raises nothing; False when it does not)."""
         try:

@@ -9,6 +9,8 @@ Contract
   atomic write itself, so of concurrent identical writers exactly one sees True.
 - A stored version never changes and is never half-visible.
 - ``ping()`` says whether the store answers (without raising).
+- ``change_token(name)`` is a cheap value that changes with every publish or alias move of
+  ``name`` (the directory store: two stats), or None for a store that relies on its change feed.
 - ``events(stop)`` is the change feed: ``None`` each time it (re)subscribes, then one dict
   per published version or alias move, until ``stop`` is set; a store without a feed
   yields nothing. A lost connection raises :class:`StoreUnavailable`.
@@ -71,6 +73,9 @@ class BundleStore(Protocol):
 
     def ping(self) -> bool:
         """Whether the store answers."""
+
+    def change_token(self, name: str) -> Any:
+        """A cheap value that changes with every write to ``name`` (None: the store has none; use the feed)."""
 
     def events(self, stop: threading.Event) -> Iterator[dict[str, Any] | None]:
         """Version and alias changes as they happen, until ``stop`` is set."""

@@ -5,18 +5,20 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import httpx
 import numpy as np
 import pandas as pd
 import pytest
 from fastapi.testclient import TestClient
 from pydantic import ValidationError
 
+from calibration.bundle import Bundle, DirectoryStore
 from calibration.bundle.scorer import BundleScorer
 from calibration.cli import main as cli_main
 from service.main import create_app
 from service.schemas import ScoreResponse
 from service.settings import Settings
-from tests.helpers import auth, example_bundle, metric_value
+from tests.helpers import auth, example_bundle, live_server, metric_value
 
 SCORE = {"responses": [{"id": "a", "group": "tablet", "answers": {"T1": 1, "T2": 0, "T3": 1, "T5": 1}}]}
 
@@ -232,3 +234,29 @@ def test_settings_fail_at_start_up_naming_the_variable(tmp_path: Path, monkeypat
         Settings(store=str(tmp_path), api_keys_file=tmp_path / "nope.json")
     with pytest.raises(ValueError, match="SHA-256 of the key, not the key itself"):
         create_app(Settings(store=str(tmp_path), api_keys="ops:read:plaintext-key"))
+
+
+def test_directory_store_changes_reach_the_default_route_and_no_change_costs_no_read(
+    keyed_settings: Settings, example_store: Path
+) -> None:
+    # The directory store's change token (two stats) stands in for Redis's change feed: an alias
+    # moved by another client straight in the store is used by the very next request, and while
+    # nothing was written the default route reads no alias file.
+    app = create_app(keyed_settings)
+    score = SCORE
+    with live_server(app) as server:
+        url = f"{server}/v1/bundles/pantry-checkout/scores"
+        assert httpx.post(url, json=score, headers=auth("scorer")).json()["bundle"]["version"] == 1
+        registry = app.state.registry
+        reads: list[str] = []
+        original = registry.store.aliases
+        registry.store.aliases = lambda name: reads.append(name) or original(name)  # counts, then reads
+        again = httpx.post(url, json=score, headers=auth("scorer"))
+        assert again.json()["bundle"]["version"] == 1 and reads == []
+        other = DirectoryStore(example_store)
+        document = json.loads(example_bundle().model_dump_json())
+        document["provenance"]["notes"] = ["second calibration"]  # other content: a new version
+        second = other.publish(Bundle.model_validate({**document, "hash": ""}))
+        other.set_alias("pantry-checkout", "production", second.version)
+        moved = httpx.post(url, json=score, headers=auth("scorer"))
+        assert moved.json()["bundle"]["version"] == second.version and reads == ["pantry-checkout"]
