@@ -185,9 +185,10 @@ def iter_tables(
         import pyarrow.parquet as pq
 
         try:
-            batches = pq.ParquetFile(path).iter_batches(
-                batch_size=batch_rows, columns=list(include) if include else None
-            )
+            parquet = pq.ParquetFile(path)
+            stored = {str(n).strip(): str(n) for n in parquet.schema_arrow.names}  # names as stored (untrimmed)
+            columns = [stored[c] for c in include] if include else None
+            batches = parquet.iter_batches(batch_size=batch_rows, columns=columns)
             for batch in batches:
                 yield _parquet_table(batch, first_row)
                 first_row += batch.num_rows

@@ -181,3 +181,13 @@ def test_csv_text_round_trips_through_the_csv_module() -> None:
     body = csv_line(["id", "note"]) + csv_rows([csv_text(texts), csv_text(["x"] * len(texts))])
     parsed = list(csv.reader(io.StringIO(body.decode())))
     assert parsed == [["id", "note"], *[[t, "x"] for t in texts]]
+
+
+def test_parquet_with_untrimmed_column_names_reads_for_scoring(tmp_path: Path) -> None:
+    # Names are trimmed for matching; the batch reader must still ask Parquet for the stored names.
+    frame = pd.DataFrame({" id ": ["a", "b"], "Q1 ": [1, 0], "Q2": [0.0, np.nan]})
+    path = tmp_path / "padded.parquet"
+    frame.to_parquet(path)
+    data = read_for_scoring(path, item_categories={"Q1": 2, "Q2": 2})
+    assert data.ids == ("a", "b")
+    np.testing.assert_array_equal(data.responses, [[1.0, 0.0], [0.0, np.nan]])
