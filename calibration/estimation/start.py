@@ -20,6 +20,8 @@ def starting_values(responses: FloatArray, n_categories: IntArray, models: tuple
     x = np.asarray(responses, dtype=np.float64)
     n_items = x.shape[1]
     k = np.asarray(n_categories, dtype=np.int64)
+    if n_items > 1 and x.shape[0] > 2 and not np.isnan(x).any():
+        return _complete_data_values(x, k, models)
     answered = ~np.isnan(x)
     row_total = np.zeros(x.shape[0])
     for j in range(n_items):  # column by column: no scaled copy of the whole table
@@ -41,6 +43,49 @@ def starting_values(responses: FloatArray, n_categories: IntArray, models: tuple
         p = np.clip(p, 0.005, 0.995)
         c_k = np.log(p / (1 - p)) * math.sqrt(1 + (slopes[j] / 1.7) ** 2)
         # Enforce strict ordering even where categories are sparse.
+        for m in range(1, c_k.size):
+            c_k[m] = min(c_k[m], c_k[m - 1] - 0.05)
+        intercepts[j, : k[j] - 1] = c_k
+    return ItemParameters(slopes=slopes, intercepts=intercepts, n_categories=k, models=models)
+
+
+START_BLOCK_ROWS = 65_536
+"""Rows per block when the complete-data statistics are summed (no full-size temporaries)."""
+
+
+def _complete_data_values(x: FloatArray, k: IntArray, models: tuple[str, ...]) -> ItemParameters:
+    """The same starting values for a table without missing answers, from one covariance matrix.
+
+    With every item answered, the rest score of item j is ``(T - s_j) / (J - 1)`` for the total ``T``
+    of the scaled items ``s = x / (K - 1)``, so every item-rest correlation follows from the
+    covariance matrix ``S`` of the scaled items: ``cov(s_j, T - s_j) = sum_l S_jl - S_jj`` and
+    ``var(T - s_j) = sum S - 2 sum_l S_jl + S_jj``. Summed in row blocks, centred on the means.
+    """
+    n_rows, n_items = x.shape
+    scale = 1.0 / (k - 1)
+    means = x.mean(axis=0) * scale
+    covariance = np.zeros((n_items, n_items))
+    k_max = int(k.max())
+    at_least = np.zeros((k_max - 1, n_items))  # counts of x >= c, c = 1 .. K_max - 1
+    for start in range(0, n_rows, START_BLOCK_ROWS):
+        block = x[start : start + START_BLOCK_ROWS]
+        centred = block * scale - means
+        covariance += centred.T @ centred
+        for c in range(1, k_max):
+            at_least[c - 1] += (block >= c).sum(axis=0)
+    with_item = covariance.sum(axis=1)
+    item_var = np.diag(covariance)
+    cov_rest = with_item - item_var
+    rest_var = covariance.sum() - 2.0 * with_item + item_var
+    defined = (item_var > 0) & (rest_var > 0)
+    r = np.where(defined, cov_rest / np.sqrt(np.where(defined, item_var * rest_var, 1.0)), 0.5)
+    r = np.clip(r, 0.15, 0.9)
+    slopes = np.clip(1.7 * r / np.sqrt(1 - r * r), 0.3, 2.5)
+    intercepts = np.full((n_items, k_max - 1), np.nan)
+    p_all = np.clip(at_least.T / n_rows, 0.005, 0.995)
+    for j in range(n_items):
+        p = p_all[j, : k[j] - 1]
+        c_k = np.log(p / (1 - p)) * math.sqrt(1 + (slopes[j] / 1.7) ** 2)
         for m in range(1, c_k.size):
             c_k[m] = min(c_k[m], c_k[m - 1] - 0.05)
         intercepts[j, : k[j] - 1] = c_k

@@ -202,3 +202,23 @@ def test_large_recovery_study() -> None:
     r = run(replications=10, n=5000)
     assert abs(r["slope_bias"]) < 0.02 and abs(r["threshold_bias"]) < 0.02
     assert 0.8 < r["slope_sd_over_se"] < 1.25
+
+
+@pytest.mark.filterwarnings("ignore:Mean of empty slice", "ignore:invalid value encountered")  # the unanswered item
+def test_starting_values_from_one_covariance_equal_the_per_item_loop() -> None:
+    # Two routes in the library: a table with no missing answer takes every item-rest correlation from
+    # one covariance matrix, any other table a loop over items. An extra item nobody answered changes
+    # no rest score, so appending one sends the same answers down the loop: both must agree.
+    from calibration.estimation.start import starting_values
+
+    rng = np.random.default_rng(31)
+    a = rng.uniform(0.6, 2.0, 10)
+    b = np.full((10, 3), np.nan)
+    b[:6, 0] = rng.normal(0, 1, 6)
+    b[6:] = np.sort(rng.normal(0, 1, (4, 3)), axis=1)
+    x = simulate_responses(a, b, rng.normal(size=3000), rng).astype(float)
+    k = np.array([2] * 6 + [4] * 4)
+    fast = starting_values(x, k, ())
+    padded = starting_values(np.column_stack([x, np.full(3000, np.nan)]), np.r_[k, 2], ())
+    np.testing.assert_allclose(fast.slopes, padded.slopes[:10], rtol=1e-12)
+    np.testing.assert_allclose(fast.intercepts, padded.intercepts[:10, :3], rtol=1e-12)
