@@ -144,7 +144,7 @@ def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, 
 
     def block(rows: slice) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, FloatArray]:
         taken = order[rows]
-        part = design.take(taken)
+        part = design.rows(taken)
         post, _ = exp_by_rows(log_likelihood_grid(params, points, part, tables=tables, log_prior=log_prior))
         post /= post.sum(axis=1, keepdims=True)
         n_i = data.weights[taken]

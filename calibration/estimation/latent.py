@@ -79,7 +79,6 @@ def latent_derivatives(points: FloatArray, mean: float, sd: float) -> tuple[Floa
     second[:, 0, 0] = -1.0 / sd**2
     second[:, 0, 1] = second[:, 1, 0] = -2.0 * z / sd**3
     second[:, 1, 1] = -3.0 * z**2 / sd**4
-    centred = first - w @ first
-    score = centred
+    centred = first - w @ first  # the score
     hessian = second - np.einsum("q,qst->st", w, second) - np.einsum("q,qs,qt->st", w, centred, centred)
-    return score, hessian
+    return centred, hessian

@@ -39,13 +39,7 @@ def starting_values(responses: FloatArray, n_categories: IntArray, models: tuple
         r = min(max(r, 0.15), 0.9)
         slopes[j] = float(np.clip(1.7 * r / math.sqrt(1 - r * r), 0.3, 2.5))
         codes = x[answered[:, j], j]
-        p = np.array([(codes >= c).mean() for c in range(1, k[j])])
-        p = np.clip(p, 0.005, 0.995)
-        c_k = np.log(p / (1 - p)) * math.sqrt(1 + (slopes[j] / 1.7) ** 2)
-        # Enforce strict ordering even where categories are sparse.
-        for m in range(1, c_k.size):
-            c_k[m] = min(c_k[m], c_k[m - 1] - 0.05)
-        intercepts[j, : k[j] - 1] = c_k
+        intercepts[j, : k[j] - 1] = _intercepts(np.array([(codes >= c).mean() for c in range(1, k[j])]), slopes[j])
     return ItemParameters(slopes=slopes, intercepts=intercepts, n_categories=k, models=models)
 
 
@@ -82,11 +76,15 @@ def _complete_data_values(x: FloatArray, k: IntArray, models: tuple[str, ...]) -
     r = np.clip(r, 0.15, 0.9)
     slopes = np.clip(1.7 * r / np.sqrt(1 - r * r), 0.3, 2.5)
     intercepts = np.full((n_items, k_max - 1), np.nan)
-    p_all = np.clip(at_least.T / n_rows, 0.005, 0.995)
     for j in range(n_items):
-        p = p_all[j, : k[j] - 1]
-        c_k = np.log(p / (1 - p)) * math.sqrt(1 + (slopes[j] / 1.7) ** 2)
-        for m in range(1, c_k.size):
-            c_k[m] = min(c_k[m], c_k[m - 1] - 0.05)
-        intercepts[j, : k[j] - 1] = c_k
+        intercepts[j, : k[j] - 1] = _intercepts(at_least[: k[j] - 1, j] / n_rows, slopes[j])
     return ItemParameters(slopes=slopes, intercepts=intercepts, n_categories=k, models=models)
+
+
+def _intercepts(p: FloatArray, slope: float) -> FloatArray:
+    """Intercepts from the cumulative proportions ``P(X >= k)``, strictly decreasing (sparse categories)."""
+    p = np.clip(p, 0.005, 0.995)
+    c_k = np.log(p / (1 - p)) * math.sqrt(1 + (slope / 1.7) ** 2)
+    for m in range(1, c_k.size):
+        c_k[m] = min(c_k[m], c_k[m - 1] - 0.05)
+    return c_k

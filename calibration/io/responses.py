@@ -142,8 +142,9 @@ def read_responses(
     if problems:
         raise InputError(source, problems)
 
-    ids, problems = _empty_ids(table, id_column)
-    duplicates = _duplicate_ids(table.cells[id_column], id_column, header)
+    trimmed, problems = _trimmed_ids(table, id_column)
+    ids = trimmed.to_pylist()
+    duplicates = _duplicate_ids(trimmed, id_column, header)
     responses, code_problems, bad_cells = parse_codes(table, item_ids)
     problems += duplicates + code_problems
     if problems:
@@ -171,19 +172,12 @@ def read_responses(
     )
 
 
-def _empty_ids(table: TextTable, id_column: str) -> tuple[list[str], list[str]]:
-    """Ids as text (trimmed); an empty id is a problem naming its row."""
-    ids = table.text(id_column)
-    problems = [f"{table.label(i)}, column {id_column!r}: empty respondent id" for i, v in enumerate(ids) if not v]
-    return ids, problems
-
-
-def _duplicate_ids(ids: Any, id_column: str, header_lines: int) -> list[str]:
-    """Every repeat of an id, naming its row and the row it was first seen at (Arrow finds them; few are listed)."""
+def _duplicate_ids(trimmed: Any, id_column: str, header_lines: int) -> list[str]:
+    """Every repeat of an id (trimmed ids, as :func:`_trimmed_ids` gives them), naming its row and the row
+    it was first seen at (Arrow finds them; few are listed)."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
-    trimmed = pc.utf8_trim_whitespace(as_text(ids))
     if isinstance(trimmed, pa.ChunkedArray):
         trimmed = trimmed.combine_chunks()
     counts = pc.value_counts(trimmed)
@@ -205,8 +199,8 @@ def _duplicate_ids(ids: Any, id_column: str, header_lines: int) -> list[str]:
     return problems
 
 
-def _batch_ids(table: TextTable, id_column: str) -> tuple[Any, list[str]]:
-    """A batch's ids as a trimmed Arrow string array; an empty id is a problem naming its row."""
+def _trimmed_ids(table: TextTable, id_column: str) -> tuple[Any, list[str]]:
+    """A table's ids as a trimmed Arrow string array; an empty id is a problem naming its row."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
@@ -321,7 +315,7 @@ class ScoringInput:
         n_rows = 0
         for table in tables:
             n_rows += table.n_rows
-            ids, batch_problems = _batch_ids(table, self.id_column)
+            ids, batch_problems = _trimmed_ids(table, self.id_column)
             id_chunks.append(ids)
             groups = None if self.group_column is None else table.text(self.group_column)
             if groups is not None and self.group_column is not None:

@@ -210,20 +210,8 @@ class ResponseDesign:
         """Number of response rows."""
         return int(self.indicators.shape[0])
 
-    def take(self, rows: IntArray) -> ResponseDesign:
-        """The design of the listed rows, in that order (copies)."""
-        return ResponseDesign(
-            indicators=self.indicators[rows],
-            column_item=self.column_item,
-            column_category=self.column_category,
-            administered=None if self.administered is None else self.administered[rows],
-            summed_score=self.summed_score[rows],
-            max_score=self.max_score[rows],
-            n_answered=self.n_answered[rows],
-        )
-
-    def rows(self, selection: slice) -> ResponseDesign:
-        """The design of a block of rows (views, no copies)."""
+    def rows(self, selection: slice | IntArray) -> ResponseDesign:
+        """The design of a block of rows (views for a slice; copies, in that order, for listed rows)."""
         return ResponseDesign(
             indicators=self.indicators[selection],
             column_item=self.column_item,

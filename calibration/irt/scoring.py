@@ -28,8 +28,6 @@ from calibration.irt.models import (
     FloatArray,
     IntArray,
     ItemParameters,
-    cumulative_probabilities,
-    information_from,
 )
 from calibration.vocabulary import SCORING_METHODS
 
@@ -120,29 +118,18 @@ def score_tables(params: ItemParameters, grid: QuadratureGrid) -> tuple[FloatArr
     return split_log_table(params, grid.points, build_design(probe, params.n_categories))
 
 
-def _gradient_and_information(
+def _right_wrong_curves(
     params: ItemParameters, codes: IntArray, answered: np.ndarray, theta: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
-    """d log L / d theta and the expected test information at each respondent's theta (answered items only)."""
+    """Right/wrong items: ``d log L / d theta = sum a (x - P)`` and ``sum a^2 P (1 - P)``, which is both
+    minus the second derivative and the expected information (answered items only)."""
     a = params.slopes
-    if params.max_categories == 2:
-        # Right/wrong items: d log L / d theta = sum a (x - P), information sum a^2 P (1 - P), which is
-        # also minus the second derivative.
-        with np.errstate(over="ignore"):
-            p = 1.0 / (1.0 + np.exp(-(theta[:, None] * a + params.intercepts[:, 0])))
-        if answered.all():
-            return (codes - p) @ a, (p * (1.0 - p)) @ (a * a)
-        gradient = np.where(answered, a * (codes - p), 0.0).sum(axis=1)
-        information = np.where(answered, a * a * p * (1.0 - p), 0.0).sum(axis=1)
-        return gradient, information
-    star = cumulative_probabilities(params, theta)  # (n_items, K + 1, n_persons)
-    w = star * (1.0 - star)
-    prob = star[:, :-1, :] - star[:, 1:, :]
-    deriv = a[:, None, None] * (w[:, :-1, :] - w[:, 1:, :])
-    picked = codes.T[:, None, :]
-    p_answer = np.maximum(np.take_along_axis(prob, picked, axis=1)[:, 0, :], PROBABILITY_FLOOR)
-    gradient = np.where(answered, (np.take_along_axis(deriv, picked, axis=1)[:, 0, :] / p_answer).T, 0.0).sum(axis=1)
-    information = np.where(answered, information_from(prob, deriv).T, 0.0).sum(axis=1)
+    with np.errstate(over="ignore"):
+        p = 1.0 / (1.0 + np.exp(-(theta[:, None] * a + params.intercepts[:, 0])))
+    if answered.all():
+        return (codes - p) @ a, (p * (1.0 - p)) @ (a * a)
+    gradient = np.where(answered, a * (codes - p), 0.0).sum(axis=1)
+    information = np.where(answered, a * a * p * (1.0 - p), 0.0).sum(axis=1)
     return gradient, information
 
 
@@ -234,7 +221,7 @@ def _newton_theta(
         if idx.size == 0:
             break
         if lower is None or upper is None:
-            gradient, curvature = _gradient_and_information(params, codes[idx], answered[idx], theta[idx])
+            gradient, curvature = _right_wrong_curves(params, codes[idx], answered[idx], theta[idx])
         else:
             gradient, curvature = _answer_curves(params, lower[idx], upper[idx], answered[idx], theta[idx])
         if prior is not None:
@@ -243,8 +230,7 @@ def _newton_theta(
         bent = np.flatnonzero(curvature <= 1e-12)
         if bent.size:
             rows = idx[bent]
-            expected = _gradient_and_information(params, codes[rows], answered[rows], theta[rows])[1]
-            curvature[bent] = expected + prior_curvature
+            curvature[bent] = _expected_information(params, answered[rows], theta[rows]) + prior_curvature
         step = np.clip(gradient / np.maximum(curvature, 1e-12), -1.0, 1.0)
         theta[idx] = np.clip(theta[idx] + step, -bound, bound)
         active[idx] = np.abs(step) > tolerance
@@ -286,7 +272,7 @@ def _mode_scores(  # noqa: PLR0913 - the test, the data and the mode's options
     bound: float,
     chunk_size: int,
 ) -> tuple[FloatArray, FloatArray, ResponseDesign]:
-    """Mode of the likelihood (ML) or posterior (MAP) per row: the grid's maximum, then Fisher scoring."""
+    """Mode of the likelihood (ML) or posterior (MAP) per row: the grid's maximum, then Newton steps."""
     points = grid.points
     inside = np.abs(points) <= bound
     points = points[inside] if inside.sum() >= 3 else points
@@ -321,8 +307,8 @@ def map_scores(
 ) -> ThetaScores:
     """Maximum a posteriori theta with ``SE = (I(theta) + 1/sigma^2)^(-1/2)``.
 
-    Started from the posterior's maximum on the grid (refined by a parabola), then Fisher scoring
-    (expected information) to the mode.
+    Started from the posterior's maximum on the grid (refined by a parabola), then Newton steps to the
+    mode (see :func:`_newton_theta`).
     """
     prior = prior or NormalPrior()
     x = checked_responses(responses, params.n_categories)
