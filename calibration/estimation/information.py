@@ -28,6 +28,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import sparse
 
 from calibration.estimation.estep import GroupData, HeldLikelihood
 from calibration.estimation.latent import LatentSpec, latent_derivatives
@@ -100,6 +101,43 @@ def _scatter(target: FloatArray, local: FloatArray, index: IntArray) -> None:
     np.add.at(target, (rows[:, None], rows[None, :]), local[np.ix_(keep, keep)])
 
 
+def pair_sums(z: FloatArray, weights: FloatArray) -> FloatArray:
+    """``sum_i weights[i, q] z[i, a] z[i, b]`` for every pair of columns ``a <= b`` of a 0/1 matrix.
+
+    Parameters
+    ----------
+    z : array of shape (n_rows, c), every entry 0 or 1
+    weights : array of shape (n_rows, n_weights)
+
+    Returns
+    -------
+    array of shape (c + 1, c + 1, n_weights)
+        Entry ``[a, b]`` for ``a <= b < c``; the rest (``a > b``, and the last row and column, which
+        collect the padding) are left for the caller to ignore.
+
+    Only the pairs of columns that are both 1 in a row are visited: each row's nonzero columns,
+    padded to the widest row with the extra column ``c``, give one code ``a * (c + 1) + b`` per
+    pair, and one sparse product sums the weights by code. With answer indicators (one nonzero
+    column per answered item) this is ``n_rows x items^2 / 2`` additions per weight, not the
+    ``n_rows x c^2 / 2`` of a dense Gram product.
+    """
+    n_rows, c = z.shape
+    out_size = (c + 1) * (c + 1)
+    rows, cols = np.nonzero(z)  # row-major: each row's columns in increasing order
+    per_row = np.bincount(rows, minlength=n_rows)
+    width = int(per_row.max(initial=0))
+    if width == 0:
+        return np.zeros((c + 1, c + 1, weights.shape[1]))
+    index_type = np.int32 if out_size < np.iinfo(np.int32).max else np.int64
+    padded = np.full((n_rows, width), c, dtype=index_type)
+    padded[rows, np.arange(rows.size) - np.repeat(np.cumsum(per_row) - per_row, per_row)] = cols
+    first, second = np.triu_indices(width)
+    codes = padded[:, first] * index_type(c + 1) + padded[:, second]
+    row_start = np.arange(0, codes.size + 1, first.size, dtype=index_type)
+    indicator = sparse.csr_array((np.ones(codes.size), codes.reshape(-1), row_start), shape=(n_rows, out_size))
+    return np.asarray(indicator.T @ weights).reshape(c + 1, c + 1, -1)
+
+
 def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, mean: float, sd: float) -> FloatArray:
     """Hessian of one group's marginal log-likelihood over every slot and its latent (mean, SD).
 
@@ -132,9 +170,14 @@ def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, 
     # administered columns' and the category columns', each only on its own item's slots.
     const_load = loadings[:, 0, :]  # (Q, size)
     gappy_load = np.moveaxis(base_score[gappy], 0, 1).reshape(n_points, -1)
-    contrast_load = np.moveaxis(contrast, 0, 1).reshape(n_points, -1)
-    starts = np.flatnonzero(np.r_[True, col_item[1:] != col_item[:-1]])
-    upper = np.triu_indices(n_cols)
+    # Each respondent's answered category picks one column of the contrasts' loadings: column 0 is
+    # zero (category 0 or no answer), item j's category k >= 1 is column first[j] + k.
+    contrast_load = np.concatenate([np.zeros((n_points, 1, k_max)), np.moveaxis(contrast, 0, 1)], axis=1)
+    contrast_load = contrast_load.reshape(n_points, -1)
+    first = np.flatnonzero(np.r_[True, col_item[1:] != col_item[:-1]])  # every item has a column
+    category_of = np.zeros((col_item.size, n_items))
+    category_of[np.arange(col_item.size), col_item] = col_cat
+    n_binary = n_cols - 1  # the 0/1 columns of Z after the constant
     log_prior = normal_log_weights(points, mean, sd)
     tables = split_log_table(params, points, design)
 
@@ -142,7 +185,7 @@ def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, 
     # a narrow band of the grid and the Gram tables need only the points where they have mass.
     order = np.argsort(design.summed_score / np.maximum(design.max_score, 1.0), kind="stable")
 
-    def block(rows: slice) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, FloatArray]:
+    def block(rows: slice) -> tuple[FloatArray, FloatArray, FloatArray]:
         taken = order[rows]
         part = design.rows(taken)
         post, _ = exp_by_rows(log_likelihood_grid(params, points, part, tables=tables, log_prior=log_prior))
@@ -151,26 +194,22 @@ def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, 
         weighted = post * n_i[:, None]
         indicators = part.indicators
         administered = None if part.administered is None else part.administered[:, gappy]
-        z = np.empty((indicators.shape[0], n_cols))
-        z[:, 0] = 1.0
-        if gappy.size:
-            z[:, 1 : 1 + gappy.size] = administered
-        z[:, 1 + gappy.size :] = indicators
+        z = indicators if administered is None else np.hstack([administered, indicators])
         band = np.flatnonzero(post.max(axis=0) > POSTERIOR_FLOOR)
         lo, hi = (int(band[0]), int(band[-1]) + 1) if band.size else (0, 0)
-        gram = np.zeros((upper[0].size, n_points))
-        inside = weighted[:, lo:hi]
-        # Row a of the upper triangle: columns a.. of Z times column a, against the band's weights.
-        gram[:, lo:hi] = np.concatenate([(z[:, a:] * z[:, a : a + 1]).T @ inside for a in range(n_cols)])
+        pairs = np.zeros((n_binary + 1, n_binary + 1, n_points))
+        pairs[:, :, lo:hi] = pair_sums(z, weighted[:, lo:hi])
         mean_score = post @ const_load
         by_item = mean_score[:, :n_slots].reshape(-1, n_items, k_max)  # a view or a copy: written back below
         if gappy.size:
             by_item[:, gappy] += administered[:, :, None] * (post @ gappy_load).reshape(-1, gappy.size, k_max)
-        by_column = (post @ contrast_load).reshape(-1, col_item.size, k_max) * indicators[:, :, None]
-        by_item[:, col_item[starts]] += np.add.reduceat(by_column, starts, axis=1)
+        answered = (indicators @ category_of).astype(np.int64)  # (rows, J): the category, 0 for none
+        picked = np.where(answered > 0, first + answered, 0)
+        by_column = (post @ contrast_load).reshape(-1, col_item.size + 1, k_max)
+        by_item += np.take_along_axis(by_column, picked[:, :, None], axis=1)
         mean_score[:, :n_slots] = by_item.reshape(-1, n_slots)
         cross = mean_score.T @ (mean_score * n_i[:, None])
-        return gram, cross, indicators.T @ weighted, z[:, 1 : 1 + gappy.size].T @ weighted, weighted.sum(axis=0)
+        return pairs, cross, weighted.sum(axis=0)
 
     def span(rows: slice) -> tuple[FloatArray, ...]:
         # A few large spans per thread, each summing its small blocks as it goes: memory stays flat.
@@ -182,14 +221,17 @@ def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, 
 
     span_rows = max(GRAM_BLOCK_ROWS, -(-design.n_persons // GRAM_SPANS))
     parts = [p for p in run_blocks(span, design.n_persons, span_rows, workers=None) if p]
-    gram_upper = sum(p[0] for p in parts)
+    pairs = sum(p[0] for p in parts)[:n_binary, :n_binary]  # (c, c, Q): a <= b filled
     cross = sum(p[1] for p in parts)
-    category_counts = sum(p[2] for p in parts)
-    gappy_answered = sum(p[3] for p in parts)
-    mass = sum(p[4] for p in parts)
-    gram = np.zeros((n_points, n_cols, n_cols))
-    gram[:, upper[0], upper[1]] = gram_upper.T
-    gram[:, upper[1], upper[0]] = gram_upper.T
+    mass = sum(p[2] for p in parts)
+    column_sums = np.einsum("aaq->aq", pairs)  # a 0/1 column times itself is the column
+    gram = np.empty((n_points, n_cols, n_cols))
+    gram[:, 1:, 1:] = np.moveaxis(pairs + pairs.transpose(1, 0, 2), 2, 0)
+    gram[:, np.arange(1, n_cols), np.arange(1, n_cols)] = column_sums.T
+    gram[:, 0, 1:] = column_sums.T
+    gram[:, 1:, 0] = column_sums.T
+    gram[:, 0, 0] = mass
+    gappy_answered, category_counts = column_sums[: gappy.size], column_sums[gappy.size :]
     # Expected counts r[j, k, q], category 0 as answered minus the rest.
     counts = np.zeros((n_items, k_max, n_points))
     counts[col_item, col_cat] = category_counts

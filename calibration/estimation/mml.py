@@ -32,10 +32,11 @@ from calibration.estimation.optimizer import run_em
 from calibration.estimation.results import CalibrationFit, MultiGroupFit
 from calibration.estimation.settings import EMSettings
 from calibration.estimation.start import starting_values
-from calibration.irt.likelihood import checked_responses, normal_log_weights
+from calibration.irt.likelihood import checked_responses, normal_log_weights, with_single_threaded_blas
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
 
 
+@with_single_threaded_blas  # the E-step splits rows over threads itself; idle BLAS threads would spin
 def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public estimator
     responses: FloatArray,
     n_categories: IntArray,

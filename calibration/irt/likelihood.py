@@ -22,7 +22,7 @@ import threading
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
-from typing import TypeVar
+from typing import ParamSpec, TypeVar
 
 import numpy as np
 from threadpoolctl import ThreadpoolController
@@ -33,6 +33,7 @@ from calibration.irt.models import FloatArray, IntArray, ItemParameters, log_cat
 DEFAULT_CHUNK = 4_096
 
 T = TypeVar("T")
+P = ParamSpec("P")
 
 
 def chunks(n: int, size: int) -> list[slice]:
@@ -62,6 +63,17 @@ def single_threaded_blas() -> contextlib.AbstractContextManager[object]:
     Small products gain nothing from BLAS threads, and idle BLAS threads spin on the other core.
     """
     return _pool_and_blas()[1].limit(limits=1, user_api="blas")
+
+
+def with_single_threaded_blas(function: Callable[P, T]) -> Callable[P, T]:
+    """``function`` with BLAS held to one thread while it runs (see :func:`single_threaded_blas`)."""
+
+    @functools.wraps(function)
+    def held(*args: P.args, **kwargs: P.kwargs) -> T:
+        with single_threaded_blas():
+            return function(*args, **kwargs)
+
+    return held
 
 
 def run_blocks(block: Callable[[slice], T], n_rows: int, chunk_size: int, *, workers: int | None) -> list[T]:
@@ -249,7 +261,7 @@ def build_design(responses: FloatArray, n_categories: IntArray) -> ResponseDesig
         indicators = filled
     else:
         coded = filled if complete else np.where(missing, -1.0, responses)
-        indicators = (coded[:, column_item] == column_category[None, :]).astype(np.float64)
+        indicators = (coded.take(column_item, axis=1) == column_category[None, :]).astype(np.float64)  # C order
     top = (n_categories - 1).astype(np.float64)
     if complete:
         administered = None

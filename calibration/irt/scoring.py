@@ -118,76 +118,121 @@ def score_tables(params: ItemParameters, grid: QuadratureGrid) -> tuple[FloatArr
     return split_log_table(params, grid.points, build_design(probe, params.n_categories))
 
 
+EXPONENT_LIMIT = 700.0
+"""``-a theta`` is clipped to +-700 before its exponential (finite, nonzero in double precision); beyond it
+every curve is saturated (below 1e-217 from 0 or 1) whatever the intercept within a bundle's +-200."""
+
+
+def _odds_against_slope(params: ItemParameters, theta: FloatArray) -> FloatArray:
+    """``exp(-a_j theta_i)`` of shape (n, J), clipped (see EXPONENT_LIMIT).
+
+    Every boundary's ``exp(-(a theta + c))`` is this times ``exp(-c)``: one exponential per
+    respondent and item serves all of the item's boundaries.
+    """
+    odds = np.multiply(theta[:, None], -params.slopes)
+    np.clip(odds, -EXPONENT_LIMIT, EXPONENT_LIMIT, out=odds)
+    return np.exp(odds, out=odds)
+
+
+def _boundary_curve(odds: FloatArray, factor: FloatArray, out: FloatArray | None = None) -> FloatArray:
+    """``P* = 1 / (1 + odds * factor)`` with ``factor = exp(-c)``: 0 gives 1 (no lower boundary), inf gives 0."""
+    with np.errstate(over="ignore"):  # inf: the curve is 0 there
+        star = np.multiply(odds, factor, out=out)
+    star += 1.0
+    return np.reciprocal(star, out=star)
+
+
+def _answered_sum(terms: FloatArray, answered: np.ndarray | None, weights: FloatArray) -> FloatArray:
+    """``sum_j weights_j terms[:, j]`` over the answered items (``answered`` None: every item)."""
+    if answered is None:
+        return terms @ weights
+    return np.where(answered, terms, 0.0) @ weights  # where, not a product: an unanswered term may be inf
+
+
 def _right_wrong_curves(
-    params: ItemParameters, codes: IntArray, answered: np.ndarray, theta: FloatArray
+    params: ItemParameters, codes: IntArray, answered: np.ndarray | None, theta: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
     """Right/wrong items: ``d log L / d theta = sum a (x - P)`` and ``sum a^2 P (1 - P)``, which is both
-    minus the second derivative and the expected information (answered items only)."""
+    minus the second derivative and the expected information (answered items only; None: all)."""
     a = params.slopes
-    with np.errstate(over="ignore"):
-        p = 1.0 / (1.0 + np.exp(-(theta[:, None] * a + params.intercepts[:, 0])))
-    if answered.all():
-        return (codes - p) @ a, (p * (1.0 - p)) @ (a * a)
-    gradient = np.where(answered, a * (codes - p), 0.0).sum(axis=1)
-    information = np.where(answered, a * a * p * (1.0 - p), 0.0).sum(axis=1)
-    return gradient, information
+    p = _boundary_curve(_odds_against_slope(params, theta), np.exp(-params.intercepts[:, 0]))
+    residual = codes - p
+    spread = p - p * p
+    return _answered_sum(residual, answered, a), _answered_sum(spread, answered, a * a)
 
 
-def _answer_bounds(params: ItemParameters, codes: IntArray) -> tuple[FloatArray, FloatArray]:
-    """Intercepts of each answer's two boundaries, ``c_x`` and ``c_{x+1}`` (``+inf`` below category 1,
-    ``-inf`` above the top): (n, J) each, built once per batch."""
-    padded = np.full((params.n_items, params.max_categories + 1), -np.inf)
-    padded[:, 0] = np.inf
+def _answer_factors(params: ItemParameters, codes: IntArray) -> tuple[FloatArray, FloatArray]:
+    """``exp(-c)`` of each answer's two boundaries, ``c_x`` and ``c_{x+1}`` (0 below category 1, ``inf``
+    above the top): (n, J) each, built once per batch."""
+    padded = np.full((params.n_items, params.max_categories + 1), np.inf)
+    padded[:, 0] = 0.0
     for j, k in enumerate(params.n_categories):
-        padded[j, 1:k] = params.intercepts[j, : k - 1]
+        padded[j, 1:k] = np.exp(-params.intercepts[j, : k - 1])
     items = np.arange(params.n_items)
     return padded[items, codes], padded[items, codes + 1]
 
 
 def _answer_curves(
-    params: ItemParameters, lower: FloatArray, upper: FloatArray, answered: np.ndarray, theta: FloatArray
+    params: ItemParameters, lower: FloatArray, upper: FloatArray, answered: np.ndarray | None, theta: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
     """d log P(answer) / d theta and minus its second derivative, summed over the answered items.
 
-    Only the answered category's two boundaries are evaluated, ``P_x = P*_x - P*_{x+1}`` with
-    ``P*_0 = 1`` and ``P*_K = 0``: (n, J) arrays, not (n, J, K).
+    Only the answered category's two boundaries are evaluated (``lower`` and ``upper`` hold their
+    ``exp(-c)``), ``P_x = P*_x - P*_{x+1}`` with ``P*_0 = 1`` and ``P*_K = 0``: (n, J) arrays, not
+    (n, J, K). With ``W = P* (1 - P*)`` the first derivative is ``a (W_x - W_{x+1}) / P_x`` and the
+    second ``a^2 (W_x (1 - 2 P*_x) - W_{x+1} (1 - 2 P*_{x+1})) / P_x`` minus the first squared.
     """
     a = params.slopes
-    eta = theta[:, None] * a
-    with np.errstate(over="ignore", invalid="ignore"):
-        star_lo = 1.0 / (1.0 + np.exp(-(eta + lower)))
-        star_hi = 1.0 / (1.0 + np.exp(-(eta + upper)))
-    w_lo, w_hi = star_lo * (1.0 - star_lo), star_hi * (1.0 - star_hi)
-    p_answer = np.maximum(star_lo - star_hi, PROBABILITY_FLOOR)
-    first = a * (w_lo - w_hi) / p_answer
-    second = a * a * (w_lo * (1.0 - 2.0 * star_lo) - w_hi * (1.0 - 2.0 * star_hi)) / p_answer
-    gradient = np.where(answered, first, 0.0).sum(axis=1)
-    return gradient, np.where(answered, first * first - second, 0.0).sum(axis=1)
+    odds = _odds_against_slope(params, theta)
+    star_lo = _boundary_curve(odds, lower)
+    star_hi = _boundary_curve(odds, upper, out=odds)
+    w_lo = star_lo - star_lo * star_lo
+    w_hi = star_hi - star_hi * star_hi
+    p_answer = np.subtract(star_lo, star_hi)
+    np.maximum(p_answer, PROBABILITY_FLOOR, out=p_answer)
+    # W (1 - 2 P*) = W - 2 W P*, so the second derivative's bracket is (W_lo - W_hi) - 2 (W_lo P*_lo - W_hi P*_hi).
+    star_lo *= w_lo
+    star_hi *= w_hi
+    bracket = np.subtract(star_lo, star_hi, out=star_lo)
+    first = np.subtract(w_lo, w_hi, out=w_lo)  # (W_lo - W_hi): the first derivative over a, before / P
+    bracket *= -2.0
+    bracket += first
+    first /= p_answer
+    bracket /= p_answer
+    curvature = np.multiply(first, first, out=star_hi)
+    curvature -= bracket  # minus the second derivative, over a^2
+    return _answered_sum(first, answered, a), _answered_sum(curvature, answered, a * a)
 
 
-def _expected_information(params: ItemParameters, answered: np.ndarray, theta: FloatArray) -> FloatArray:
-    """Test information ``sum_j sum_k (dP_jk/dtheta)^2 / P_jk`` over the answered items, category by category.
+def _expected_information(params: ItemParameters, answered: np.ndarray | None, theta: FloatArray) -> FloatArray:
+    """Test information ``sum_j sum_k (dP_jk/dtheta)^2 / P_jk`` over the answered items (None: all),
+    category by category.
 
     (n, J) arrays per boundary, not (J, K, n): ``P_k = P*_k - P*_{k+1}``, ``P'_k = a (W_k - W_{k+1})``.
     """
     a = params.slopes
-    eta = theta[:, None] * a
-    total = np.zeros_like(eta)
-    upper_star, upper_w = np.ones_like(eta), np.zeros_like(eta)  # boundary 0: P* = 1, W = 0
+    odds = _odds_against_slope(params, theta)
+    # exp(-c) per boundary; inf where an item with fewer categories has no boundary m (P* = 0 there).
+    factors = np.exp(-np.where(np.isnan(params.intercepts), -np.inf, params.intercepts))
+    total = np.zeros_like(odds)
+    prob, deriv = np.empty_like(odds), np.empty_like(odds)
+    upper_star, upper_w = np.ones_like(odds), np.zeros_like(odds)  # boundary 0: P* = 1, W = 0
     for m in range(1, params.max_categories + 1):
         if m < params.max_categories:
-            c = params.intercepts[:, m - 1]
-            with np.errstate(over="ignore"):
-                star = np.where(np.isnan(c), 0.0, 1.0 / (1.0 + np.exp(-(eta + np.nan_to_num(c)))))
+            star = _boundary_curve(odds, factors[:, m - 1])
+            w = star - star * star
         else:
-            star = np.zeros_like(eta)
-        w = star * (1.0 - star)
-        prob = upper_star - star
-        deriv = a * (upper_w - w)
+            star, w = np.zeros_like(odds), np.zeros_like(odds)
+        np.subtract(upper_star, star, out=prob)
+        np.subtract(upper_w, w, out=deriv)
+        deriv *= deriv
         positive = prob > PROBABILITY_FLOOR
-        total += np.where(positive, deriv * deriv / np.where(positive, prob, 1.0), 0.0)
+        np.divide(deriv, prob, out=deriv, where=positive)
+        if not positive.all():
+            deriv[~positive] = 0.0  # a category beyond double precision adds nothing
+        total += deriv
         upper_star, upper_w = star, w
-    return np.where(answered, total, 0.0).sum(axis=1)
+    return _answered_sum(total, answered, a * a)
 
 
 def _newton_theta(
@@ -206,40 +251,52 @@ def _newton_theta(
     convergence is quadratic: a row stops once its step is below ``tolerance`` (1e-6), which leaves
     it within about 1e-12 of the mode. The SE is from the expected information at the mode.
     """
-    answered = ~np.isnan(x)
-    codes = np.where(answered, x, 0).astype(np.int64)
+    answered_cells = ~np.isnan(x)
+    answered = None if answered_cells.all() else answered_cells
+    codes = np.where(answered_cells, x, 0).astype(np.int64)
     theta = np.clip(start.copy(), -bound, bound)
-    active = np.ones(theta.shape[0], dtype=bool)
+    n_rows = theta.shape[0]
+    active = np.ones(n_rows, dtype=bool)
     prior_curvature = 0.0 if prior is None else 1.0 / prior.sd**2
     dichotomous = params.max_categories == 2
-    lower, upper = (None, None) if dichotomous else _answer_bounds(params, codes)
+    lower, upper = (None, None) if dichotomous else _answer_factors(params, codes)
     # Right/wrong items: the curvature of the last step is the expected information, so a row whose
     # last step was below SE_REUSE_STEP keeps it for its SE (it changes by far less than 1e-6 there).
-    last_info = np.full(theta.shape[0], np.nan)
+    last_info = np.full(n_rows, np.nan)
     for _ in range(max_iter):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
+        rows: slice | IntArray = slice(None) if idx.size == n_rows else idx  # a view while every row is active
+        on = None if answered is None else answered[rows]
         if lower is None or upper is None:
-            gradient, curvature = _right_wrong_curves(params, codes[idx], answered[idx], theta[idx])
+            gradient, curvature = _right_wrong_curves(params, codes[rows], on, theta[rows])
         else:
-            gradient, curvature = _answer_curves(params, lower[idx], upper[idx], answered[idx], theta[idx])
+            gradient, curvature = _answer_curves(params, lower[rows], upper[rows], on, theta[rows])
         if prior is not None:
-            gradient = gradient - (theta[idx] - prior.mean) / prior.sd**2
+            gradient = gradient - (theta[rows] - prior.mean) / prior.sd**2
         curvature = curvature + prior_curvature
         bent = np.flatnonzero(curvature <= 1e-12)
         if bent.size:
-            rows = idx[bent]
-            curvature[bent] = _expected_information(params, answered[rows], theta[rows]) + prior_curvature
+            flat = idx[bent]
+            curvature[bent] = (
+                _expected_information(params, None if answered is None else answered[flat], theta[flat])
+                + prior_curvature
+            )
         step = np.clip(gradient / np.maximum(curvature, 1e-12), -1.0, 1.0)
-        theta[idx] = np.clip(theta[idx] + step, -bound, bound)
-        active[idx] = np.abs(step) > tolerance
+        before = theta[rows]
+        # Already at the bound and pushed further out: the (log-concave) likelihood's maximum within the
+        # bound is the bound itself, so the row stops there (all-lowest and all-highest ML patterns).
+        pinned = (np.abs(before) == bound) & (step * before > 0)
+        theta[rows] = np.clip(before + step, -bound, bound)
+        active[rows] = (np.abs(step) > tolerance) & ~pinned
         if dichotomous:
-            last_info[idx] = np.where(np.abs(step) < SE_REUSE_STEP, curvature, np.nan)
+            last_info[rows] = np.where(np.abs(step) < SE_REUSE_STEP, curvature, np.nan)
     info = last_info
     again = np.flatnonzero(~np.isfinite(info))
     if again.size:
-        info[again] = _expected_information(params, answered[again], theta[again]) + prior_curvature
+        on = None if answered is None else answered[again]
+        info[again] = _expected_information(params, on, theta[again]) + prior_curvature
     with np.errstate(divide="ignore"):
         se = np.where(info > 0, 1.0 / np.sqrt(info), np.inf)
     return theta, se
@@ -263,6 +320,17 @@ def _grid_mode(log_values: FloatArray, points: FloatArray) -> FloatArray:
     return points[best] + np.clip(shift, -1.0, 1.0) * (points[1] - points[0])
 
 
+@dataclass(frozen=True)
+class _Modes:
+    """Modes and SEs of a batch, with the counts the callers report (arrays of shape (n_persons,))."""
+
+    theta: FloatArray
+    se: FloatArray
+    n_answered: IntArray
+    lowest: np.ndarray
+    highest: np.ndarray
+
+
 def _mode_scores(  # noqa: PLR0913 - the test, the data and the mode's options
     params: ItemParameters,
     x: FloatArray,
@@ -271,7 +339,7 @@ def _mode_scores(  # noqa: PLR0913 - the test, the data and the mode's options
     grid: QuadratureGrid,
     bound: float,
     chunk_size: int,
-) -> tuple[FloatArray, FloatArray, ResponseDesign]:
+) -> _Modes:
     """Mode of the likelihood (ML) or posterior (MAP) per row: the grid's maximum, then Newton steps."""
     points = grid.points
     inside = np.abs(points) <= bound
@@ -279,18 +347,20 @@ def _mode_scores(  # noqa: PLR0913 - the test, the data and the mode's options
     scoped = QuadratureGrid(points.size, float(points[0]), float(points[-1]))
     tables = score_tables(params, scoped)
     log_prior = None if prior is None else normal_log_weights(scoped.points, prior.mean, prior.sd)
-    theta = np.empty(x.shape[0])
-    se = np.empty(x.shape[0])
-    design = build_design(x, params.n_categories)
+    n = x.shape[0]
+    flags = (np.empty(n, dtype=bool), np.empty(n, dtype=bool))
+    out = _Modes(np.empty(n), np.empty(n), np.empty(n, dtype=np.int64), *flags)
 
     def block(rows: slice) -> None:
-        part = design.rows(rows)
-        log_values = log_likelihood_grid(params, scoped.points, part, tables=tables, log_prior=log_prior)
+        design = build_design(x[rows], params.n_categories)  # per block, as EAP: no full-size indicators
+        out.n_answered[rows] = design.n_answered
+        out.lowest[rows], out.highest[rows] = _extreme_low_high(design)
+        log_values = log_likelihood_grid(params, scoped.points, design, tables=tables, log_prior=log_prior)
         start = _grid_mode(log_values, scoped.points)
-        theta[rows], se[rows] = _newton_theta(params, x[rows], start, prior=prior, bound=bound)
+        out.theta[rows], out.se[rows] = _newton_theta(params, x[rows], start, prior=prior, bound=bound)
 
-    run_blocks(block, x.shape[0], chunk_size, workers=None)
-    return theta, se, design
+    run_blocks(block, n, chunk_size, workers=None)
+    return out
 
 
 MAP_BOUND = 10.0
@@ -312,11 +382,9 @@ def map_scores(
     """
     prior = prior or NormalPrior()
     x = checked_responses(responses, params.n_categories)
-    theta, se, design = _mode_scores(
-        params, x, prior=prior, grid=grid or QuadratureGrid(), bound=MAP_BOUND, chunk_size=chunk_size
-    )
-    low, high = _extreme_low_high(design)
-    return ThetaScores(theta=theta, se=se, n_answered=design.n_answered, extreme=low | high, method=METHOD_MAP)
+    modes = _mode_scores(params, x, prior=prior, grid=grid or QuadratureGrid(), bound=MAP_BOUND, chunk_size=chunk_size)
+    extreme = modes.lowest | modes.highest
+    return ThetaScores(theta=modes.theta, se=modes.se, n_answered=modes.n_answered, extreme=extreme, method=METHOD_MAP)
 
 
 def ml_scores(
@@ -336,10 +404,9 @@ def ml_scores(
     gets NaN. Started from the likelihood's maximum on a grid within the bound.
     """
     x = checked_responses(responses, params.n_categories)
-    theta, se, design = _mode_scores(params, x, prior=None, grid=QuadratureGrid(), bound=bound, chunk_size=chunk_size)
-    low, high = _extreme_low_high(design)
-    extreme = low | high
-    n_answered = design.n_answered
+    modes = _mode_scores(params, x, prior=None, grid=QuadratureGrid(), bound=bound, chunk_size=chunk_size)
+    theta, se, n_answered, low = modes.theta, modes.se, modes.n_answered, modes.lowest
+    extreme = low | modes.highest
     answered_any = n_answered > 0
     theta[extreme] = np.where(low[extreme], -bound, bound)
     if extreme.any():

@@ -25,6 +25,7 @@ from calibration.estimation import (
     fit_item_given_offsets,
 )
 from calibration.estimation.estep import expected_counts, prepare_groups
+from calibration.estimation.information import pair_sums
 from calibration.estimation.latent import latent_score
 from calibration.estimation.layout import params_from_table, slot_table
 from calibration.estimation.mstep import item_gradient
@@ -184,3 +185,20 @@ def test_held_item_information_equals_numerical_hessian(n_categories: int) -> No
     assert fit.log_likelihood == pytest.approx(log_likelihood(fit.vector), abs=1e-8)
     assert fit.log_likelihood >= -best.fun - 1e-7
     np.testing.assert_allclose(fit.vector, best.x, atol=2e-4)
+
+
+def test_pair_sums_equal_the_dense_gram_tables() -> None:
+    # The sparse pair sums of the Gram pass against the dense route they replace: for every pair of 0/1
+    # columns, sum_i w_iq z_ia z_ib by einsum over the whole matrix. Rows with no 1 and all-zero columns
+    # included. Both sum the same products in another order: 1e-12.
+    rng = np.random.default_rng(8)
+    z = (rng.random((300, 9)) < 0.35).astype(np.float64)
+    z[:20] = 0.0
+    z[:, 4] = 0.0
+    weights = rng.random((300, 7))
+    dense = np.einsum("ia,ib,iq->abq", z, z, weights)
+    sums = pair_sums(z, weights)
+    upper = np.triu_indices(9)
+    np.testing.assert_allclose(sums[:9, :9][upper], dense[upper], rtol=1e-12, atol=1e-12)
+    assert sums.shape == (10, 10, 7)
+    np.testing.assert_array_equal(pair_sums(np.zeros((5, 3)), weights[:5]), np.zeros((4, 4, 7)))

@@ -145,6 +145,56 @@ def test_ml_se_is_inverse_root_information(items: ItemParameters) -> None:
     assert scores.se[0] == pytest.approx((-second) ** -0.5, rel=0.05)
 
 
+def _expected_information_by_differences(params: ItemParameters, pattern: np.ndarray, theta: float) -> float:
+    """``sum_j sum_k P_jk (d log P_jk / d theta)^2`` over the answered items, the derivative by central differences.
+
+    The definition of the expected (Fisher) information, written out; no closed form of ours is used.
+    """
+    h = 1e-5
+    grid = np.array([theta - h, theta, theta + h])
+    log_p = log_category_probabilities(params, grid)  # (J, K, 3); -inf for categories an item lacks
+    with np.errstate(invalid="ignore"):
+        slope = (log_p[:, :, 2] - log_p[:, :, 0]) / (2 * h)
+    prob = np.exp(log_p[:, :, 1])
+    terms = np.where(prob > 0, prob * np.nan_to_num(slope) ** 2, 0.0).sum(axis=1)
+    return float(terms[~np.isnan(pattern)].sum())
+
+
+def test_map_and_ml_ses_equal_the_expected_information_written_out(items: ItemParameters) -> None:
+    # SE = (I(theta) + 1/sigma^2)^(-1/2) for MAP and I(theta)^(-1/2) for ML, I the expected information at the
+    # estimate (REFERENCES.md, scoring). Central differences of log P carry about 1e-10 relative error: 1e-7.
+    prior = NormalPrior(0.2, 1.1)
+    map_ = map_scores(items, PATTERNS, prior=prior)
+    ml = ml_scores(items, PATTERNS, bound=4.0)
+    for i, pattern in enumerate(PATTERNS):
+        info = _expected_information_by_differences(items, pattern, map_.theta[i])
+        assert map_.se[i] == pytest.approx((info + 1 / prior.sd**2) ** -0.5, rel=1e-7)
+        info = _expected_information_by_differences(items, pattern, ml.theta[i])
+        assert ml.se[i] == pytest.approx(info**-0.5, rel=1e-7)
+
+
+def test_steep_items_far_out_give_finite_modes_and_the_bound() -> None:
+    # Slopes of 20 (the bundle's limit) with an ML bound of 50 take a * theta to 1,000: the exponentials are
+    # clipped at +-700, where every curve is saturated. Modes inside the bound still equal scipy's optimiser,
+    # extreme patterns sit at the bound, and nothing is NaN.
+    steep = ItemParameters.from_thresholds(
+        [20.0, 20.0, 1.0, 0.8, 1.4], [[-1.0, np.nan], [1.0, np.nan], [0.0, np.nan], [-0.5, 0.7], [0.3, np.nan]]
+    )
+    patterns = np.array([[1, 0, 1, 1, 0], [1, 0, 0, 2, 1], [0, 0, 0, 0, 0], [1, 1, 1, 2, 1]], dtype=np.float64)
+    scores = ml_scores(steep, patterns, bound=50.0)
+    for i in (0, 1):
+        res = optimize.minimize_scalar(
+            lambda t, p=patterns[i]: -_log_likelihood(steep, p, t),
+            bounds=(-1.0, 1.0),
+            method="bounded",
+            options={"xatol": 1e-10},
+        )
+        assert scores.theta[i] == pytest.approx(res.x, abs=1e-6)
+    assert scores.theta[2] == -50.0 and scores.theta[3] == 50.0
+    assert not np.isnan(scores.se).any()
+    assert np.all(np.isfinite(map_scores(steep, patterns).theta))
+
+
 def test_lord_wingersky_matches_brute_force(items: ItemParameters) -> None:
     # Independent route: enumerate all 2*2*2*3*4 = 96 patterns and add up their probabilities.
     points = np.linspace(-3, 3, 7)
