@@ -10,6 +10,7 @@ from fastapi import FastAPI
 
 from calibration import __version__
 from calibration.bundle import open_store
+from calibration.irt.likelihood import single_threaded_blas
 from service.api.docs import document_problems
 from service.api.routes import bundles, ops, scores
 from service.errors import install_handlers
@@ -44,7 +45,9 @@ def create_app(settings: Settings) -> FastAPI:
         log_event(
             logging.INFO, "startup", store=repr(store), bundles_loaded=registry.loaded_count, keys=len(keyring.records)
         )
-        yield
+        # One request per thread and one worker per core: BLAS threads would only compete (and spin).
+        with single_threaded_blas():
+            yield
         registry.stop()
 
     docs = {} if settings.docs else {"docs_url": None, "redoc_url": None, "openapi_url": None}

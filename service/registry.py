@@ -19,11 +19,14 @@ comes back while a replica still holds it; retire a version by moving its alias 
 
 from __future__ import annotations
 
+import functools
 import logging
 import threading
 import time
 from dataclasses import dataclass, field
 from typing import Any
+
+import numpy as np
 
 from calibration.bundle import Bundle, BundleNotFound, BundleStore
 from calibration.bundle.scorer import BundleScorer
@@ -40,10 +43,28 @@ RETRY_MAX = 10.0
 
 @dataclass
 class LoadedBundle:
-    """A verified bundle and its scorer."""
+    """A verified bundle and its scorer, with what every score request against it looks up."""
 
     bundle: Bundle
     scorer: BundleScorer
+
+    @functools.cached_property
+    def item_index(self) -> dict[str, int]:
+        """Each item's column in the scorer's answer matrix."""
+        return {item: j for j, item in enumerate(self.scorer.item_ids)}
+
+    @functools.cached_property
+    def item_limits(self) -> np.ndarray:
+        """Each item's number of categories, in column order (read-only)."""
+        limits = np.asarray([self.scorer.item_categories[item] for item in self.scorer.item_ids], dtype=np.int64)
+        limits.flags.writeable = False
+        return limits
+
+    @functools.cached_property
+    def excluded_items(self) -> dict[str, list[dict[str, str]]]:
+        """Per group, the items left out of its scores with the reason, as the response lists them (shared: do not
+        modify)."""
+        return {g: [{"item": i, "reason": r} for i, r in self.scorer.excluded_for(g)] for g in self.scorer.plans}
 
 
 @dataclass

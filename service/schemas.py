@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+from itertools import chain
 from typing import Annotated, Literal, NotRequired
 
-from pydantic import BaseModel, ConfigDict, Field, StrictInt, with_config
+import numpy as np
+import orjson
+from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, StrictInt, ValidationError, with_config
 from typing_extensions import TypedDict  # pydantic needs this one before Python 3.12
 
 from calibration.vocabulary import ScoringMethod
@@ -19,6 +22,9 @@ CAUTION = (
 
 # Largest answer code the schema accepts: far above any item's categories, far below any integer overflow.
 MAX_ANSWER_CODE = 999
+# Longest respondent id and group name.
+MAX_ID_LENGTH = 200
+MAX_GROUP_LENGTH = 200
 # Largest version number (the path parameter has the same bound).
 MAX_VERSION = 2**31 - 1
 
@@ -43,9 +49,11 @@ class ScoreOptions(_Strict):
 class ResponseVector(TypedDict):
     """One respondent: an id, the group (when the bundle has several) and the answers by item."""
 
-    id: Annotated[str, Field(min_length=1, max_length=200, description="the respondent's id, echoed back")]
+    id: Annotated[str, Field(min_length=1, max_length=MAX_ID_LENGTH, description="the respondent's id, echoed back")]
     group: NotRequired[
-        Annotated[str | None, Field(max_length=200, description="required when the bundle has several groups")]
+        Annotated[
+            str | None, Field(max_length=MAX_GROUP_LENGTH, description="required when the bundle has several groups")
+        ]
     ]
     answers: Annotated[
         dict[str, Annotated[StrictInt, Field(ge=0, le=MAX_ANSWER_CODE)]],
@@ -56,11 +64,71 @@ class ResponseVector(TypedDict):
     ]
 
 
+_REQUEST_KEYS = frozenset({"responses", "options"})
+_VECTOR_KEYS = frozenset(ResponseVector.__annotations__)
+
+
 class ScoreRequest(_Strict):
     """A batch of response vectors and the scoring options."""
 
     responses: list[ResponseVector] = Field(min_length=1)
     options: ScoreOptions = Field(default_factory=ScoreOptions)
+    _answer_codes: np.ndarray | None = PrivateAttr(default=None)
+
+    def answer_codes(self) -> np.ndarray:
+        """Every vector's answers, one after the other, as int64 (the validated codes, in the order given)."""
+        if self._answer_codes is None:
+            count = sum(len(vector["answers"]) for vector in self.responses)
+            values = chain.from_iterable(vector["answers"].values() for vector in self.responses)
+            self._answer_codes = np.fromiter(values, dtype=np.int64, count=count)
+        return self._answer_codes
+
+    @classmethod
+    def from_plain_json(cls, raw: bytes) -> ScoreRequest | None:
+        """The request from a body that plainly keeps every rule of this schema, without a model pass per value.
+
+        The rules checked are the schema's own: an object with ``responses`` (a non-empty list) and
+        optionally ``options``; each vector an object with no other keys than ``id`` (a string of
+        1..200 characters), ``group`` (null or a string of at most 200) and ``answers`` (an object of
+        whole numbers 0..999, JSON integers only). The options are validated by their model. A body
+        that breaks any rule, or that orjson cannot read, gives None: it then goes through the model's
+        own validation, so every error answer is pydantic's. (orjson and pydantic read duplicate keys
+        alike, the last one winning, and count string lengths in characters alike.)
+        """
+        try:
+            document = orjson.loads(raw)
+        except orjson.JSONDecodeError:
+            return None
+        if type(document) is not dict or not document.keys() <= _REQUEST_KEYS:
+            return None
+        responses = document.get("responses")
+        if type(responses) is not list or not responses or not all(map(_plain_vector, responses)):
+            return None
+        values = chain.from_iterable(vector["answers"].values() for vector in responses)
+        if not set(map(type, values)) <= {int}:  # no booleans, decimals, strings or nulls among the answers
+            return None
+        try:
+            options = ScoreOptions.model_validate_json(orjson.dumps(document.get("options", {})))
+            request = cls.model_construct(responses=responses, options=options)
+            codes = request.answer_codes()
+        except (OverflowError, ValidationError):  # an integer beyond 64 bits; options the model refuses
+            return None
+        if codes.size and (codes.min() < 0 or codes.max() > MAX_ANSWER_CODE):
+            return None
+        return request
+
+
+def _plain_vector(vector: object) -> bool:
+    """A response vector that keeps the schema's rules for its keys, id, group and the answers' container."""
+    if type(vector) is not dict or not vector.keys() <= _VECTOR_KEYS:
+        return False
+    respondent, group = vector.get("id"), vector.get("group")
+    return (
+        type(respondent) is str
+        and 1 <= len(respondent) <= MAX_ID_LENGTH
+        and (group is None or (type(group) is str and len(group) <= MAX_GROUP_LENGTH))
+        and type(vector.get("answers")) is dict
+    )
 
 
 class ExcludedItemOut(_Strict):

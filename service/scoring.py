@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-from itertools import chain
 from typing import Any
 
 import numpy as np
@@ -35,7 +34,7 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
     x = _answer_matrix(loaded, request)
     groups = _resolve_groups(loaded, request)
     result = scorer.score(x, groups, method=request.options.method)
-    excluded = {g: [{"item": i, "reason": r} for i, r in scorer.excluded_for(g)] for g in scorer.plans}
+    excluded = loaded.excluded_items
     # Plain dicts (the ScoreResult shape) instead of one model per respondent: the batch hot path.
     columns = [
         _json_floats(array)
@@ -43,7 +42,7 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
     ]
     results = [
         {
-            "id": vector["id"],
+            "id": respondent,
             "group": g,
             "theta": theta,
             "se": se,
@@ -51,14 +50,20 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
             "scale_se": scale_se,
             "items_answered": n_items,
             "excluded_items": excluded[g],
-            "flags": list(flags),
+            "flags": flags,  # a tuple: orjson writes it as the array it is
             "person_fit_lz_star": lz,
             "summed_score": None,
             "summed_score_theta": None,
             "summed_score_se": None,
         }
-        for vector, g, theta, se, scale, scale_se, n_items, flags, lz in zip(
-            request.responses, groups, *columns[:4], result.n_answered.tolist(), result.flags, columns[4], strict=True
+        for respondent, g, theta, se, scale, scale_se, n_items, flags, lz in zip(
+            [vector["id"] for vector in request.responses],
+            groups,
+            *columns[:4],
+            result.n_answered.tolist(),
+            result.flags,
+            columns[4],
+            strict=True,
         )
     ]
     if request.options.include_summed_score:
@@ -75,12 +80,13 @@ def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
     """(n_vectors, n_items) answers, NaN where none was given; errors name the earliest offending vector.
 
     Vectors usually share one key order: each distinct layout of keys is placed with one column
-    lookup, reading the values at C speed.
+    lookup, its values taken from the request's answer codes (one int64 array of every answer).
     """
-    scorer = loaded.scorer
-    index = {item: j for j, item in enumerate(scorer.item_ids)}
-    limits = np.asarray([scorer.item_categories[item] for item in scorer.item_ids], dtype=np.int64)
-    x = np.full((len(request.responses), len(scorer.item_ids)), np.nan)
+    index, limits = loaded.item_index, loaded.item_limits
+    x = np.full((len(request.responses), limits.size), np.nan)
+    codes = request.answer_codes()
+    lengths = np.fromiter((len(v["answers"]) for v in request.responses), dtype=np.int64, count=len(request.responses))
+    starts = np.cumsum(lengths) - lengths
     layouts: dict[tuple[str, ...], list[int]] = {}
     for i, vector in enumerate(request.responses):
         layouts.setdefault(tuple(vector["answers"]), []).append(i)
@@ -92,11 +98,8 @@ def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
         if (cols < 0).any():
             problems.append(_unknown_item(loaded, request, members[0], keys[int(np.flatnonzero(cols < 0)[0])]))
             continue
-        values = np.fromiter(
-            chain.from_iterable(request.responses[i]["answers"].values() for i in members),
-            dtype=np.int64,
-            count=len(members) * len(keys),
-        ).reshape(len(members), len(keys))
+        rows = np.asarray(members, dtype=np.int64)
+        values = codes[starts[rows][:, None] + np.arange(len(keys))]
         outside = (values < 0) | (values >= limits[cols][None, :])
         if outside.any():
             r, c = (int(v[0]) for v in np.nonzero(outside))
@@ -112,7 +115,7 @@ def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
                 )
             )
             continue
-        x[np.ix_(np.asarray(members, dtype=np.int64), cols)] = values
+        x[np.ix_(rows, cols)] = values
     if problems:
         raise min(problems, key=lambda p: p[0])[1]
     return x

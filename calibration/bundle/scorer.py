@@ -229,11 +229,12 @@ class BundleScorer:
             (n_answered == 0, FLAG_NO_ANSWERS),
             ((n_answered > 0) & (n_answered < minimum), FLAG_FEW_ITEMS),
             (extreme, FLAG_EXTREME),
-            (np.nan_to_num(person_fit, nan=0.0) < PERSON_FIT_CUTOFF, FLAG_MISFIT),
+            (person_fit < PERSON_FIT_CUTOFF, FLAG_MISFIT),  # NaN (no fit) compares False
         )
-        flags: list[tuple[str, ...]] = [()] * n
-        for i in np.flatnonzero(np.logical_or.reduce([mask for mask, _ in marks])):
-            flags[i] = tuple(name for mask, name in marks if mask[i])
+        # One code per row (a bit per flag), each distinct code spelt out once.
+        code = sum(mask.astype(np.int64) << bit for bit, (mask, _) in enumerate(marks)).tolist()
+        spelt = {c: tuple(name for bit, (_, name) in enumerate(marks) if c >> bit & 1) for c in set(code)}
+        flags = [spelt[c] for c in code]
         return ScoredBatch(
             theta=theta,
             se=se,

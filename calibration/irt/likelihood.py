@@ -19,7 +19,7 @@ import contextlib
 import functools
 import os
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import ParamSpec, TypeVar
@@ -57,12 +57,30 @@ def _pool_and_blas() -> tuple[ThreadPoolExecutor, ThreadpoolController]:
         return _POOL, _BLAS
 
 
-def single_threaded_blas() -> contextlib.AbstractContextManager[object]:
+_BLAS_HOLDS = 0
+_BLAS_LOCK = threading.Lock()
+
+
+@contextlib.contextmanager
+def single_threaded_blas() -> Iterator[None]:
     """BLAS held to one thread inside the block (equitheta splits its large work into row blocks itself).
 
     Small products gain nothing from BLAS threads, and idle BLAS threads spin on the other core.
+    BLAS's thread count is one setting for the whole process, so only the outermost of nested (or
+    concurrent) holds sets and restores it; the rest cost a counter (the scoring service holds BLAS
+    for its whole life, so a request's scoring calls do not set it again and again).
     """
-    return _pool_and_blas()[1].limit(limits=1, user_api="blas")
+    global _BLAS_HOLDS
+    with _BLAS_LOCK:
+        limiter = _pool_and_blas()[1].limit(limits=1, user_api="blas") if _BLAS_HOLDS == 0 else None
+        _BLAS_HOLDS += 1
+    try:
+        yield
+    finally:
+        with _BLAS_LOCK:
+            _BLAS_HOLDS -= 1
+            if limiter is not None:
+                limiter.restore_original_limits()
 
 
 def with_single_threaded_blas(function: Callable[P, T]) -> Callable[P, T]:
@@ -111,10 +129,12 @@ class QuadratureGrid:
         if not self.lower < self.upper:
             raise ValueError("quadrature lower bound must be below the upper bound")
 
-    @property
+    @functools.cached_property
     def points(self) -> FloatArray:
-        """The equally spaced grid points."""
-        return np.linspace(self.lower, self.upper, self.n_points)
+        """The equally spaced grid points (computed once per grid; read-only)."""
+        points = np.linspace(self.lower, self.upper, self.n_points)
+        points.flags.writeable = False
+        return points
 
 
 # The calibration's grid: 49 equally spaced points on -6..6 (equitheta's own default; scoring uses 61).
@@ -170,17 +190,19 @@ def checked_responses(responses: FloatArray, n_categories: IntArray) -> FloatArr
     if x.shape[0] == 0:
         return x
     # Cheap passes first (column minima and maxima ignore NaN; NaN - floor(NaN) > 0 is False); only
-    # a table that fails one is searched cell by cell for the first bad code.
+    # a table that fails one is searched cell by cell for the first bad code. The range comes first:
+    # once it holds there is no infinity, so the fractional pass raises no floating-point warning.
     low, high = np.fmin.reduce(x, axis=0), np.fmax.reduce(x, axis=0)
-    fractional = False
+    bad = bool((low < 0).any() or (high >= k).any())
     for start in range(0, x.shape[0], CHECK_ROWS):  # in blocks: no full-size temporary
+        if bad:
+            break
         block = x[start : start + CHECK_ROWS]
-        with np.errstate(invalid="ignore"):  # inf - floor(inf) is NaN; the maxima catch inf
-            fractional = fractional or bool(np.any(block - np.floor(block) > 0))
-    if np.any(low < 0) or np.any(high >= k) or fractional:
+        bad = bool((block - np.floor(block) > 0).any())
+    if bad:
         answered = ~np.isnan(x)
-        bad = answered & ((x < 0) | (x >= k[None, :]) | (x != np.floor(x)))
-        row, item = (int(v[0]) for v in np.nonzero(bad))
+        cells = answered & ((x < 0) | (x >= k[None, :]) | (x != np.floor(x)))
+        row, item = (int(v[0]) for v in np.nonzero(cells))
         raise ValueError(
             f"responses row {row}, item {item}: code {x[row, item]:g} is not a category of the item (0..{k[item] - 1})"
         )
@@ -254,9 +276,9 @@ def build_design(responses: FloatArray, n_categories: IntArray) -> ResponseDesig
     n_categories = np.asarray(n_categories, dtype=np.int64)
     missing = np.isnan(responses)
     complete = not missing.any()
-    column_item, column_category = design_columns(tuple(int(k) for k in n_categories))
+    column_item, column_category = design_columns(tuple(n_categories.tolist()))
     filled = responses if complete else np.where(missing, 0.0, responses)
-    if np.all(n_categories == 2):
+    if (n_categories == 2).all():
         # Dichotomous test: the indicator of category 1 is the (filled) response itself.
         indicators = filled
     else:

@@ -43,28 +43,38 @@ def person_fit_lz(
     k = np.arange(params.max_categories)
 
     def dichotomous(rows: slice) -> None:
-        # The same statistic with every item right/wrong: (n, J) arrays instead of (n, J, K).
+        # The same statistic with every item right/wrong: (n, J) arrays instead of (n, J, K). With
+        # d = P1 P0 the derivatives are dP1/dtheta = a d and r1 - r0 = a, so every weighted sum is a
+        # product of an (n, J) array with a, a^2 or ones (over the answered items only).
         ok = answered[rows]
-        eta = params.slopes[None, :] * theta[rows, None] + params.intercepts[None, :, 0]
+        some = ok.sum(axis=1) > 0
+        mask = None if ok.all() else ok
+        a = params.slopes
+
+        def total(terms: FloatArray, weights: FloatArray) -> FloatArray:
+            return (terms if mask is None else np.where(mask, terms, 0.0)) @ weights
+
+        p1 = params.intercepts[:, 0] + theta[rows, None] * a
+        np.negative(p1, out=p1)
         with np.errstate(over="ignore"):
-            p1 = 1.0 / (1.0 + np.exp(-eta))
+            np.exp(p1, out=p1)
+        p1 += 1.0
+        np.reciprocal(p1, out=p1)
         p0 = 1.0 - p1
-        log_p1, log_p0 = np.log(np.maximum(p1, PROBABILITY_FLOOR)), np.log(np.maximum(p0, PROBABILITY_FLOOR))
-        statistic = np.sum(np.where(ok, (codes[rows] - p1) * (log_p1 - log_p0), 0.0), axis=1)
-        w1, w0 = log_p1, log_p0
+        d = p1 * p0
+        log_ratio = np.log(np.maximum(p1, PROBABILITY_FLOOR))
+        log_ratio -= np.log(np.maximum(p0, PROBABILITY_FLOOR))  # w1 - w0 before the correction
+        statistic = total((codes[rows] - p1) * log_ratio, np.ones_like(a))
         if corrected:
-            d1 = params.slopes[None, :] * p1 * p0  # dP1/dtheta; dP0/dtheta = -d1
-            r1 = np.where(p1 > PROBABILITY_FLOOR, d1 / np.maximum(p1, PROBABILITY_FLOOR), 0.0)
-            r0 = np.where(p0 > PROBABILITY_FLOOR, -d1 / np.maximum(p0, PROBABILITY_FLOOR), 0.0)
-            slope_w = np.sum(np.where(ok, d1 * (log_p1 - log_p0), 0.0), axis=1)
-            slope_r = np.sum(np.where(ok, d1 * (r1 - r0), 0.0), axis=1)
+            slope_w, slope_r = total(d * log_ratio, a), total(d, a * a)
             c = np.where(slope_r > 0, slope_w / np.maximum(slope_r, PROBABILITY_FLOOR), 0.0)
-            w1, w0 = log_p1 - c[:, None] * r1, log_p0 - c[:, None] * r0
+            log_ratio -= c[:, None] * a  # w~1 - w~0 = (w1 - w0) - c (r1 - r0)
             if prior is not None:
                 statistic = statistic + c * (-(theta[rows] - prior.mean) / prior.sd**2)
-        var = np.where(ok, p1 * p0 * (w1 - w0) ** 2, 0.0).sum(axis=1)
+        log_ratio *= log_ratio
+        var = total(d * log_ratio, np.ones_like(a))
         with np.errstate(invalid="ignore", divide="ignore"):
-            out[rows] = np.where((ok.sum(axis=1) > 0) & (var > 0), statistic / np.sqrt(var), np.nan)
+            out[rows] = np.where(some & (var > 0), statistic / np.sqrt(var), np.nan)
 
     def block(rows: slice) -> None:
         # Plain probabilities suffice here (no far-tail precision needed); floor them before the log.

@@ -7,6 +7,7 @@ chunks of rows so memory stays bounded. Responses are validated category codes
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -89,10 +90,9 @@ def eap_scores(
     prior = prior or NormalPrior()
     x = checked_responses(responses, params.n_categories)
     points = grid.points
-    log_prior = normal_log_weights(points, prior.mean, prior.sd)
+    log_prior, moments = _eap_weights(grid, prior)
     theta = np.empty(x.shape[0])
     psd = np.empty(x.shape[0])
-    moments = np.stack([np.ones_like(points), points, points * points], axis=1)
     n_answered = np.empty(x.shape[0], dtype=np.int64)
     extreme = np.empty(x.shape[0], dtype=bool)
     if tables is None:
@@ -110,6 +110,17 @@ def eap_scores(
 
     run_blocks(block, x.shape[0], chunk_size, workers=workers)
     return ThetaScores(theta=theta, se=psd, n_answered=n_answered, extreme=extreme, method=METHOD_EAP)
+
+
+@functools.lru_cache(maxsize=64)
+def _eap_weights(grid: QuadratureGrid, prior: NormalPrior) -> tuple[FloatArray, FloatArray]:
+    """The prior's log weights (Q,) and the moment columns 1, theta, theta^2 (Q, 3) of a grid: once per grid and
+    prior (a service scores one vector at a time with the same two)."""
+    points = grid.points
+    log_prior = normal_log_weights(points, prior.mean, prior.sd)
+    moments = np.stack([np.ones_like(points), points, points * points], axis=1)
+    log_prior.flags.writeable = moments.flags.writeable = False
+    return log_prior, moments
 
 
 def score_tables(params: ItemParameters, grid: QuadratureGrid) -> tuple[FloatArray, FloatArray]:

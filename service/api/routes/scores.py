@@ -6,11 +6,11 @@ Dependencies run in the order declared: the caller's scope (401/403), the batch 
 from __future__ import annotations
 
 import orjson
-from fastapi import APIRouter
+from fastapi import APIRouter, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
-from service.api.deps import DefaultBundle, MetricsDep, PinnedBundle, ScoreBatch, ScoreScope
+from service.api.deps import DefaultBundle, PinnedBundle, ScoreBatch, ScoreScope
 from service.api.docs import ok_example, problem_responses
 from service.metrics import Metrics
 from service.middleware import OrjsonRoute
@@ -40,12 +40,12 @@ async def _answer(loaded: LoadedBundle, body: ScoreRequest, metrics: Metrics) ->
 
 
 @router.post("/v1/bundles/{name}/scores", response_model=ScoreResponse, responses=_ANSWERS)
-async def score_default(_: ScoreScope, body: ScoreBatch, loaded: DefaultBundle, metrics: MetricsDep) -> Response:
+async def score_default(_: ScoreScope, body: ScoreBatch, loaded: DefaultBundle, request: Request) -> Response:
     """Score with the version the ``production`` alias points at, else the newest version."""
-    return await _answer(loaded, body, metrics)
+    return await _answer(loaded, body, request.app.state.metrics)
 
 
 @router.post("/v1/bundles/{name}/versions/{version}/scores", response_model=ScoreResponse, responses=_ANSWERS)
-async def score_version(_: ScoreScope, body: ScoreBatch, loaded: PinnedBundle, metrics: MetricsDep) -> Response:
+async def score_version(_: ScoreScope, body: ScoreBatch, loaded: PinnedBundle, request: Request) -> Response:
     """Score with one pinned version."""
-    return await _answer(loaded, body, metrics)
+    return await _answer(loaded, body, request.app.state.metrics)
