@@ -237,10 +237,10 @@ def _expected_information(params: ItemParameters, answered: np.ndarray | None, t
         np.subtract(upper_star, star, out=prob)
         np.subtract(upper_w, w, out=deriv)
         deriv *= deriv
-        positive = prob > PROBABILITY_FLOOR
-        np.divide(deriv, prob, out=deriv, where=positive)
-        if not positive.all():
-            deriv[~positive] = 0.0  # a category beyond double precision adds nothing
+        # W_up - W = (P*_up - P*)(1 - P*_up - P*) is never larger than the category's probability, so a
+        # category at or below the floor (beyond double precision) adds at most its own tiny probability.
+        np.maximum(prob, PROBABILITY_FLOOR, out=prob)
+        deriv /= prob
         total += deriv
         upper_star, upper_w = star, w
     return _answered_sum(total, answered, a * a)
