@@ -6,8 +6,9 @@ Baseline in the same process: ``/healthz`` through the same app. Figures: CPU ms
 /healthz, one 40-item vector and 1,000 vectors, and one vector's cost as a multiple of /healthz's
 (speed issue target: a single-vector score at least half the /healthz rate, i.e. at most 2x its cost).
 Every figure is measured twice; the request log lines go to stderr (send them to /dev/null, as a
-deployment sends them to its log pipe: writing them is part of every request). ``--code PATH`` measures another checkout of equitheta (e.g. a git
-worktree of an older commit) with the same harness, for a before/after comparison.
+deployment sends them to its log pipe: writing them is part of every request). ``--code PATH``
+measures another checkout of equitheta (e.g. a git worktree of an older commit) with the same
+harness, for a before/after comparison.
 """
 
 from __future__ import annotations

@@ -26,6 +26,9 @@ InvarianceModel = Literal["configural", "metric", "scalar", "partial"]
 """Rungs of the invariance ladder."""
 Scope = Literal["score", "read", "publish"]
 """What an API key may do."""
+LinkMethod = Literal["fixed-parameter", "stocking-lord", "haebara"]
+"""How a new calibration is put on an earlier one's scale: its link items held at the earlier values, or
+linking constants that match the link items' test (Stocking-Lord) or item (Haebara) characteristic curves."""
 
 ITEM_MODELS: tuple[str, ...] = get_args(ItemModel)
 SCORING_METHODS: tuple[str, ...] = get_args(ScoringMethod)
@@ -33,3 +36,4 @@ POLICY_STATUSES: tuple[str, ...] = get_args(PolicyStatus)
 DIF_ACTIONS: tuple[str, ...] = get_args(DifAction)
 EFFECT_LEVELS: tuple[str, ...] = get_args(EffectLevel)
 SCOPES: tuple[str, ...] = get_args(Scope)
+LINK_METHODS: tuple[str, ...] = get_args(LinkMethod)

@@ -33,9 +33,15 @@ def content_hash(document: dict[str, Any]) -> str:
     return hashlib.sha256(canonical_bytes(body)).hexdigest()
 
 
+def document_of(bundle: Bundle) -> dict[str, Any]:
+    """The bundle as a JSON document; optional sections added by later schema versions are left out when
+    empty, so a document written by an earlier version is written back byte for byte (its hash still holds)."""
+    return bundle.model_dump(mode="json", exclude={"link"} if bundle.link is None else None)
+
+
 def seal(bundle: Bundle, *, version: int | None = None) -> Bundle:
     """Return the bundle with ``version`` set (if given) and its hash computed."""
-    document = bundle.model_dump(mode="json")
+    document = document_of(bundle)
     if version is not None:
         document["version"] = version
     document["hash"] = content_hash(document)
@@ -44,7 +50,7 @@ def seal(bundle: Bundle, *, version: int | None = None) -> Bundle:
 
 def to_bytes(bundle: Bundle) -> bytes:
     """The stored form: canonical JSON including the hash."""
-    return canonical_bytes(bundle.model_dump(mode="json"))
+    return canonical_bytes(document_of(bundle))
 
 
 def from_bytes(data: bytes, *, source: str, location: str | None = None) -> Bundle:

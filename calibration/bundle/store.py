@@ -30,7 +30,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Protocol
 
-from calibration.bundle.canonical import canonical_bytes, seal
+from calibration.bundle.canonical import canonical_bytes, document_of, seal
 from calibration.bundle.schema import Bundle, valid_alias, valid_name
 from calibration.errors import (
     BundleError,
@@ -156,7 +156,7 @@ def calibration_fingerprint(bundle: Bundle) -> str:
     and hold the same results: publishing the second would add a version that differs only
     in its time stamp.
     """
-    document = {k: v for k, v in bundle.model_dump(mode="json").items() if k not in PUBLICATION_FIELDS}
+    document = {k: v for k, v in document_of(bundle).items() if k not in PUBLICATION_FIELDS}
     return hashlib.sha256(canonical_bytes(document)).hexdigest()
 
 

@@ -128,6 +128,21 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:
         type=Path,
         help="CSV (item, group, status, note): reviewer decisions that override the proposed policy",
     )
+    link = cal.add_argument_group("linking to an earlier version (scores of both on one scale)")
+    link.add_argument(
+        "--link-to",
+        metavar="NAME@VERSION",
+        help="put this calibration on that published bundle's scale (NAME@ALIAS works too): common items "
+        "are screened for drift, the clean ones anchor the link, new items are calibrated onto the scale; "
+        "the reference group defaults to the parent's, and the parent's scoring and reporting scale are kept",
+    )
+    link.add_argument(
+        "--link-method",
+        choices=["fixed-parameter", "stocking-lord", "haebara"],
+        default="fixed-parameter",
+        help="hold the link items at their published parameters, or find linking constants that match the "
+        "link items' test (stocking-lord) or item (haebara) characteristic curves",
+    )
     scale = cal.add_argument_group("reporting scale (score = mean + sd * theta, rounded and bounded)")
     scale.add_argument("--report-mean", type=float, default=500.0, help="reporting score at theta = 0")
     scale.add_argument("--report-sd", type=_positive_float, default=100.0, help="reporting points per theta unit")

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from typing import TYPE_CHECKING
 
-from calibration.bundle import Bundle, parse_reference
+from calibration.bundle import Bundle, parse_reference, resolve
 from calibration.bundle.store import find_identical
 from calibration.cli import store_from
 from calibration.cli.console import ProgressReporter, out_console
@@ -14,12 +14,14 @@ from calibration.io import ResponseData, read_item_spec, read_policy_overrides, 
 
 if TYPE_CHECKING:  # the numerical packages load only once the inputs have been read and checked
     from calibration.pipeline import PipelineSettings, PolicyOverride
+    from calibration.pipeline.link import LinkRequest
 
 STAGES = {
     "screen": "observed-score and all-other-anchor DIF screening",
     "scalar": "scalar model (all items equal across groups)",
     "test": "anchored DIF tests and the invariance ladder",
     "final": "final calibration under the item policy",
+    "link": "link to the earlier version: drift screening and the fit on its scale",
     "quality": "quality checks and conversion tables",
 }
 
@@ -66,12 +68,17 @@ def run_calibrate(args: argparse.Namespace) -> int:
     rows = read_policy_overrides(args.policy_overrides) if args.policy_overrides else []
     store = store_from(args.store)
     from calibration.pipeline import PolicyOverride, prepare_data
+    from calibration.pipeline.link import LinkRequest, check_link_request, link_reference_group
 
     settings = settings_from_args(args)
     overrides = [PolicyOverride(*row) for row in rows]
-    # Every check that needs no fit (sizes, overrides, named anchors) answers before any work starts.
-    prepare_data(data, settings=settings, reference_group=args.reference_group, overrides=overrides)
-    bundle = _run_calibration(data, args.name, settings, args.reference_group, overrides)
+    link = LinkRequest(resolve(store, args.link_to), args.link_method) if args.link_to else None
+    reference_group = link_reference_group(data, link, args.reference_group)
+    # Every check that needs no fit (sizes, overrides, named anchors, the link) answers before any work starts.
+    if link is not None:
+        check_link_request(link, settings)
+    prepare_data(data, settings=settings, reference_group=reference_group, overrides=overrides)
+    bundle = _run_calibration(data, args.name, settings, reference_group, overrides, link)
     console = out_console()
     # Render first: once the store holds the version, nothing may fail any more.
     with console.capture() as captured:
@@ -99,12 +106,13 @@ def run_calibrate(args: argparse.Namespace) -> int:
     return 0
 
 
-def _run_calibration(
+def _run_calibration(  # noqa: PLR0913 - run_calibrate's checked inputs, passed on
     data: ResponseData,
     name: str,
     settings: PipelineSettings,
     reference_group: str | None,
     overrides: list[PolicyOverride],
+    link: LinkRequest | None,
 ) -> Bundle:
     from calibration.pipeline import calibrate_data
 
@@ -112,7 +120,7 @@ def _run_calibration(
 
         def report(stage: str, step: int, value: float) -> None:
             label = STAGES.get(stage, stage)
-            if stage in ("scalar", "final") and step:
+            if stage in ("scalar", "final", "link") and step:
                 label += f": EM iteration {step}, log-likelihood {value:,.3f}"
             elif stage in ("screen", "test") and step:
                 label += f": {step} of {int(value)} item x group tests"
@@ -120,6 +128,12 @@ def _run_calibration(
 
         # Non-convergence is reported in the bundle's warnings (the pipeline's fits do not warn).
         outcome = calibrate_data(
-            data, name=name, settings=settings, reference_group=reference_group, overrides=overrides, progress=report
+            data,
+            name=name,
+            settings=settings,
+            reference_group=reference_group,
+            overrides=overrides,
+            progress=report,
+            link=link,
         )
     return outcome.bundle

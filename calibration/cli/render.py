@@ -72,12 +72,62 @@ def print_calibration_summary(bundle: Bundle) -> None:
     console.print(table)
     for item in bundle.excluded_items:
         console.print(f"  left out {item.id}: {item.reason}", highlight=False)
+    if bundle.link is not None:
+        print_link(bundle)
     if grouped:
         _print_groups(bundle)
         print_policy_evidence(bundle)
         _print_ladder(bundle)
     for warning in bundle.quality.warnings:
         console.print(f"  warning: {warning}", highlight=False)
+
+
+def print_link(bundle: Bundle) -> None:
+    """The link to the parent: method, constants, link items, and every common item's drift test."""
+    link = bundle.link
+    if link is None:
+        return
+    console = out_console()
+    constants = link.constants
+    grouped = len(bundle.metric.groups) > 1
+    who = f"reference group {bundle.metric.reference_group}" if grouped else "respondents"
+    slope_se = "" if constants.slope_se is None else f" (SE {constants.slope_se:.3f})"
+    intercept_se = "" if constants.intercept_se is None else f" (SE {constants.intercept_se:.3f})"
+    console.print(
+        f"  on the scale of {link.parent} ({link.method} link, {link.rounds} purification round(s)): "
+        f"theta({link.parent}) = {constants.slope:.3f}{slope_se} x theta(this cycle's {who}) "
+        f"+ {constants.intercept:.3f}{intercept_se}",
+        highlight=False,
+    )
+    console.print(
+        f"  link items ({len(link.link_items)}): {', '.join(link.link_items)}; new items ({len(link.new_items)}): "
+        f"{', '.join(link.new_items) or 'none'}; kept out for drift: {', '.join(link.drifted_items) or 'none'}",
+        highlight=False,
+    )
+    for item in link.not_linked:
+        console.print(f"  not linked {item.item}: {item.reason}", highlight=False)
+    table = new_table(
+        f"drift of the common items against {link.parent} (FDR across the common items; effect in theta units)",
+        ["item", "G2 (df)", "p adj.", "effect (95% CI)", "level", "published b", "this cycle b", "link"],
+        right=("G2 (df)", "p adj."),
+    )
+    for row in link.drift:
+        low, high = effect_interval(row.effect_theta or 0.0, row.effect_theta_se or float("nan"))
+        effect = dash(row.effect_theta, ".2f") + ("" if row.effect_theta_se is None else f" ({low:.2f}-{high:.2f})")
+        published = "  ".join(f"{-c / row.parent_slope:.2f}" for c in row.parent_intercepts)
+        own = "  ".join(f"{-c / row.slope:.2f}" for c in row.intercepts)
+        table.add_row(
+            row.item,
+            f"{row.g2:.1f} ({row.df})",
+            dash(row.p_adjusted, ".3g"),
+            effect,
+            row.level,
+            published,
+            own,
+            "DRIFTED: out" if row.drifted else "in",
+        )
+    console.print(table)
+    console.print(f"  {link.caution}", highlight=False)
 
 
 def _print_groups(bundle: Bundle) -> None:

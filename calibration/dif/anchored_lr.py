@@ -30,7 +30,7 @@ from calibration.estimation import (
     MultiGroupFit,
     fit_item_given_offsets,
 )
-from calibration.irt.likelihood import QuadratureGrid, build_design, log_likelihood_grid, split_log_table
+from calibration.irt.likelihood import QuadratureGrid, build_design, log_likelihood_grid, one_item_log_likelihood
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
 
 EFFECT_SE_STEP = 1e-5
@@ -101,12 +101,6 @@ def _base_logliks(
     return out
 
 
-def _item_loglik(params: ItemParameters, j: int, x: FloatArray, points: FloatArray) -> FloatArray:
-    one = params.subset([j])
-    design = build_design(x[:, None], one.n_categories)
-    return log_likelihood_grid(one, points, design, tables=split_log_table(one, points, design))
-
-
 def _effect_se(fit: HeldItemFit, mean: float, sd: float) -> float:
     """Delta-method SE of the unsigned effect: its numerical gradient through the observed covariance."""
     covariance = fit.covariance()
@@ -134,7 +128,7 @@ def _held_rows(
     rows = base[g]
     x = responses[rows.rows, j]
     k_j = int(fit.template.n_categories[j])
-    return HeldLikelihood.from_offset(rows.loglik - _item_loglik(fit.group_params(g), j, x, points), x, k_j)
+    return HeldLikelihood.from_offset(rows.loglik - one_item_log_likelihood(fit.group_params(g), j, x, points), x, k_j)
 
 
 def _fitted_latent(latent: LatentSpec, vector: FloatArray) -> LatentSpec:
@@ -156,12 +150,10 @@ def _test_item(  # noqa: PLR0913 - the cell, the base model and its data
     omnibus_only: bool = False,
 ) -> ItemGroupTest:
     points = settings.quadrature.points
-    template = fit.template
-    k_j = int(template.n_categories[j])
+    k_j = int(fit.template.n_categories[j])
     # The other items' likelihood, split by the studied item's answer once for all nested models
     # (the reference group's split once for every focal group).
     held = [reference, _held_rows(fit, base, responses, j, g, points)]
-    one = template.subset([j])
     start = np.stack([fit.tables[0, j : j + 1, :k_j], fit.tables[g, j : j + 1, :k_j]])
     latent = LatentSpec(
         mean=np.array([0.0, fit.latent_mean[g]]),
@@ -169,6 +161,32 @@ def _test_item(  # noqa: PLR0913 - the cell, the base model and its data
         free_mean=np.array([False, True]),
         free_sd=np.array([False, True]),
     )
+    return nested_item_tests(
+        held, fit.template.subset([j]), start, latent, settings, item=j, group=g, omnibus_only=omnibus_only
+    )
+
+
+def nested_item_tests(  # noqa: PLR0913 - the held rows, the item and keyword-only options
+    held: list[HeldLikelihood],
+    one: ItemParameters,
+    start: FloatArray,
+    latent: LatentSpec,
+    settings: EMSettings,
+    *,
+    item: int,
+    group: int,
+    fixed: np.ndarray | None = None,
+    omnibus_only: bool = False,
+) -> ItemGroupTest:
+    """The nested one-item models M0, M1, M2 of one item in a reference (``held[0]``) and a focal group.
+
+    ``one`` is the item's one-item template, ``start`` its (2, 1, K) tables, ``latent`` the two
+    groups' latent densities (the focal mean and SD are re-estimated in every model; the effect is
+    weighted by the focal density given). ``fixed`` (2, 1, K) holds slots at ``start``: a reference
+    with no rows and known parameters (an earlier calibration cycle) is a drift test between cycles.
+    """
+    k_j = int(one.n_categories[0])
+    focal_mean, focal_sd = float(latent.mean[1]), float(latent.sd[1])  # the given density weights the effect
     designs = [np.zeros(k_j, dtype=bool), np.arange(k_j) > 0, np.ones(k_j, dtype=bool)]
     if omnibus_only:
         designs = [designs[0], designs[2]]
@@ -178,7 +196,7 @@ def _test_item(  # noqa: PLR0913 - the cell, the base model and its data
         group_free[1, 0] = free_slots
         if fits:  # each model nests the one before it: start from that one's estimates
             start, latent = fits[-1].tables, _fitted_latent(latent, fits[-1].vector)
-        fits.append(fit_item_given_offsets(held, one, start, latent, group_free, settings))
+        fits.append(fit_item_given_offsets(held, one, start, latent, group_free, settings, fixed=fixed))
     log_liks = [f.log_likelihood for f in fits]
     ll0, ll2 = log_liks[0], log_liks[-1]
     ll1 = log_liks[1] if not omnibus_only else float("nan")
@@ -187,11 +205,10 @@ def _test_item(  # noqa: PLR0913 - the cell, the base model and its data
     g2_uni = max(2 * (ll1 - ll0), 0.0) if not omnibus_only else float("nan")
     final = fits[-1].tables
     ref_params, foc_params = fits[-1].group_params(0), fits[-1].group_params(1)
-    focal_mean, focal_sd = float(fit.latent_mean[g]), float(fit.latent_sd[g])
     effect, signed = effect_size(ref_params, foc_params, focal_mean, focal_sd)
     return ItemGroupTest(
-        item=j,
-        group=g,
+        item=item,
+        group=group,
         g2_omnibus=g2_all,
         df_omnibus=k_j,
         p_omnibus=float(stats.chi2.sf(g2_all, k_j)),

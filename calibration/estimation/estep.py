@@ -150,6 +150,12 @@ class HeldLikelihood:
         codes = np.where(np.isnan(answers), -1, answers).astype(np.int64)
         return cls([scaled[codes == k] for k in range(n_categories)], scaled[codes < 0], float(peak.sum()))
 
+    @classmethod
+    def without_rows(cls, n_categories: int, n_points: int) -> HeldLikelihood:
+        """A group with no respondents (an earlier cycle whose item parameters are held at known values)."""
+        empty = np.zeros((0, n_points))
+        return cls([empty] * n_categories, empty, 0.0)
+
 
 def held_item_counts(
     rows: list[HeldLikelihood],

@@ -256,13 +256,15 @@ class HeldItemFit:
         return information_to_covariance(self._information())
 
 
-def fit_item_given_offsets(
+def fit_item_given_offsets(  # noqa: PLR0913 - the held rows, the item and keyword-only options
     rows: Sequence[HeldLikelihood],
     template: ItemParameters,
     start: FloatArray,
     latent: LatentSpec,
     group_free: np.ndarray,
     settings: EMSettings,
+    *,
+    fixed: np.ndarray | None = None,
 ) -> HeldItemFit:
     """Fit one item's parameters (shared or group-specific) and the focal latent density.
 
@@ -271,11 +273,12 @@ def fit_item_given_offsets(
     offsets (their log-likelihood on ``settings.quadrature``) by :meth:`HeldLikelihood.from_offset`
     and shared by every model fitted to the same item. ``template`` is the one-item parameter
     template, ``start`` its (2, 1, K) starting tables, ``group_free`` (2, 1, K) marks the focal
-    group's own slots. The focal mean and SD are estimated; the reference group's latent density
-    stays as ``latent`` gives it.
+    group's own slots and ``fixed`` (2, 1, K) the slots held at ``start`` (a reference "group" with
+    no rows whose parameters are known: an earlier calibration cycle). The focal mean and SD are
+    estimated; the reference group's latent density stays as ``latent`` gives it.
     """
     points = settings.quadrature.points
-    layout = GroupLayout.build(template, 2, group_free=group_free)
+    layout = GroupLayout.build(template, 2, group_free=group_free, fixed=fixed)
     n_item = layout.n_free
 
     def unpack(vec: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray]:

@@ -339,6 +339,13 @@ def log_likelihood_grid(
     return loglik
 
 
+def one_item_log_likelihood(params: ItemParameters, item: int, answers: FloatArray, points: FloatArray) -> FloatArray:
+    """``log P(x_i | theta_q)`` of one item (n_rows, n_points); a row without an answer (NaN) contributes 0."""
+    one = params.subset([item])
+    design = build_design(np.asarray(answers, dtype=np.float64)[:, None], one.n_categories)
+    return log_likelihood_grid(one, points, design)
+
+
 def marginal_log_likelihood(
     params: ItemParameters,
     responses: FloatArray,

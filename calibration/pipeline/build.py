@@ -30,6 +30,7 @@ from calibration.estimation import MultiGroupFit, threshold_se
 from calibration.io import ResponseData, finite_or_none
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.reliability import information_curve
+from calibration.pipeline.link import LinkStage
 from calibration.pipeline.policy import PolicyTable
 from calibration.pipeline.prepare import PreparedData
 from calibration.pipeline.settings import PipelineSettings
@@ -61,6 +62,7 @@ class Findings:
     ladder: list[LadderRow]
     quality: dict[str, GroupQuality]
     notes: list[str]
+    link: LinkStage | None = None
 
 
 def build_bundle(run: CalibrationRun, findings: Findings) -> Bundle:
@@ -69,7 +71,7 @@ def build_bundle(run: CalibrationRun, findings: Findings) -> Bundle:
     fit = findings.fit
     group_names = prepared.group_names
     sizes = np.bincount(prepared.group_index, minlength=prepared.n_groups)
-    grid = settings.scoring_quadrature
+    held = {} if findings.link is None else findings.link.held_entries
     curve = information_curve(fit.group_params(0))
     return Bundle(
         name=name,
@@ -85,16 +87,11 @@ def build_bundle(run: CalibrationRun, findings: Findings) -> Bundle:
             notes=list(data.notes),
         ),
         metric=_metric(fit, group_names, sizes),
-        items=_item_entries(prepared, fit, findings.policy),
+        items=_item_entries(prepared, fit, findings.policy, held),
         excluded_items=prepared.excluded_items,
         anchors=findings.anchors,
-        scoring=ScoringSettings(
-            method=settings.scoring_method,  # type: ignore[arg-type]
-            quadrature=QuadratureSettings(n_points=grid.n_points, lower=grid.lower, upper=grid.upper),
-            min_items_answered=settings.min_items_answered or min(5, prepared.n_items),
-            reporting_scale=settings.reporting_scale,
-        ),
-        fit=_fit_summary(fit, settings.em.quadrature, multiple=prepared.n_groups > 1),
+        scoring=_scoring(settings, prepared, findings.link),
+        fit=_fit_summary(fit, settings.em.quadrature, multiple=prepared.n_groups > 1, link=findings.link),
         quality=Quality(
             by_group=findings.quality,
             test_information=InformationTable(
@@ -106,10 +103,29 @@ def build_bundle(run: CalibrationRun, findings: Findings) -> Bundle:
         ),
         dif=findings.dif,
         invariance=findings.ladder,
+        link=None if findings.link is None else findings.link.record,
     )
 
 
-def _item_entries(prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTable) -> list[ItemEntry]:
+def _scoring(settings: PipelineSettings, prepared: PreparedData, link: LinkStage | None) -> ScoringSettings:
+    """How the service scores: from the settings, or the parent's (method, grid, prior, bounds, reporting scale)
+    when linked, so that both versions report on one scale."""
+    minimum = settings.min_items_answered or min(5, prepared.n_items)
+    if link is not None:
+        return link.parent_scoring.model_copy(update={"min_items_answered": minimum})
+    grid = settings.scoring_quadrature
+    return ScoringSettings(
+        method=settings.scoring_method,  # type: ignore[arg-type]
+        quadrature=QuadratureSettings(n_points=grid.n_points, lower=grid.lower, upper=grid.upper),
+        min_items_answered=minimum,
+        reporting_scale=settings.reporting_scale,
+    )
+
+
+def _item_entries(
+    prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTable, held: dict[int, ItemEntry]
+) -> list[ItemEntry]:
+    """Every item's entry; an item held at its published parameters (a fixed-parameter link) keeps their SEs."""
     x, k, group_names = prepared.x, prepared.k, prepared.group_names
     reference = fit.group_params(0)
     b_se = threshold_se(reference, fit.layout.index[0], fit.covariance)
@@ -136,9 +152,13 @@ def _item_entries(prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTabl
                 slope=float(reference.slopes[j]),
                 intercepts=[float(c) for c in reference.intercepts[j, : kj - 1]],
                 thresholds=[float(b) for b in reference.thresholds()[j, : kj - 1]],
-                slope_se=finite_or_none(float(fit.slot_se[0, j, 0])),
-                intercept_se=[finite_or_none(float(s)) for s in fit.slot_se[0, j, 1:kj]],
-                threshold_se=[finite_or_none(float(s)) for s in b_se[j, : kj - 1]],
+                slope_se=held[j].slope_se if j in held else finite_or_none(float(fit.slot_se[0, j, 0])),
+                intercept_se=held[j].intercept_se
+                if j in held
+                else [finite_or_none(float(s)) for s in fit.slot_se[0, j, 1:kj]],
+                threshold_se=held[j].threshold_se
+                if j in held
+                else [finite_or_none(float(s)) for s in b_se[j, : kj - 1]],
                 category_map=prepared.category_maps.get(j),
                 n_responses=int(np.sum(~np.isnan(x[:, j]))),
                 mean_score=finite_or_none(float(np.nanmean(x[:, j]))),
@@ -166,7 +186,21 @@ def _metric(fit: MultiGroupFit, group_names: list[str], sizes: np.ndarray) -> Me
     )
 
 
-def _fit_summary(fit: MultiGroupFit, em: QuadratureGrid, *, multiple: bool) -> FitSummary:
+def _scale_words(link: LinkStage | None, *, multiple: bool) -> str:
+    """How the scale was fixed, in words."""
+    if link is None:
+        return "reference group N(0,1)" + (", other groups N(mean, sd) estimated" if multiple else "")
+    record = link.record
+    how = (
+        f"{len(record.link_items)} link items held at their published values, every latent mean and SD estimated"
+        if record.method == "fixed-parameter"
+        else f"fitted on its own scale (reference group N(0,1)), then every parameter transformed with the "
+        f"{record.method} constants of {len(record.link_items)} link items"
+    )
+    return f"on the scale of {record.parent}: {how}"
+
+
+def _fit_summary(fit: MultiGroupFit, em: QuadratureGrid, *, multiple: bool, link: LinkStage | None) -> FitSummary:
     return FitSummary(
         log_likelihood=fit.log_likelihood,
         n_parameters=fit.n_parameters,
@@ -178,9 +212,12 @@ def _fit_summary(fit: MultiGroupFit, em: QuadratureGrid, *, multiple: bool) -> F
         estimation=(
             f"{'multiple-group ' if multiple else ''}marginal ML, Bock-Aitkin EM over "
             f"{em.n_points} equally spaced points on {em.lower:g}..{em.upper:g} (equitheta's default grid); "
-            "reference group N(0,1)"
-            f"{', other groups N(mean, sd) estimated' if multiple else ''}; SEs from the observed "
-            "information (central differences of the analytic marginal score)"
+            f"{_scale_words(link, multiple=multiple)}; SEs from the analytic observed information (Louis 1982)"
+            + (
+                "; SEs of the transformed parameters take the linking constants as known"
+                if link and link.record.method != "fixed-parameter"
+                else ""
+            )
             + (
                 "; the final model under the item policy: excluded cells count as not administered, so its "
                 "log-likelihood is on other data than the invariance ladder's and is not comparable with it"

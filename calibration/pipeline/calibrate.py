@@ -11,13 +11,15 @@ With one group: checks, single-group EM, quality. With several groups (a group c
    reviewer overrides;
 6. the invariance ladder (configural, metric, scalar, partial);
 7. the final calibration under the policy, with SEs;
-8. quality by group.
+8. with a link to an earlier bundle: drift screening of the common items and the calibration put on that
+   bundle's scale (calibration.pipeline.link);
+9. quality by group.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from pydantic import ValidationError
 
@@ -26,11 +28,12 @@ from calibration.dif.irt import DifOutcome
 from calibration.errors import CalibrationInputError
 from calibration.estimation import MultiGroupFit
 from calibration.io import ResponseData
-from calibration.irt.likelihood import single_threaded_blas
+from calibration.irt.likelihood import with_single_threaded_blas
 from calibration.pipeline.build import CalibrationRun, Findings, build_bundle
 from calibration.pipeline.dif import SINGLE_GROUP_ANCHORS, DifStage, ProgressCallback, run_dif_stage
 from calibration.pipeline.fits import quiet_fit
 from calibration.pipeline.invariance import invariance_ladder
+from calibration.pipeline.link import LinkRequest, check_link_request, link_reference_group, run_link_stage
 from calibration.pipeline.policy import PolicyTable
 from calibration.pipeline.prepare import PreparedData, prepare_data
 from calibration.pipeline.quality import fit_warnings, quality_by_group, review_warnings
@@ -47,7 +50,8 @@ class CalibrationOutcome:
     dif: DifOutcome | None = None
 
 
-def calibrate_data(
+@with_single_threaded_blas  # large products are split into row blocks on equitheta's own threads
+def calibrate_data(  # noqa: PLR0913 - the data and keyword-only options
     data: ResponseData,
     *,
     name: str,
@@ -55,24 +59,17 @@ def calibrate_data(
     reference_group: str | None = None,
     overrides: Sequence[PolicyOverride] = (),
     progress: ProgressCallback | None = None,
+    link: LinkRequest | None = None,
 ) -> CalibrationOutcome:
     """Calibrate a response table (one or several groups) and build the unpublished bundle.
 
-    BLAS runs single-threaded throughout: the large products are split into row blocks on
-    equitheta's own threads, and BLAS threads on the small rest only spin.
+    With ``link`` the bundle is put on an earlier bundle's scale (its reference group defaults to the
+    parent's; see :mod:`calibration.pipeline.link`). BLAS runs single-threaded throughout.
     """
-    with single_threaded_blas():
-        return _calibrate(data, name, settings or PipelineSettings(), reference_group, overrides, progress)
-
-
-def _calibrate(  # noqa: PLR0913 - calibrate_data's arguments, passed on
-    data: ResponseData,
-    name: str,
-    settings: PipelineSettings,
-    reference_group: str | None,
-    overrides: Sequence[PolicyOverride],
-    progress: ProgressCallback | None,
-) -> CalibrationOutcome:
+    settings = settings or PipelineSettings()
+    if link is not None:
+        check_link_request(link, settings)
+        reference_group = link_reference_group(data, link, reference_group)
     prepared = prepare_data(data, settings=settings, reference_group=reference_group, overrides=overrides)
     notes = list(prepared.notes)
     policy = PolicyTable(prepared.n_items, prepared.n_groups)
@@ -83,7 +80,14 @@ def _calibrate(  # noqa: PLR0913 - calibrate_data's arguments, passed on
         notes.extend(stage.notes)
         policy.apply_overrides(overrides, prepared.item_ids, prepared.group_names)
         ladder = invariance_ladder(prepared, settings.em, stage.scalar, policy, stage.outcome)
-    fit = _final_fit(prepared, settings, policy, stage, progress)
+    # A fixed-parameter link refits with SEs on the parent's scale: the own-scale fit needs none.
+    own_scale_errors = link is None or link.method != "fixed-parameter"
+    fit = _final_fit(prepared, settings, policy, stage, progress, standard_errors=own_scale_errors)
+    linked = None
+    if link is not None:
+        linked = run_link_stage(prepared, settings, policy, link, fit, progress)
+        fit = linked.fit
+        notes.extend(linked.notes)
     notes.extend(fit_warnings(prepared, fit, settings.em))
     if progress is not None:
         progress("quality", 0, fit.log_likelihood)
@@ -98,6 +102,7 @@ def _calibrate(  # noqa: PLR0913 - calibrate_data's arguments, passed on
         ladder=ladder,
         quality=quality,
         notes=notes,
+        link=linked,
     )
     bundle = _publishable(CalibrationRun(data, name, settings, prepared), findings)
     return CalibrationOutcome(
@@ -105,14 +110,16 @@ def _calibrate(  # noqa: PLR0913 - calibrate_data's arguments, passed on
     )
 
 
-def _final_fit(
+def _final_fit(  # noqa: PLR0913 - the data, the policy, the DIF stage's start and the options
     prepared: PreparedData,
     settings: PipelineSettings,
     policy: PolicyTable,
     stage: DifStage | None,
     progress: ProgressCallback | None,
+    *,
+    standard_errors: bool,
 ) -> MultiGroupFit:
-    """The calibration under the policy, with SEs: excluded cells are not administered for that group."""
+    """The calibration under the policy (SEs as asked): excluded cells are not administered for that group."""
     if progress is not None:
         progress("final", 0, 0.0)
     return quiet_fit(
@@ -121,7 +128,7 @@ def _final_fit(
         prepared.group_index,
         prepared.n_groups,
         models=prepared.models,
-        settings=settings.em,
+        settings=replace(settings.em, standard_errors=standard_errors and settings.em.standard_errors),
         group_free=policy.group_free(int(prepared.k.max())),
         start=None if stage is None else stage.outcome.anchor_fit.tables,
         progress=None if progress is None else (lambda it, ll: progress("final", it, ll)),

@@ -127,3 +127,27 @@ def test_demo_runs_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture) -> 
     assert len(scores) == 600
     assert DirectoryStore(tmp_path / "store").aliases("tidewater-skills")["production"].version == 1
     assert "measurement error" in capsys.readouterr().out
+
+
+def test_calibrate_link_to_prints_the_link_and_refuses_what_it_cannot_do(
+    published: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    # The invented second cycle (two new tasks, DOC03 drifted) linked to skills@1 of the fixture.
+    _, store_dir = published
+    store = DirectoryStore(store_dir)
+    second = tmp_path / "second.csv"
+    make_demo_responses(800, seed=6, with_sites=False, cycle=2).to_csv(second, index=False)
+    base = ["calibrate", str(second), "--name", "skills", "--store", str(store_dir)]
+    before = store.versions("skills")
+    assert main([*base, "--link-to", "skills@9"]) == 3  # no such parent: nothing is calibrated
+    assert "has no version 9" in capsys.readouterr().err
+    assert main([*base, "--link-to", "skills@1", "--report-mean", "250"]) == 2
+    assert "reporting scale" in capsys.readouterr().err
+    assert store.versions("skills") == before
+    assert main([*base, "--link-to", "skills@1", "--link-method", "haebara"]) == 0
+    out = capsys.readouterr().out
+    assert "on the scale of skills@1 (haebara link" in out and "drift of the common items" in out
+    linked = store.get("skills", store.versions("skills")[-1])
+    assert linked.link is not None and linked.link.new_items == ["NUM09", "DIG09"]
+    assert main(["bundle", "show", linked.label, "--store", str(store_dir)]) == 0
+    assert "kept out for drift" in capsys.readouterr().out

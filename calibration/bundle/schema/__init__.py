@@ -55,11 +55,13 @@ from calibration.bundle.schema.items import (
     Metric,
     PolicyEvidence,
 )
+from calibration.bundle.schema.link import LINK_CAUTION, DriftRow, Link, LinkConstants, NotLinkedItem
 from calibration.vocabulary import PolicyStatus
 
 __all__ = [
     "ALIAS_PATTERN",
     "EFFECT_LEVEL_RULE",
+    "LINK_CAUTION",
     "MAX_ABS_INTERCEPT",
     "MAX_ABS_LATENT_MEAN",
     "MAX_ABS_SLOPE",
@@ -75,6 +77,7 @@ __all__ = [
     "DifReport",
     "DifSettingsRecord",
     "Dimensionality",
+    "DriftRow",
     "ExcludedItem",
     "FitSummary",
     "Frozen",
@@ -85,8 +88,11 @@ __all__ = [
     "IrtDifRow",
     "ItemEntry",
     "ItemQuality",
+    "Link",
+    "LinkConstants",
     "LadderRow",
     "Metric",
+    "NotLinkedItem",
     "ObservedDifRow",
     "PolicyEvidence",
     "PolicyStatus",

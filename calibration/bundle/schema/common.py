@@ -6,11 +6,12 @@ import re
 
 from pydantic import BaseModel, ConfigDict
 
-SCHEMA_VERSION = "2"
+SCHEMA_VERSION = "3"
 # Schema versions this code reads. A version-1 document is verified against its stored bytes, then
 # upgraded in memory (see :func:`upgrade_document`); it keeps ``schema_version`` "1" so that a reader
-# knows its hash was taken over the version-1 form.
-READABLE_SCHEMA_VERSIONS = ("1", "2")
+# knows its hash was taken over the version-1 form. Version 3 added the optional ``link`` section (left
+# out of a document without one): a version-2 document is read, and written back, as it is.
+READABLE_SCHEMA_VERSIONS = ("1", "2", "3")
 NAME_PATTERN = r"^[a-z0-9][a-z0-9._-]{0,63}$"
 ALIAS_PATTERN = r"^[a-z][a-z0-9_-]{0,31}$"
 

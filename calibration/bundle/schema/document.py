@@ -26,6 +26,7 @@ from calibration.bundle.schema.items import (
     ItemEntry,
     Metric,
 )
+from calibration.bundle.schema.link import Link
 from calibration.irt.reporting_scale import ReportingScale
 from calibration.vocabulary import (
     ScoringMethod,
@@ -108,7 +109,7 @@ class FitSummary(Frozen):
 class Bundle(Frozen):
     """A calibration bundle. ``version`` 0 and empty ``hash`` mean "not yet published"."""
 
-    schema_version: Literal["1", "2"] = SCHEMA_VERSION
+    schema_version: Literal["1", "2", "3"] = SCHEMA_VERSION
     name: str = Field(pattern=NAME_PATTERN)
     version: int = Field(ge=0)
     created_at: str = Field(description="UTC time of the calibration, ISO 8601")
@@ -124,6 +125,7 @@ class Bundle(Frozen):
     quality: Quality
     dif: DifReport | None = None
     invariance: list[LadderRow] = Field(default_factory=list)
+    link: Link | None = Field(None, description="how this version was put on an earlier version's scale")
 
     @field_validator("items")
     @classmethod
@@ -149,6 +151,11 @@ class Bundle(Frozen):
         unknown = [a for a in self.anchors.items if a not in ids]
         if unknown:
             raise ValueError(f"anchors name items that are not in the bundle: {', '.join(unknown)}")
+        if self.link is not None:
+            linked = set(self.link.link_items) | set(self.link.drifted_items) | set(self.link.new_items)
+            missing = sorted(linked - ids)
+            if missing:
+                raise ValueError(f"the link names items that are not in the bundle: {', '.join(missing)}")
         grid = self.scoring.quadrature
         for g in self.metric.groups:
             if not grid.lower <= g.latent_mean <= grid.upper:

@@ -135,3 +135,20 @@ def test_concurrent_publishes_of_one_version_exactly_one_wins(tmp_path: Path, ls
 def test_exported_json_schema_is_current() -> None:
     # The checked-in schema file is what other tools read; it must match the code.
     assert json.loads(SCHEMA_FILE.read_text()) == Bundle.model_json_schema()
+
+
+def test_a_schema_2_document_is_written_back_byte_for_byte(tmp_path: Path) -> None:
+    # tests/data/bundle_schema_v2.json: the service's example bundle as equitheta wrote it under schema
+    # version 2 (invented data), before the optional link section existed. Read by this code and put into
+    # another store (as Redis re-seeding and store copies do), its bytes and hash must not change, or the
+    # stated hash would no longer verify.
+    from calibration.bundle import from_bytes, to_bytes
+    from calibration.bundle.canonical import canonical_bytes
+
+    raw = (Path(__file__).parents[2] / "data" / "bundle_schema_v2.json").read_bytes()
+    bundle = from_bytes(raw, source="bundle_schema_v2.json")
+    assert bundle.schema_version == "2" and bundle.link is None
+    assert to_bytes(bundle) == canonical_bytes(json.loads(raw))
+    copy, created = DirectoryStore(tmp_path).put_version(bundle)
+    assert created and copy.hash == bundle.hash
+    assert DirectoryStore(tmp_path).get(bundle.name, bundle.version) == bundle
