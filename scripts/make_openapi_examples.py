@@ -55,6 +55,38 @@ def example_bundle():  # type: ignore[no-untyped-def]
     return bundle.model_copy(update={"created_at": "2026-12-01T00:00:00Z"})
 
 
+def example_second_cycle(parent):  # type: ignore[no-untyped-def]
+    """The next cycle of 'pantry-checkout', linked to the first: a new task T7, T2 drifted, both modes 0.3 stronger."""
+    from calibration.pipeline.link import LinkRequest
+
+    rng = np.random.default_rng(8)
+    a = np.array([1.4, 1.0, 1.7, 0.9, 1.2, 1.5, 1.1])
+    b = np.array([-1.0, 0.4, 0.0, 0.3, 0.8, 1.2, 0.5])  # T2 0.8 harder than in the first cycle
+    blocks, modes = [], []
+    for g, mode in enumerate(("paper", "tablet")):
+        theta = rng.normal(0.3 + 0.2 * g, 1.0, 900)
+        bg = b.copy()
+        if g == 1:
+            bg[3] += 0.9
+        blocks.append(simulate_responses(a, bg, theta, rng))
+        modes += [mode] * 900
+    x = np.vstack(blocks)
+    data = ResponseData(
+        ids=tuple(f"Q{i:04d}" for i in range(x.shape[0])),
+        item_ids=tuple(f"T{j + 1}" for j in range(7)),
+        responses=x,
+        n_categories=np.full(7, 2),
+        models=("2pl",) * 7,
+        groups=tuple(modes),
+        source="pantry-checkout-cycle-2-invented.csv",
+    )
+    bundle = calibrate_data(data, name="pantry-checkout", link=LinkRequest(parent)).bundle
+    return bundle.model_copy(update={"created_at": "2026-12-02T00:00:00Z"})
+
+
+DIFF_PATH = "/v1/bundles/pantry-checkout/diff?from=1&to=2"
+
+
 CASES = [
     {"name": "healthz", "method": "GET", "path": "/healthz", "status": 200},
     {"name": "readyz", "method": "GET", "path": "/readyz", "status": 200},
@@ -184,6 +216,18 @@ def main() -> int:
                 response_name = case.get("response", case["name"])
                 (OUT / f"{response_name}.json").write_text(json.dumps(reply.json(), indent=1) + "\n")
                 manifest.append({**case, "response": response_name})
+        # The comparison of two versions: its own store (the replayed store holds one version); replayed by
+        # tests/service/test_api.py.
+        cycles = Path(tempfile.mkdtemp())
+        DirectoryStore(cycles).put_version(bundle)
+        second = DirectoryStore(cycles).publish(example_second_cycle(bundle))
+        (OUT / "bundle_v2.json").write_text(json.dumps(second.model_dump(mode="json"), indent=1) + "\n")
+        app = create_app(Settings(store=str(cycles), api_keys=keys, log_level="warning"))
+        with TestClient(app) as client:
+            reply = client.get(DIFF_PATH, headers={"Authorization": f"Bearer {KEYS['reader']}"})
+            assert reply.status_code == 200, reply.text
+            (OUT / "diff.json").write_text(json.dumps(reply.json(), indent=1) + "\n")
+        shutil.rmtree(cycles, ignore_errors=True)
         (OUT / "cases.json").write_text(
             json.dumps(
                 {

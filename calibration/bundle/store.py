@@ -25,7 +25,7 @@ from __future__ import annotations
 
 import hashlib
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Protocol
@@ -143,6 +143,27 @@ def resolve(store: BundleStore, reference: str) -> Bundle:
     if not versions:
         raise BundleNotFound(f"no bundle named {name!r}")
     return store.get(name, versions[-1])
+
+
+MAX_LINK_CHAIN = 100
+"""Links followed from a version to the version whose scale it uses (a longer chain is cut there)."""
+
+
+def scale_chain(get: Callable[[str, int], Bundle], bundle: Bundle) -> list[str]:
+    """Labels from ``bundle`` along its links to the version whose scale it uses (the last; itself when unlinked).
+
+    ``get(name, version)`` reads a published version (a store's ``get``, or the service's verified cache).
+    A parent that can no longer be read ends the chain at its label (its scale is still the one named).
+    """
+    chain, current = [bundle.label], bundle
+    while current.link is not None and len(chain) < MAX_LINK_CHAIN:
+        name, version = parse_reference(current.link.parent)
+        chain.append(current.link.parent)
+        try:
+            current = get(name, int(version))  # type: ignore[arg-type]
+        except BundleError:
+            break
+    return chain
 
 
 # Fields that differ between two publications of the same calibration.

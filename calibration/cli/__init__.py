@@ -182,7 +182,7 @@ def _add_score(sub: argparse._SubParsersAction) -> None:
 
 def _add_bundle(sub: argparse._SubParsersAction) -> None:
     bun = _subparser(sub, "bundle", "list, show and manage published bundles")
-    bsub = bun.add_subparsers(dest="bundle_command", required=True, metavar="{list,show,alias,alias-back,schema}")
+    bsub = bun.add_subparsers(dest="bundle_command", required=True, metavar="{list,show,diff,alias,alias-back,schema}")
     bl = _subparser(bsub, "list", "bundles, versions and aliases in a store")
     bl.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
     bs = _subparser(
@@ -193,6 +193,16 @@ def _add_bundle(sub: argparse._SubParsersAction) -> None:
     bs.add_argument("reference", help="NAME, NAME@VERSION or NAME@ALIAS")
     bs.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
     bs.add_argument("--json", action="store_true", help="print the verified bundle document")
+    bd = _subparser(
+        bsub,
+        "diff",
+        "what changed between two versions: items, policy, anchors, group densities, and the expected change in "
+        "scores for a respondent who answers the common items",
+    )
+    bd.add_argument("older", help="NAME@VERSION or NAME@ALIAS")
+    bd.add_argument("newer", help="NAME@VERSION or NAME@ALIAS")
+    bd.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    bd.add_argument("--json", action="store_true", help="print the comparison as JSON")
     ba = _subparser(bsub, "alias", "point an alias at a version")
     ba.add_argument("reference", help="NAME@VERSION")
     ba.add_argument("alias", help="alias name, e.g. production")

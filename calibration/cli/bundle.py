@@ -1,4 +1,4 @@
-"""`equitheta bundle list|show|alias|alias-back|schema`."""
+"""`equitheta bundle list|show|diff|alias|alias-back|schema`."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import json
 from calibration.bundle import Bundle, parse_reference, resolve
 from calibration.cli import UsageError, store_from
 from calibration.cli.console import new_table, out_console
-from calibration.cli.render import print_bundle_details, print_calibration_summary
+from calibration.cli.render import print_bundle_details, print_bundle_diff, print_calibration_summary
 from calibration.errors import BundleIntegrityError
 
 
@@ -48,6 +48,15 @@ def run_bundle(args: argparse.Namespace) -> int:
         else:
             print_calibration_summary(bundle)
             print_bundle_details(bundle)
+        return 0
+    if args.bundle_command == "diff":
+        from calibration.bundle.compare import compare_versions
+
+        diff = compare_versions(resolve(store, args.older), resolve(store, args.newer), store.get)
+        if args.json:
+            console.print_json(diff.model_dump_json())
+        else:
+            print_bundle_diff(diff)
         return 0
     if args.bundle_command == "alias":
         name, ref = parse_reference(args.reference)

@@ -6,6 +6,7 @@ of a rung with no freed cell, an alpha without complete rows) prints as a dash.
 
 from __future__ import annotations
 
+from calibration.bundle.compare import BundleDiff
 from calibration.bundle.schema import Bundle, IrtDifRow, ObservedDifRow
 from calibration.cli.console import dash, new_table, out_console
 from calibration.dif.effect_size import effect_interval
@@ -107,9 +108,10 @@ def print_link(bundle: Bundle) -> None:
     for item in link.not_linked:
         console.print(f"  not linked {item.item}: {item.reason}", highlight=False)
     table = new_table(
-        f"drift of the common items against {link.parent} (FDR across the common items; effect in theta units)",
-        ["item", "G2 (df)", "p adj.", "effect (95% CI)", "level", "published b", "this cycle b", "link"],
-        right=("G2 (df)", "p adj."),
+        f"drift of the common items against {link.parent} (Wald test with both cycles' errors, FDR across the "
+        "common items; LR G2 with the published values as exact; effect in theta units)",
+        ["item", "Wald (df)", "p adj.", "G2", "effect (95% CI)", "level", "published b", "this cycle b", "link"],
+        right=("Wald (df)", "p adj.", "G2"),
     )
     for row in link.drift:
         low, high = effect_interval(row.effect_theta or 0.0, row.effect_theta_se or float("nan"))
@@ -118,8 +120,9 @@ def print_link(bundle: Bundle) -> None:
         own = "  ".join(f"{-c / row.slope:.2f}" for c in row.intercepts)
         table.add_row(
             row.item,
-            f"{row.g2:.1f} ({row.df})",
+            f"{dash(row.wald, '.1f')} ({row.df})",
             dash(row.p_adjusted, ".3g"),
+            f"{row.g2:.1f}",
             effect,
             row.level,
             published,
@@ -316,3 +319,60 @@ def print_bundle_details(bundle: Bundle) -> None:
     console.print(table)
     console.print(f"  version {bundle.version}, created {bundle.created_at}, sha256 {bundle.hash}", highlight=False)
     console.print(f"  {CAUTION}", style="dim", highlight=False)
+
+
+def _thresholds(values: list[float] | None) -> str:
+    return "-" if values is None else "  ".join(f"{b:.2f}" for b in values)
+
+
+def print_bundle_diff(diff: BundleDiff) -> None:
+    """Items, policy, anchors, group densities and expected scores of two versions, side by side."""
+    console = out_console()
+    console.print(f"{diff.from_bundle} -> {diff.to_bundle}: {diff.scale_note}", highlight=False)
+    moved = [i for i in diff.items if i.change != "unchanged"]
+    unchanged = len(diff.items) - len(moved)
+    table = new_table(
+        f"items ({unchanged} unchanged not listed; change in theta units, newer reference population)",
+        ["item", "change", "slope", "thresholds", "size (signed)"],
+        right=("size (signed)",),
+    )
+    for item in moved:
+        slope = f"{dash(item.from_slope, '.3f')} -> {dash(item.to_slope, '.3f')}"
+        thresholds = f"{_thresholds(item.from_thresholds)} -> {_thresholds(item.to_thresholds)}"
+        size = "-" if item.change_theta is None else f"{item.change_theta:.2f} ({item.change_signed:+.2f})"
+        table.add_row(item.item, item.change, slope, thresholds, size)
+    console.print(table)
+    for change in diff.policy:
+        console.print(
+            f"  policy {change.item} in {change.group}: {change.from_status} -> {change.to_status} "
+            f"({change.to_reason})",
+            highlight=False,
+        )
+    if diff.anchors_added or diff.anchors_removed:
+        console.print(
+            f"  anchors added: {', '.join(diff.anchors_added) or 'none'}; removed: "
+            f"{', '.join(diff.anchors_removed) or 'none'}",
+            highlight=False,
+        )
+    groups = new_table("groups (latent mean and SD)", ["group", "older", "newer"])
+    for g in diff.groups:
+        older = "-" if g.from_mean is None else f"{g.from_mean:.3f} / {g.from_sd:.3f}"
+        newer = "-" if g.to_mean is None else f"{g.to_mean:.3f} / {g.to_sd:.3f}"
+        groups.add_row(g.group, older, newer)
+    console.print(groups)
+    if diff.scores:
+        scores = new_table(
+            f"a respondent who answers the {len(diff.common_items)} common items: expected change in theta and SE",
+            ["theta (older)", "theta (newer)", "change", "SE older", "SE newer"],
+            right=("theta (older)", "theta (newer)", "change", "SE older", "SE newer"),
+        )
+        for point in diff.scores:
+            scores.add_row(
+                f"{point.theta:.1f}",
+                dash(point.to_theta, ".3f"),
+                dash(point.change, "+.3f"),
+                f"{point.from_se:.3f}",
+                dash(point.to_se, ".3f"),
+            )
+        console.print(scores)
+    console.print(f"  {diff.caution}", highlight=False)

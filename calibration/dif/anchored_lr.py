@@ -57,6 +57,7 @@ class ItemGroupTest:
     focal_table: FloatArray  # ... for the focal group under M2
     p_adjusted: float = float("nan")
     effect_theta_se: float = float("nan")  # delta-method SE of effect_theta under M2
+    focal_covariance: FloatArray | None = None  # (K, K): the focal group's own slots under M2
 
     def effect_interval(self) -> tuple[float, float]:
         """95% interval of the unsigned effect, clipped at 0 (NaN bounds without an SE)."""
@@ -101,9 +102,8 @@ def _base_logliks(
     return out
 
 
-def _effect_se(fit: HeldItemFit, mean: float, sd: float) -> float:
+def _effect_se(fit: HeldItemFit, mean: float, sd: float, covariance: FloatArray | None) -> float:
     """Delta-method SE of the unsigned effect: its numerical gradient through the observed covariance."""
-    covariance = fit.covariance()
     if covariance is None:
         return float("nan")
 
@@ -206,6 +206,9 @@ def nested_item_tests(  # noqa: PLR0913 - the held rows, the item and keyword-on
     final = fits[-1].tables
     ref_params, foc_params = fits[-1].group_params(0), fits[-1].group_params(1)
     effect, signed = effect_size(ref_params, foc_params, focal_mean, focal_sd)
+    covariance = fits[-1].covariance()
+    own = fits[-1].slot_index[1, 0]
+    focal_covariance = None if covariance is None or (own < 0).any() else covariance[np.ix_(own, own)]
     return ItemGroupTest(
         item=item,
         group=group,
@@ -221,7 +224,8 @@ def nested_item_tests(  # noqa: PLR0913 - the held rows, the item and keyword-on
         effect_signed=signed,
         reference_table=final[0, 0].copy(),
         focal_table=final[1, 0].copy(),
-        effect_theta_se=_effect_se(fits[-1], focal_mean, focal_sd),
+        effect_theta_se=_effect_se(fits[-1], focal_mean, focal_sd, covariance),
+        focal_covariance=focal_covariance,
     )
 
 

@@ -231,13 +231,15 @@ class HeldItemFit:
     """Marginal ML of one studied item in a reference and a focal group, every other item held.
 
     ``tables`` (2, 1, K) holds the reference and focal (slope, intercepts...); ``vector`` the
-    free item slots, then the focal latent mean and SD.
+    free item slots, then the focal latent mean and SD; ``slot_index`` (2, 1, K) each slot's place in
+    ``vector`` (-1: held).
     """
 
     log_likelihood: float
     tables: FloatArray
     vector: FloatArray
     template: ItemParameters
+    slot_index: IntArray
     _unpack: Callable[[FloatArray], tuple[FloatArray, FloatArray, FloatArray]]
     _score: Callable[[FloatArray], FloatArray]
     _information: Callable[[], FloatArray]
@@ -325,7 +327,9 @@ def fit_item_given_offsets(  # noqa: PLR0913 - the held rows, the item and keywo
             raise ValueError("invalid parameters")
         return value.gradient
 
-    return HeldItemFit(final.log_likelihood, tables, vec, template, unpack, score, lambda: final.information)
+    return HeldItemFit(
+        final.log_likelihood, tables, vec, template, layout.index, unpack, score, lambda: final.information
+    )
 
 
 NEWTON_MAX_ITER = 30

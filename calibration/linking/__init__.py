@@ -5,6 +5,14 @@ The orchestration (which items are common, the purification rounds, the fixed-pa
 """
 
 from calibration.linking.curves import LINK_GRID, LinkingConstants, characteristic_curve_constants, rescale
-from calibration.linking.drift import drift_tests
+from calibration.linking.drift import DriftTest, PublishedItem, drift_tests
 
-__all__ = ["LINK_GRID", "LinkingConstants", "characteristic_curve_constants", "drift_tests", "rescale"]
+__all__ = [
+    "LINK_GRID",
+    "DriftTest",
+    "LinkingConstants",
+    "PublishedItem",
+    "characteristic_curve_constants",
+    "drift_tests",
+    "rescale",
+]

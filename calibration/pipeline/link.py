@@ -36,12 +36,11 @@ from calibration.bundle.schema import (
     ReportingScaleSettings,
     ScoringSettings,
 )
-from calibration.dif.anchored_lr import ItemGroupTest
 from calibration.errors import CalibrationInputError
 from calibration.estimation import EMSettings, LatentSpec, MultiGroupFit
 from calibration.io import ResponseData, finite_or_none
 from calibration.irt.models import ItemParameters
-from calibration.linking import characteristic_curve_constants, drift_tests, rescale
+from calibration.linking import DriftTest, PublishedItem, characteristic_curve_constants, drift_tests, rescale
 from calibration.linking.curves import LinkingConstants
 from calibration.pipeline.dif import ProgressCallback
 from calibration.pipeline.fits import quiet_fit
@@ -264,35 +263,45 @@ def _fixed_fit(  # noqa: PLR0913 - the data, the policy, the link and the start
 
 
 LINK_RULE = (
-    "Each common item is tested against its published parameters with every other item held at a "
-    "fixed-parameter link (the anchored LR test of the DIF screen, the earlier cycle as a reference with "
-    "known parameters and no respondents; this cycle's reference group as the focal group, its latent mean "
-    "and SD re-estimated). An item drifts when its omnibus test is significant after Benjamini-Hochberg "
-    "control across the common items at fdr_alpha and its effect (the gap between the published and this "
-    "cycle's expected-score curves, weighted by this cycle's reference population on the parent's scale, in "
-    "theta units) reaches effect_moderate. Drifted items leave the link; the rounds repeat until the link set "
-    "stops changing. The published parameters are taken as known: their own sampling error is not in the test, "
-    "so significance alone overstates drift in large samples, which is why the effect size decides too."
+    "Each common item is fitted in this cycle's reference group with every other item held at a "
+    "fixed-parameter link (the one-item models of the DIF screen, the earlier cycle as a reference with known "
+    "parameters and no respondents; this cycle's latent mean and SD re-estimated). Its change is tested by a "
+    "Wald statistic with both cycles' sampling error (this cycle's covariance plus the published SEs squared; "
+    "the bundle keeps no covariances of the published values); the LR G2 beside it takes the published values "
+    "as exact and overstates the evidence. An item drifts when the Wald test is significant after "
+    "Benjamini-Hochberg control across the common items at the DIF FDR level and its effect (the gap between "
+    "the published and this cycle's expected-score curves, weighted by this cycle's reference population on "
+    "the parent's scale, in theta units) reaches the moderate cut-off (0.20). Drifted items leave the link; "
+    "the rounds repeat until the link set stops changing."
 )
+
+
+def _published_se(entry: ItemEntry) -> np.ndarray:
+    """The published slot SEs (slope, intercepts), 0 where the bundle has none."""
+    values = [entry.slope_se, *entry.intercept_se]
+    return np.array([0.0 if v is None else v for v in values], dtype=np.float64)
 
 
 def _rows(
     prepared: PreparedData,
     common: _Common,
-    tests: dict[int, ItemGroupTest],
+    tests: dict[int, DriftTest],
     drifted: set[int],
     settings: PipelineSettings,
 ) -> list[DriftRow]:
     rows = []
     for j in common.positions:
-        test, k_j = tests[j], int(prepared.k[j])
+        drift, k_j = tests[j], int(prepared.k[j])
+        test = drift.test
         rows.append(
             DriftRow(
                 item=prepared.item_ids[j],
-                g2=test.g2_omnibus,
+                wald=finite_or_none(drift.wald),
                 df=test.df_omnibus,
                 p_value=test.p_omnibus,
                 p_adjusted=finite_or_none(test.p_adjusted),
+                g2=test.g2_omnibus,
+                g2_p_value=drift.lr_p,
                 g2_nonuniform=finite_or_none(test.g2_nonuniform),
                 g2_uniform=finite_or_none(test.g2_uniform),
                 effect_theta=finite_or_none(test.effect_theta),
@@ -333,7 +342,7 @@ def run_link_stage(  # noqa: PLR0913 - the data, the policy, the request and the
         compress_patterns=False,
     )
     reference_rows = policy.administered(prepared.x, prepared.group_index)[prepared.group_index == 0]
-    all_common = [(j, common.published[j]) for j in common.positions]
+    all_common = [PublishedItem(j, common.published[j], _published_se(common.entries[j])) for j in common.positions]
     link = list(common.positions)
     start = _on_parent_scale(
         free,
@@ -356,7 +365,7 @@ def run_link_stage(  # noqa: PLR0913 - the data, the policy, the request and the
             sd=float(provisional.latent_sd[0]),
             settings=drift_settings,
         )
-        drifted = {j for j in common.positions if tests[j].flagged(settings.dif)}
+        drifted = {j for j in common.positions if tests[j].test.flagged(settings.dif)}
         next_link = [j for j in common.positions if j not in drifted]
         settled = next_link == link
         if len(next_link) < MIN_LINK_ITEMS:

@@ -151,3 +151,6 @@ def test_calibrate_link_to_prints_the_link_and_refuses_what_it_cannot_do(
     assert linked.link is not None and linked.link.new_items == ["NUM09", "DIG09"]
     assert main(["bundle", "show", linked.label, "--store", str(store_dir)]) == 0
     assert "kept out for drift" in capsys.readouterr().out
+    assert main(["bundle", "diff", "skills@1", linked.label, "--store", str(store_dir)]) == 0
+    diff = capsys.readouterr().out
+    assert f"skills@1 -> {linked.label}: both on the scale of skills@1" in diff and "NUM09" in diff

@@ -18,7 +18,7 @@ from calibration.cli import main as cli_main
 from service.main import create_app
 from service.schemas import ScoreResponse
 from service.settings import Settings
-from tests.helpers import auth, example_bundle, live_server, metric_value
+from tests.helpers import EXAMPLES, auth, example_bundle, example_keys, live_server, metric_value
 
 SCORE = {"responses": [{"id": "a", "group": "tablet", "answers": {"T1": 1, "T2": 0, "T3": 1, "T5": 1}}]}
 
@@ -85,6 +85,7 @@ ROUTES = [
     ("PUT", "/v1/bundles/pantry-checkout/aliases/production", {"version": 1}, "publish"),
     ("PUT", "/v1/bundles/pantry-checkout/versions/1", "bundle", "publish"),
     ("POST", "/v1/bundles/pantry-checkout/versions", "bundle", "publish"),
+    ("GET", "/v1/bundles/pantry-checkout/diff?from=1&to=1", None, "read"),
 ]
 
 
@@ -260,3 +261,31 @@ def test_directory_store_changes_reach_the_default_route_and_no_change_costs_no_
         other.set_alias("pantry-checkout", "production", second.version)
         moved = httpx.post(url, json=score, headers=auth("scorer"))
         assert moved.json()["bundle"]["version"] == second.version and reads == ["pantry-checkout"]
+
+
+def test_diff_route_answers_the_stored_example_and_names_what_is_missing(tmp_path: Path) -> None:
+    # openapi_examples/bundle_v2.json: the second (invented) cycle of the example bundle, linked to it.
+    # The route's answer is the stored example (floats to 1e-9), an alias works as a reference, and an
+    # unknown version or alias is a 404 naming it; a malformed reference is a 422.
+    from tests.service.test_examples import _same
+
+    store = DirectoryStore(tmp_path / "store")
+    store.put_version(example_bundle())
+    store.put_version(Bundle.model_validate_json((EXAMPLES / "bundle_v2.json").read_text()))
+    store.set_alias("pantry-checkout", "production", 2)
+    settings = Settings(store=str(tmp_path / "store"), api_keys=example_keys(), log_level="warning")
+    expected = json.loads((EXAMPLES / "diff.json").read_text())
+    path = "/v1/bundles/pantry-checkout/diff"
+    with TestClient(create_app(settings)) as client:
+        reply = client.get(path, params={"from": "1", "to": "2"}, headers=auth("reader"))
+        assert reply.status_code == 200 and _same(reply.json(), expected)
+        assert expected["same_scale"] and expected["items"][-1] == {**expected["items"][-1], "change": "added"}
+        by_alias = client.get(path, params={"from": "1", "to": "production"}, headers=auth("reader"))
+        assert by_alias.status_code == 200 and by_alias.json()["to_bundle"] == "pantry-checkout@2"
+        missing = client.get(path, params={"from": "1", "to": "staging"}, headers=auth("reader"))
+        assert missing.status_code == 404 and "no alias 'staging'" in missing.json()["detail"]
+        unknown = client.get(path, params={"from": "7", "to": "2"}, headers=auth("reader"))
+        assert unknown.status_code == 404 and "no version 7" in unknown.json()["detail"]
+        malformed = client.get(path, params={"from": "1;drop", "to": "2"}, headers=auth("reader"))
+        assert malformed.status_code == 422 and malformed.headers["content-type"] == "application/problem+json"
+        assert client.get(path, params={"from": "1", "to": "2"}).status_code == 401

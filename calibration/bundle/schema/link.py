@@ -24,18 +24,20 @@ class LinkConstants(Frozen):
 
 
 class DriftRow(Frozen):
-    """The drift test of one common item: this cycle against its published parameters (anchored LR, as DIF)."""
+    """The drift test of one common item: this cycle's own parameters against the published ones."""
 
     item: str
-    g2: float = Field(description="omnibus G2: own parameters in this cycle against the published ones")
+    wald: float | None = Field(description="Wald statistic of the change, with both cycles' sampling error")
     df: int
-    p_value: float
+    p_value: float = Field(description="of the Wald test (the LR test's when the information was singular)")
     p_adjusted: float | None = Field(description="Benjamini-Hochberg across the common items")
+    g2: float = Field(description="LR G2 of the same change, taking the published values as exact")
+    g2_p_value: float
     g2_nonuniform: float | None = None
     g2_uniform: float | None = None
     effect_theta: float | None = Field(description="gap between the published and this cycle's curves, theta units")
     effect_signed: float | None = Field(description="signed: negative means harder in this cycle")
-    effect_theta_se: float | None = None
+    effect_theta_se: float | None = Field(None, description="delta method, both cycles' sampling error")
     level: EffectLevel
     drifted: bool = Field(description="significant after FDR control with at least a moderate effect")
     parent_slope: float

@@ -5,16 +5,20 @@ Every route checks the caller's scope first (its first parameter), so a caller w
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Annotated, Any
 
-from fastapi import APIRouter
+from fastapi import APIRouter, Query
 from fastapi.responses import JSONResponse
 
 from calibration.bundle import Bundle
+from calibration.bundle.compare import BundleDiff, compare_versions
+from calibration.bundle.schema import ALIAS_PATTERN
+from calibration.errors import BundleNotFound
 from service.api.deps import AliasParam, NameParam, PinnedBundle, PublishScope, ReadScope, RegistryDep, VersionParam
 from service.api.docs import ok_example, problem_responses
 from service.errors import InvalidBundle
 from service.middleware import OrjsonRoute
+from service.registry import BundleRegistry
 from service.schemas import AliasRequest, AliasResult, BundleList, BundleSummary, PublishResult
 
 router = APIRouter(route_class=OrjsonRoute, tags=["bundles"])
@@ -111,3 +115,35 @@ def move_alias(
     """Point an alias (e.g. ``production``) at a published version; move it back the same way."""
     version = registry.set_alias(name, alias, body.version)
     return AliasResult(name=name, alias=alias, version=version)
+
+
+VERSION_OR_ALIAS = r"^[1-9][0-9]{0,9}$|" + ALIAS_PATTERN
+FromParam = Annotated[str, Query(alias="from", pattern=VERSION_OR_ALIAS, description="older version, or an alias")]
+ToParam = Annotated[str, Query(alias="to", pattern=VERSION_OR_ALIAS, description="newer version, or an alias")]
+
+
+def _version_of(registry: BundleRegistry, name: str, reference: str) -> Bundle:
+    if reference.isdigit():
+        return registry.get(name, int(reference)).bundle
+    _, aliases = registry.versions(name)
+    if reference not in aliases:
+        known = ", ".join(sorted(aliases)) or "none"
+        raise BundleNotFound(f"bundle {name!r} has no alias {reference!r} (aliases: {known})")
+    return registry.get(name, aliases[reference]).bundle
+
+
+@router.get(
+    "/v1/bundles/{name}/diff",
+    response_model=BundleDiff,
+    responses={200: ok_example("diff"), **problem_responses(401, 403, 404, 422, 500, 503)},
+)
+def diff_versions(_: ReadScope, name: NameParam, older: FromParam, newer: ToParam, registry: RegistryDep) -> BundleDiff:
+    """What changed between two versions: items (with the size of each change in theta units), policy cells,
+    anchors, group densities, and the expected change in theta and SE for a respondent who answers the common
+    items; ``same_scale`` says whether the versions were linked. A changed item is evidence for content review,
+    not a verdict."""
+    return compare_versions(
+        _version_of(registry, name, older),
+        _version_of(registry, name, newer),
+        lambda parent, version: registry.get(parent, version).bundle,
+    )
