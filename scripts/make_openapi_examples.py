@@ -227,6 +227,16 @@ def main() -> int:
             reply = client.get(DIFF_PATH, headers={"Authorization": f"Bearer {KEYS['reader']}"})
             assert reply.status_code == 200, reply.text
             (OUT / "diff.json").write_text(json.dumps(reply.json(), indent=1) + "\n")
+            # A release: version 1 promoted, then version 2, then rolled back; the history names the key.
+            alias = "/v1/bundles/pantry-checkout/aliases/production"
+            for version in (1, 2, 1):
+                moved = client.put(
+                    alias, json={"version": version}, headers={"Authorization": f"Bearer {KEYS['publisher']}"}
+                )
+                assert moved.status_code == 200, moved.text
+            reply = client.get(alias, headers={"Authorization": f"Bearer {KEYS['reader']}"})
+            assert reply.status_code == 200, reply.text
+            (OUT / "alias_history.json").write_text(json.dumps(reply.json(), indent=1) + "\n")
         shutil.rmtree(cycles, ignore_errors=True)
         (OUT / "cases.json").write_text(
             json.dumps(

@@ -30,7 +30,7 @@ import numpy as np
 
 from calibration.bundle import Bundle, BundleNotFound, BundleStore
 from calibration.bundle.scorer import BundleScorer
-from calibration.bundle.store import DEFAULT_ALIAS, find_identical
+from calibration.bundle.store import DEFAULT_ALIAS, AliasRecord, find_identical
 from calibration.errors import BundleError, BundleIntegrityError, StoreUnavailable
 from service.logs import log_event
 
@@ -74,6 +74,9 @@ class StoreView:
     versions: dict[str, list[int]] = field(default_factory=dict)
     aliases: dict[str, dict[str, int]] = field(default_factory=dict)
 
+
+RESEEDED_BY = "a service replica, re-seeding a store that came back empty"
+"""Who moved an alias that a replica wrote back to an emptied store (its alias history says so)."""
 
 FEED_TRUST = 5.0
 """Seconds an unpinned request may rely on the change feed alone before the view is re-read from the store."""
@@ -190,7 +193,7 @@ class BundleRegistry:
         remembered = self._view.aliases.get(name, {})
         lost = {a: v for a, v in remembered.items() if a not in aliases and v in versions}
         for alias, version in lost.items():
-            aliases[alias] = self.store.set_alias(name, alias, version).version
+            aliases[alias] = self.store.set_alias(name, alias, version, by=RESEEDED_BY).version
         if lost:
             log_event(logging.WARNING, "aliases-reseeded", bundle=name, aliases=dict(lost))
         with self._lock:
@@ -285,6 +288,15 @@ class BundleRegistry:
             raise BundleNotFound(f"no bundle named {name!r}")
         return versions, self._view.aliases.get(name, {})
 
+    def alias_record(self, name: str, alias: str) -> AliasRecord:
+        """One alias with its history, read from the store (404 when the bundle or the alias is unknown)."""
+        aliases = self._store(self.store.aliases, name)
+        if alias not in aliases:
+            self.versions(name)  # an unknown bundle says so first
+            known = ", ".join(sorted(aliases)) or "none"
+            raise BundleNotFound(f"bundle {name!r} has no alias {alias!r} (aliases: {known})")
+        return aliases[alias]  # type: ignore[no-any-return]
+
     # -- writing ------------------------------------------------------------------------------------
     def put_version(self, bundle: Bundle) -> tuple[Bundle, bool]:
         """Publish at the bundle's version; returns (stored bundle, created?) from the atomic write."""
@@ -305,9 +317,9 @@ class BundleRegistry:
         self._store(self._refresh_view, bundle.name)
         return stored, True
 
-    def set_alias(self, name: str, alias: str, version: int) -> int:
-        """Point an alias at a published version; the version it now points at."""
-        record = self._store(self.store.set_alias, name, alias, version)
+    def set_alias(self, name: str, alias: str, version: int, *, by: str) -> int:
+        """Point an alias at a published version (``by``: who, for its history); the version it now points at."""
+        record = self._store(functools.partial(self.store.set_alias, by=by), name, alias, version)
         self._store(self._refresh_view, name)
         return int(record.version)
 

@@ -212,6 +212,23 @@ class AliasResult(_Strict):
     version: int
 
 
+class AliasMoveOut(_Strict):
+    """One move of an alias: the version, when (UTC) and by whom (the API key's name, the command line's user)."""
+
+    version: int
+    moved_at: str
+    by: str
+
+
+class AliasHistory(_Strict):
+    """Where an alias points now and every move that led there, oldest first (the current one last)."""
+
+    name: str
+    alias: str
+    version: int
+    history: list[AliasMoveOut]
+
+
 class Health(_Strict):
     """The process answers."""
 

@@ -26,7 +26,15 @@ from typing import Any
 
 from calibration.bundle.canonical import from_bytes, seal, to_bytes
 from calibration.bundle.schema import Bundle, valid_alias, valid_name
-from calibration.bundle.store import AliasRecord, check_placed_version, same_or_conflict
+from calibration.bundle.store import (
+    UNKNOWN_MOVER,
+    AliasMove,
+    AliasRecord,
+    check_placed_version,
+    mover_text,
+    now_utc,
+    same_or_conflict,
+)
 from calibration.errors import (
     BundleError,
     BundleIntegrityError,
@@ -34,11 +42,6 @@ from calibration.errors import (
     InvalidReference,
 )
 from calibration.io import current_umask
-
-
-def _now() -> str:
-    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-
 
 STALE_TEMP_SECONDS = 600
 
@@ -219,18 +222,21 @@ class DirectoryStore:
         return data
 
     def aliases(self, name: str) -> dict[str, AliasRecord]:
-        """Aliases of ``name`` with their versions and history."""
+        """Aliases of ``name`` with their versions and history (each move: version, time, who)."""
         directory = self._dir(name)
         return {
             alias: AliasRecord(
                 alias=alias,
                 version=int(entry["version"]),  # type: ignore[call-overload]
-                history=tuple((int(v), str(t)) for v, t in entry.get("history", [])),  # type: ignore[union-attr]
+                history=tuple(
+                    AliasMove(int(move[0]), str(move[1]), str(move[2]) if len(move) > 2 else UNKNOWN_MOVER)
+                    for move in entry.get("history", [])  # type: ignore[union-attr]
+                ),
             )
             for alias, entry in self._read_aliases(directory).items()
         }
 
-    def set_alias(self, name: str, alias: str, version: int) -> AliasRecord:
+    def set_alias(self, name: str, alias: str, version: int, *, by: str = UNKNOWN_MOVER) -> AliasRecord:
         """Point ``alias`` at ``version`` (a published version), keeping the previous target in its history."""
         if not valid_alias(alias):
             raise InvalidReference(f"alias {alias!r} is not valid: a lower-case letter, then letters, digits, _ or -")
@@ -239,12 +245,12 @@ class DirectoryStore:
             data = self._read_aliases(directory)
             entry = data.get(alias, {"version": version, "history": []})
             history = list(entry.get("history", []))  # type: ignore[call-overload]
-            history.append([version, _now()])
+            history.append([version, now_utc(), mover_text(by)])
             data[alias] = {"version": version, "history": history}
             self._write_aliases(directory, data)
         return self.aliases(name)[alias]
 
-    def alias_back(self, name: str, alias: str) -> AliasRecord:
+    def alias_back(self, name: str, alias: str, *, by: str = UNKNOWN_MOVER) -> AliasRecord:
         """Point the alias at the version it pointed to before its last move."""
         with self._locked(name) as directory:
             data = self._read_aliases(directory)
@@ -254,7 +260,7 @@ class DirectoryStore:
             if len(history) < 2:
                 raise BundleError(f"alias {alias!r} of {name!r} has no earlier version to move back to")
             previous = int(history[-2][0])
-            history.append([previous, _now()])
+            history.append([previous, now_utc(), mover_text(by)])
             data[alias] = {"version": previous, "history": history}
             self._write_aliases(directory, data)
         return self.aliases(name)[alias]

@@ -24,7 +24,6 @@ import contextlib
 import json
 import threading
 from collections.abc import Iterator
-from datetime import UTC, datetime
 from typing import Any
 
 import redis
@@ -33,7 +32,15 @@ from redis.retry import Retry
 
 from calibration.bundle.canonical import from_bytes, seal, to_bytes
 from calibration.bundle.schema import Bundle, valid_alias, valid_name
-from calibration.bundle.store import AliasRecord, check_placed_version, same_or_conflict
+from calibration.bundle.store import (
+    UNKNOWN_MOVER,
+    AliasMove,
+    AliasRecord,
+    check_placed_version,
+    mover_text,
+    now_utc,
+    same_or_conflict,
+)
 from calibration.errors import (
     BundleError,
     BundleIntegrityError,
@@ -81,8 +88,10 @@ return tonumber(version)
 """
 
 
-def _now() -> str:
-    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+def _move(entry: str) -> AliasMove:
+    """A history entry ``version|moved_at|by`` (``by`` missing in entries written before it was kept)."""
+    version, moved_at, *by = entry.split("|", 2)
+    return AliasMove(int(version), moved_at, by[0] if by else UNKNOWN_MOVER)
 
 
 class RedisStore:
@@ -225,11 +234,11 @@ class RedisStore:
         for raw_alias, raw_version in table.items():
             alias = raw_alias.decode()
             history = self._call(self.client.lrange, self.key("alias-history", name, alias), 0, -1)
-            moves = tuple((int(h.decode().split("|")[0]), h.decode().split("|")[1]) for h in history)
+            moves = tuple(_move(h.decode()) for h in history)
             out[alias] = AliasRecord(alias=alias, version=int(raw_version), history=moves)
         return out
 
-    def set_alias(self, name: str, alias: str, version: int) -> AliasRecord:
+    def set_alias(self, name: str, alias: str, version: int, *, by: str = UNKNOWN_MOVER) -> AliasRecord:
         """Point ``alias`` at ``version`` (a published version), keeping the previous target in its history."""
         if not valid_alias(alias):
             raise InvalidReference(f"alias {alias!r} is not valid: a lower-case letter, then letters, digits, _ or -")
@@ -237,7 +246,7 @@ class RedisStore:
         self._call(
             self._set_alias,
             keys=[self.key("aliases", name), self.key("alias-history", name, alias)],
-            args=[alias, version, _now()],
+            args=[alias, version, f"{now_utc()}|{mover_text(by)}"],
         )
         self._call(
             self.client.publish,
@@ -246,7 +255,7 @@ class RedisStore:
         )
         return self.aliases(name)[alias]
 
-    def alias_back(self, name: str, alias: str) -> AliasRecord:
+    def alias_back(self, name: str, alias: str, *, by: str = UNKNOWN_MOVER) -> AliasRecord:
         """Move ``alias`` back to the version it pointed at before."""
         self._check_name(name)
         if alias not in self.aliases(name):
@@ -254,7 +263,7 @@ class RedisStore:
         version = self._call(
             self._alias_back,
             keys=[self.key("aliases", name), self.key("alias-history", name, alias)],
-            args=[alias, _now()],
+            args=[alias, f"{now_utc()}|{mover_text(by)}"],
         )
         if int(version) < 0:
             raise BundleError(f"alias {alias!r} of {name!r} has no earlier version to move back to")

@@ -15,7 +15,8 @@ Contract
   per published version or alias move, until ``stop`` is set; a store without a feed
   yields nothing. A lost connection raises :class:`StoreUnavailable`.
 - Aliases (e.g. ``production``) point at versions, can be moved, and keep their
-  history so they can be moved back.
+  history so they can be moved back; each move records when and by whom (``by``: the
+  API key's name, the command line's user).
 
 The directory store lives in :mod:`calibration.bundle.directory_store`, the Redis store in
 :mod:`calibration.bundle.redis_store`; :func:`open_store` picks one from a ``--store`` value.
@@ -27,6 +28,7 @@ import hashlib
 import threading
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any, Protocol
 
@@ -45,12 +47,36 @@ DEFAULT_ALIAS = "production"
 
 
 @dataclass(frozen=True)
+class AliasMove:
+    """One move of an alias: the version it then pointed at, when (UTC, ISO 8601) and who moved it."""
+
+    version: int
+    moved_at: str
+    by: str  # the API key's name, the command line's user, or "unknown" (a move recorded before 0.2)
+
+
+@dataclass(frozen=True)
 class AliasRecord:
-    """Where an alias points now, and the versions it pointed at before (newest last)."""
+    """Where an alias points now, and every move that led there (oldest first, the current one last)."""
 
     alias: str
     version: int
-    history: tuple[tuple[int, str], ...]  # (version, moved_at) oldest first, current last
+    history: tuple[AliasMove, ...]
+
+
+def now_utc() -> str:
+    """The time of a move, UTC, ISO 8601 to the second."""
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+UNKNOWN_MOVER = "unknown"
+"""Who moved an alias, for moves recorded before the mover was kept."""
+
+
+def mover_text(by: str) -> str:
+    """Who moved an alias, as stored: one line, no field separator, at most 200 characters."""
+    text = " ".join(by.split()).replace("|", "/")[:200]
+    return text or UNKNOWN_MOVER
 
 
 class BundleStore(Protocol):
@@ -83,11 +109,11 @@ class BundleStore(Protocol):
     def aliases(self, name: str) -> dict[str, AliasRecord]:
         """Aliases of ``name`` with their versions and history."""
 
-    def set_alias(self, name: str, alias: str, version: int) -> AliasRecord:
-        """Point ``alias`` at a published ``version``."""
+    def set_alias(self, name: str, alias: str, version: int, *, by: str = UNKNOWN_MOVER) -> AliasRecord:
+        """Point ``alias`` at a published ``version``; ``by`` names who moved it."""
 
-    def alias_back(self, name: str, alias: str) -> AliasRecord:
-        """Move ``alias`` back to the version it pointed at before."""
+    def alias_back(self, name: str, alias: str, *, by: str = UNKNOWN_MOVER) -> AliasRecord:
+        """Move ``alias`` back to the version it pointed at before; ``by`` names who moved it."""
 
 
 def check_placed_version(bundle: Bundle) -> Bundle:

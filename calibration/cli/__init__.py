@@ -40,6 +40,17 @@ def store_from(location: str) -> BundleStore:
     return open_store(location, prefix=os.environ.get(REDIS_PREFIX_VARIABLE) or "equitheta")
 
 
+def command_line_mover() -> str:
+    """Who moves an alias from the command line, as the alias history records it."""
+    import getpass
+
+    try:
+        user = getpass.getuser()
+    except (KeyError, OSError):  # no user name for this uid (some containers)
+        user = "unknown user"
+    return f"command line ({user})"
+
+
 class _Formatter(argparse.ArgumentDefaultsHelpFormatter):
     """Shows defaults, except where an option has none worth showing."""
 

@@ -6,9 +6,14 @@ import argparse
 import json
 
 from calibration.bundle import Bundle, parse_reference, resolve
-from calibration.cli import UsageError, store_from
+from calibration.cli import UsageError, command_line_mover, store_from
 from calibration.cli.console import new_table, out_console
-from calibration.cli.render import print_bundle_details, print_bundle_diff, print_calibration_summary
+from calibration.cli.render import (
+    print_alias_history,
+    print_bundle_details,
+    print_bundle_diff,
+    print_calibration_summary,
+)
 from calibration.errors import BundleIntegrityError
 
 
@@ -48,6 +53,7 @@ def run_bundle(args: argparse.Namespace) -> int:
         else:
             print_calibration_summary(bundle)
             print_bundle_details(bundle)
+            print_alias_history(bundle.name, store.aliases(bundle.name))
         return 0
     if args.bundle_command == "diff":
         from calibration.bundle.compare import compare_versions
@@ -62,11 +68,11 @@ def run_bundle(args: argparse.Namespace) -> int:
         name, ref = parse_reference(args.reference)
         if not isinstance(ref, int):
             raise UsageError("bundle alias needs NAME@VERSION, e.g. skills@3")
-        record = store.set_alias(name, args.alias, ref)
+        record = store.set_alias(name, args.alias, ref, by=command_line_mover())
         console.print(f"{name}: alias {record.alias} -> {record.version}", highlight=False)
         return 0
     if args.bundle_command == "alias-back":
-        record = store.alias_back(args.name, args.alias)
+        record = store.alias_back(args.name, args.alias, by=command_line_mover())
         console.print(f"{args.name}: alias {record.alias} moved back -> {record.version}", highlight=False)
         return 0
     return 1

@@ -7,7 +7,7 @@ from typing import TYPE_CHECKING
 
 from calibration.bundle import Bundle, parse_reference, resolve
 from calibration.bundle.store import find_identical
-from calibration.cli import store_from
+from calibration.cli import command_line_mover, store_from
 from calibration.cli.console import ProgressReporter, out_console
 from calibration.cli.render import print_calibration_summary
 from calibration.io import ResponseData, read_item_spec, read_policy_overrides, read_responses
@@ -96,7 +96,9 @@ def run_calibrate(args: argparse.Namespace) -> int:
         )
         return 0
     published = store.publish(bundle)
-    alias = store.set_alias(published.name, args.alias, published.version) if args.alias else None
+    alias = (
+        store.set_alias(published.name, args.alias, published.version, by=command_line_mover()) if args.alias else None
+    )
     console.file.write(summary)
     console.print(
         f"published {published.label} (sha256 {published.hash[:16]}...)"

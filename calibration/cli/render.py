@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from calibration.bundle.compare import BundleDiff
 from calibration.bundle.schema import Bundle, IrtDifRow, ObservedDifRow
+from calibration.bundle.store import AliasRecord
 from calibration.cli.console import dash, new_table, out_console
 from calibration.dif.effect_size import effect_interval
 
@@ -376,3 +377,17 @@ def print_bundle_diff(diff: BundleDiff) -> None:
             )
         console.print(scores)
     console.print(f"  {diff.caution}", highlight=False)
+
+
+def print_alias_history(name: str, aliases: dict[str, AliasRecord]) -> None:
+    """Every alias of ``name``: where it points, and each move with its time and who made it (newest first)."""
+    console = out_console()
+    if not aliases:
+        console.print(f"  {name} has no aliases", highlight=False)
+        return
+    table = new_table(f"aliases of {name} and their moves (newest first)", ["alias", "version", "moved at (UTC)", "by"])
+    for alias, record in sorted(aliases.items()):
+        for position, move in enumerate(reversed(record.history)):
+            label = f"{alias} (now)" if position == 0 else ""
+            table.add_row(label, str(move.version), move.moved_at, move.by)
+    console.print(table)

@@ -117,7 +117,8 @@ def test_bundle_list_show_alias(published: tuple[Path, Path], capsys: pytest.Cap
     listing = capsys.readouterr().out
     assert "skills" in listing and "production -> 1" in listing
     assert main(["bundle", "show", "skills@production", "--store", str(store_dir)]) == 0
-    assert "NUM01" in capsys.readouterr().out
+    shown = capsys.readouterr().out
+    assert "NUM01" in shown and "aliases of skills and their moves" in shown and "command line (" in shown
     assert main(["bundle", "alias", "skills", "production", "--store", str(store_dir)]) == 2
 
 

@@ -289,3 +289,21 @@ def test_diff_route_answers_the_stored_example_and_names_what_is_missing(tmp_pat
         malformed = client.get(path, params={"from": "1;drop", "to": "2"}, headers=auth("reader"))
         assert malformed.status_code == 422 and malformed.headers["content-type"] == "application/problem+json"
         assert client.get(path, params={"from": "1", "to": "2"}).status_code == 401
+
+
+def test_alias_moves_record_the_key_name_never_the_key(keyed_settings: Settings) -> None:
+    # Promote and roll back over the API: the history names the publisher key (by its name), in order.
+    path = "/v1/bundles/pantry-checkout/aliases/production"
+    with TestClient(create_app(keyed_settings)) as client:
+        assert client.get(path, headers=auth("reader")).status_code == 404  # no such alias yet
+        for version in (1, 1):
+            moved = client.put(path, json={"version": version}, headers=auth("publisher"))
+            assert moved.status_code == 200
+        history = client.get(path, headers=auth("reader"))
+        assert client.get(path).status_code == 401
+        assert client.get(path, headers=auth("scorer")).status_code == 403
+    assert history.status_code == 200
+    document = history.json()
+    assert document["version"] == 1 and [m["by"] for m in document["history"]] == ["API key publisher"] * 2
+    assert all(m["moved_at"].endswith("Z") for m in document["history"])
+    assert "example-publish-key" not in history.text

@@ -9,6 +9,7 @@ from pathlib import Path
 
 import httpx
 import pytest
+import redis
 
 from calibration.bundle import BundleNotFound, VersionConflict, seal
 from calibration.bundle.redis_store import RedisStore, StoreUnavailable
@@ -36,10 +37,15 @@ def test_redis_store_keeps_the_store_contract(shared_redis: tuple[str, str]) -> 
     other = seal(bundle.model_copy(update={"created_at": "2031-01-01T00:00:00Z", "hash": ""}))
     with pytest.raises(VersionConflict):
         store.put_version(other)
-    store.set_alias("pantry-checkout", "production", 1)
-    store.set_alias("pantry-checkout", "production", 2)
-    assert store.alias_back("pantry-checkout", "production").version == 1
-    assert [v for v, _ in store.aliases("pantry-checkout")["production"].history] == [1, 2, 1]
+    store.set_alias("pantry-checkout", "production", 1, by="API key ops")
+    store.set_alias("pantry-checkout", "production", 2, by="command line (ana|b)")
+    assert store.alias_back("pantry-checkout", "production", by="API key ops").version == 1
+    moves = store.aliases("pantry-checkout")["production"].history
+    assert [(m.version, m.by) for m in moves] == [(1, "API key ops"), (2, "command line (ana/b)"), (1, "API key ops")]
+    # A move recorded before the mover was kept ("version|time") reads as by an unknown mover.
+    redis.Redis.from_url(url).rpush(store.key("alias-history", "pantry-checkout", "staging"), "1|2026-11-30T00:00:00Z")
+    redis.Redis.from_url(url).hset(store.key("aliases", "pantry-checkout"), "staging", 1)
+    assert store.aliases("pantry-checkout")["staging"].history[0].by == "unknown"
     with pytest.raises(BundleNotFound, match="no version 9"):
         store.get("pantry-checkout", 9)
 

@@ -19,7 +19,15 @@ from service.api.docs import ok_example, problem_responses
 from service.errors import InvalidBundle
 from service.middleware import OrjsonRoute
 from service.registry import BundleRegistry
-from service.schemas import AliasRequest, AliasResult, BundleList, BundleSummary, PublishResult
+from service.schemas import (
+    AliasHistory,
+    AliasMoveOut,
+    AliasRequest,
+    AliasResult,
+    BundleList,
+    BundleSummary,
+    PublishResult,
+)
 
 router = APIRouter(route_class=OrjsonRoute, tags=["bundles"])
 
@@ -110,11 +118,26 @@ def publish_next(_: PublishScope, name: NameParam, bundle: Bundle, registry: Reg
     responses={200: ok_example("alias_response"), **problem_responses(401, 403, 404, 422, 500, 503)},
 )
 def move_alias(
-    _: PublishScope, name: NameParam, alias: AliasParam, body: AliasRequest, registry: RegistryDep
+    caller: PublishScope, name: NameParam, alias: AliasParam, body: AliasRequest, registry: RegistryDep
 ) -> AliasResult:
-    """Point an alias (e.g. ``production``) at a published version; move it back the same way."""
-    version = registry.set_alias(name, alias, body.version)
+    """Point an alias (e.g. ``production``) at a published version; move it back the same way.
+
+    The alias history records when and by which API key (its name, never the key) every move was made.
+    """
+    version = registry.set_alias(name, alias, body.version, by=f"API key {caller.name}")
     return AliasResult(name=name, alias=alias, version=version)
+
+
+@router.get(
+    "/v1/bundles/{name}/aliases/{alias}",
+    response_model=AliasHistory,
+    responses={200: ok_example("alias_history"), **problem_responses(401, 403, 404, 422, 500, 503)},
+)
+def alias_history(_: ReadScope, name: NameParam, alias: AliasParam, registry: RegistryDep) -> AliasHistory:
+    """Where an alias points and every move that led there: version, time (UTC) and who (the key's name)."""
+    record = registry.alias_record(name, alias)
+    moves = [AliasMoveOut(version=m.version, moved_at=m.moved_at, by=m.by) for m in record.history]
+    return AliasHistory(name=name, alias=alias, version=record.version, history=moves)
 
 
 VERSION_OR_ALIAS = r"^[1-9][0-9]{0,9}$|" + ALIAS_PATTERN

@@ -104,6 +104,26 @@ def test_aliases_move_and_move_back(tmp_path: Path, lsat6_bundle: Bundle) -> Non
         store.set_alias("lsat6", "production", 7)
 
 
+def test_every_alias_move_records_when_and_who(tmp_path: Path, lsat6_bundle: Bundle) -> None:
+    store = DirectoryStore(tmp_path)
+    store.publish(lsat6_bundle)
+    store.publish(lsat6_bundle)
+    store.set_alias("lsat6", "production", 1, by="API key release-bot")
+    store.set_alias("lsat6", "production", 2, by="command line (ana)\n")
+    store.alias_back("lsat6", "production", by="API key release-bot")
+    moves = store.aliases("lsat6")["production"].history
+    assert [(m.version, m.by) for m in moves] == [
+        (1, "API key release-bot"),
+        (2, "command line (ana)"),  # one line
+        (1, "API key release-bot"),
+    ]
+    assert all(len(m.moved_at) == 20 and m.moved_at.endswith("Z") for m in moves)
+    # aliases.json written before the mover was kept: [version, time] pairs read as by an unknown mover.
+    path = tmp_path / "lsat6" / "aliases.json"
+    path.write_text(json.dumps({"staging": {"version": 1, "history": [[1, "2026-11-30T00:00:00Z"]]}}))
+    assert store.aliases("lsat6")["staging"].history[0].by == "unknown"
+
+
 def _publish_in_process(root: str, document: bytes, queue: multiprocessing.Queue) -> None:  # type: ignore[type-arg]
     bundle = Bundle.model_validate_json(document)
     try:
