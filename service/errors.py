@@ -80,6 +80,12 @@ class Forbidden(ProblemError):
     status, slug, title = 403, "forbidden", "The API key lacks the scope this route needs"
 
 
+class DriftCountsNotKept(ProblemError):
+    """Drift-watch counts live in the shared Redis store; this service's store is a directory (404)."""
+
+    status, slug, title = 404, "drift-counts-not-kept", "This service keeps no drift-watch counts"
+
+
 class PayloadTooLarge(ProblemError):
     """A request with too many vectors or too many bytes (413)."""
 

@@ -10,9 +10,11 @@ from fastapi import FastAPI
 
 from calibration import __version__
 from calibration.bundle import open_store
+from calibration.bundle.redis_store import RedisStore
 from calibration.irt.likelihood import single_threaded_blas
 from service.api.docs import document_problems
 from service.api.routes import bundles, ops, scores
+from service.drift_watch import DriftWatch
 from service.errors import install_handlers
 from service.logs import configure_logging, log_event
 from service.metrics import Metrics
@@ -45,9 +47,15 @@ def create_app(settings: Settings) -> FastAPI:
         log_event(
             logging.INFO, "startup", store=repr(store), bundles_loaded=registry.loaded_count, keys=len(keyring.records)
         )
+        app.state.drift_watch = None
+        if settings.drift_watch and isinstance(store, RedisStore):  # the settings insist on a redis:// store
+            app.state.drift_watch = DriftWatch(store, settings.drift_flush_seconds)
+            app.state.drift_watch.start()
         # One request per thread and one worker per core: BLAS threads would only compete (and spin).
         with single_threaded_blas():
             yield
+        if app.state.drift_watch is not None:
+            app.state.drift_watch.stop()
         registry.stop()
 
     docs = {} if settings.docs else {"docs_url": None, "redoc_url": None, "openapi_url": None}
@@ -63,6 +71,7 @@ def create_app(settings: Settings) -> FastAPI:
     )
     app.router.route_class = OrjsonRoute
     app.state.settings, app.state.keyring, app.state.metrics = settings, keyring, Metrics()
+    app.state.drift_watch = None  # started by the lifespan when EQUITHETA_DRIFT_WATCH is on
     install_handlers(app)
     routers = (ops.router(settings), scores.router, bundles.router)
     for router in routers:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
@@ -25,7 +26,11 @@ def _json_floats(array: np.ndarray) -> list[float | None]:
     return [v if math.isfinite(v) else None for v in values]
 
 
-def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]:
+Observer = Callable[[LoadedBundle, np.ndarray, Sequence[str]], None]
+"""Called with every scored batch's answer matrix and groups (the drift watch)."""
+
+
+def score_vectors(loaded: LoadedBundle, request: ScoreRequest, observe: Observer | None = None) -> dict[str, Any]:
     """Validate the vectors against the bundle and score them in one vectorised call.
 
     Returns the ScoreResponse document as plain JSON-ready data (the route sends it as is).
@@ -34,6 +39,8 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest) -> dict[str, Any]
     x = _answer_matrix(loaded, request)
     groups = _resolve_groups(loaded, request)
     result = scorer.score(x, groups, method=request.options.method)
+    if observe is not None:
+        observe(loaded, x, groups)
     excluded = loaded.excluded_items
     # Plain dicts (the ScoreResult shape) instead of one model per respondent: the batch hot path.
     columns = [

@@ -8,6 +8,7 @@ from pathlib import Path
 from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+from calibration.bundle.store import REDIS_SCHEMES
 from calibration.vocabulary import Scope
 
 
@@ -40,6 +41,13 @@ class Settings(BaseSettings):
         "restarted (uvicorn's own default, 5 s, restarts busy workers on saturated CPUs)",
     )
 
+    drift_watch: bool = Field(
+        default=False,
+        description="keep drift-watch counts of every scored batch in the shared Redis store (counts by theta bin "
+        "and category only: no answers, no ids)",
+    )
+    drift_flush_seconds: float = Field(5.0, gt=0, le=300, description="how often a worker adds its counts to Redis")
+
     @field_validator("store")
     @classmethod
     def _store_given(cls, value: str) -> str:
@@ -53,6 +61,15 @@ class Settings(BaseSettings):
         if value is not None and not value.is_file():
             raise ValueError(f"EQUITHETA_API_KEYS_FILE: {value} is not a file")
         return value
+
+    @model_validator(mode="after")
+    def _drift_watch_needs_redis(self) -> Settings:
+        if self.drift_watch and not self.store.startswith(REDIS_SCHEMES):
+            raise ValueError(
+                "EQUITHETA_DRIFT_WATCH=true keeps its counts in the shared Redis store: set EQUITHETA_STORE to a "
+                "redis:// URL (every replica adds to the same counts)"
+            )
+        return self
 
     @model_validator(mode="after")
     def _open_only_on_loopback(self) -> Settings:

@@ -123,7 +123,8 @@ class RedisStore:
         """The publish channel every replica listens on for version and alias changes."""
         return self.key(EVENTS)
 
-    def _call(self, fn: Any, *args: Any, **kwargs: Any) -> Any:
+    def call(self, fn: Any, *args: Any, **kwargs: Any) -> Any:
+        """Run one client operation; a lost or stalled connection raises :class:`StoreUnavailable`."""
         try:
             return fn(*args, **kwargs)
         except (redis.ConnectionError, redis.TimeoutError) as exc:
@@ -151,10 +152,10 @@ class RedisStore:
         """The publish channel: None on (re)subscribing, then each event, until ``stop`` is set."""
         pubsub = self.client.pubsub(ignore_subscribe_messages=True)
         try:
-            self._call(pubsub.subscribe, self.channel)
+            self.call(pubsub.subscribe, self.channel)
             yield None
             while not stop.is_set():
-                message = self._call(pubsub.get_message, timeout=0.5)
+                message = self.call(pubsub.get_message, timeout=0.5)
                 if message is None:
                     continue
                 try:
@@ -172,17 +173,17 @@ class RedisStore:
 
     def names(self) -> list[str]:
         """Every bundle name, sorted."""
-        return sorted(n.decode() for n in self._call(self.client.smembers, self.key("names")))
+        return sorted(n.decode() for n in self.call(self.client.smembers, self.key("names")))
 
     def versions(self, name: str) -> list[int]:
         """Published versions of ``name``, ascending."""
         self._check_name(name)
-        return [int(v) for v in self._call(self.client.zrange, self.key("versions", name), 0, -1)]
+        return [int(v) for v in self.call(self.client.zrange, self.key("versions", name), 0, -1)]
 
     def get(self, name: str, version: int) -> Bundle:
         """One published version, verified against its hash."""
         self._check_name(name)
-        data = self._call(self.client.get, self.key("bundle", name, version))
+        data = self.call(self.client.get, self.key("bundle", name, version))
         if data is None:
             have = self.versions(name)
             if not have:
@@ -197,7 +198,7 @@ class RedisStore:
     def _write(self, bundle: Bundle) -> bool:
         """Write, index and announce one version in one atomic step; False when it already existed."""
         event = json.dumps({"kind": "version", "name": bundle.name, "version": bundle.version})
-        created = self._call(
+        created = self.call(
             self._write_version,
             keys=[
                 self.key("bundle", bundle.name, bundle.version),
@@ -212,7 +213,7 @@ class RedisStore:
         """Publish as the next version of the bundle's name (the document's version is ignored)."""
         self._check_name(bundle.name)
         for _ in range(100):
-            newest = self._call(self.client.zrevrange, self.key("versions", bundle.name), 0, 0)
+            newest = self.call(self.client.zrevrange, self.key("versions", bundle.name), 0, 0)
             sealed = seal(bundle, version=(int(newest[0]) + 1) if newest else 1)
             if self._write(sealed):
                 return sealed
@@ -229,11 +230,11 @@ class RedisStore:
     def aliases(self, name: str) -> dict[str, AliasRecord]:
         """Aliases of ``name`` with their versions and history."""
         self._check_name(name)
-        table = self._call(self.client.hgetall, self.key("aliases", name))
+        table = self.call(self.client.hgetall, self.key("aliases", name))
         out = {}
         for raw_alias, raw_version in table.items():
             alias = raw_alias.decode()
-            history = self._call(self.client.lrange, self.key("alias-history", name, alias), 0, -1)
+            history = self.call(self.client.lrange, self.key("alias-history", name, alias), 0, -1)
             moves = tuple(_move(h.decode()) for h in history)
             out[alias] = AliasRecord(alias=alias, version=int(raw_version), history=moves)
         return out
@@ -243,12 +244,12 @@ class RedisStore:
         if not valid_alias(alias):
             raise InvalidReference(f"alias {alias!r} is not valid: a lower-case letter, then letters, digits, _ or -")
         self.get(name, version)
-        self._call(
+        self.call(
             self._set_alias,
             keys=[self.key("aliases", name), self.key("alias-history", name, alias)],
             args=[alias, version, f"{now_utc()}|{mover_text(by)}"],
         )
-        self._call(
+        self.call(
             self.client.publish,
             self.channel,
             json.dumps({"kind": "alias", "name": name, "alias": alias, "version": version}),
@@ -260,14 +261,14 @@ class RedisStore:
         self._check_name(name)
         if alias not in self.aliases(name):
             raise BundleNotFound(f"bundle {name!r} has no alias {alias!r}")
-        version = self._call(
+        version = self.call(
             self._alias_back,
             keys=[self.key("aliases", name), self.key("alias-history", name, alias)],
             args=[alias, f"{now_utc()}|{mover_text(by)}"],
         )
         if int(version) < 0:
             raise BundleError(f"alias {alias!r} of {name!r} has no earlier version to move back to")
-        self._call(
+        self.call(
             self.client.publish,
             self.channel,
             json.dumps({"kind": "alias", "name": name, "alias": alias, "version": int(version)}),

@@ -167,6 +167,16 @@ class BundleScorer:
             )
         return tuple(resolved)
 
+    def model_categories(self, responses: FloatArray) -> FloatArray:
+        """The answers as the model's categories (codes merged at calibration recoded; a copy only then)."""
+        x = np.asarray(responses, dtype=np.float64)
+        if self.recode:
+            x = x.copy()
+            for j, table in self.recode.items():
+                answered = ~np.isnan(x[:, j])
+                x[answered, j] = table[x[answered, j].astype(np.int64)]
+        return x
+
     def score(
         self,
         responses: FloatArray,
@@ -181,12 +191,7 @@ class BundleScorer:
         method = method or self.bundle.scoring.method
         if method not in METHODS:
             raise ValueError(f"unknown scoring method {method!r}; use one of {', '.join(METHODS)}")
-        x = np.asarray(responses, dtype=np.float64)
-        if self.recode:
-            x = x.copy()
-            for j, table in self.recode.items():
-                answered = ~np.isnan(x[:, j])
-                x[answered, j] = table[x[answered, j].astype(np.int64)]
+        x = self.model_categories(responses)
         n = x.shape[0]
         theta = np.empty(n)
         se = np.empty(n)

@@ -44,6 +44,8 @@ from calibration.errors import (
 )
 
 DEFAULT_ALIAS = "production"
+REDIS_SCHEMES = ("redis://", "rediss://", "unix://")
+"""A ``--store`` value starting with one of these names the shared Redis store."""
 
 
 @dataclass(frozen=True)
@@ -232,7 +234,7 @@ def open_store(location: str | Path, *, prefix: str = "equitheta") -> BundleStor
     ``EQUITHETA_REDIS_PREFIX``, the service from its settings; both default to ``equitheta``).
     """
     text = str(location)
-    if text.startswith(("redis://", "rediss://", "unix://")):
+    if text.startswith(REDIS_SCHEMES):
         try:
             from calibration.bundle.redis_store import RedisStore
         except ImportError as exc:  # the redis client is an optional dependency

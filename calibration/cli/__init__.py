@@ -225,6 +225,18 @@ def _add_bundle(sub: argparse._SubParsersAction) -> None:
     _subparser(bsub, "schema", "print the bundle JSON Schema")
 
 
+def _add_drift(sub: argparse._SubParsersAction) -> None:
+    drift = _subparser(
+        sub,
+        "drift",
+        "how each item of a published version fits the responses the scoring service has scored with it "
+        "(the drift watch: EQUITHETA_DRIFT_WATCH on the service; counts in the shared Redis store)",
+    )
+    drift.add_argument("reference", help="NAME@VERSION or NAME@ALIAS")
+    drift.add_argument("--store", required=True, help="the shared store: a redis:// URL")
+    drift.add_argument("--json", action="store_true", help="print the report as JSON")
+
+
 def _add_serve(sub: argparse._SubParsersAction) -> None:
     srv = _subparser(sub, "serve", "run the scoring service (uvicorn) over a bundle store")
     srv.add_argument("--store", help="bundle directory or redis:// URL (default: EQUITHETA_STORE)")
@@ -259,7 +271,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"equitheta {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)
-    for add in (_add_calibrate, _add_score, _add_bundle, _add_serve, _add_demo):
+    for add in (_add_calibrate, _add_score, _add_bundle, _add_drift, _add_serve, _add_demo):
         add(sub)
     return parser
 
@@ -298,6 +310,10 @@ def _run(args: argparse.Namespace) -> int:
             from calibration.cli.bundle import run_bundle
 
             return run_bundle(args)
+        if args.command == "drift":
+            from calibration.cli.drift import run_drift
+
+            return run_drift(args)
         if args.command == "demo":
             from calibration.cli.demo import run_demo
 

@@ -12,11 +12,13 @@ from fastapi.responses import JSONResponse
 
 from calibration.bundle import Bundle
 from calibration.bundle.compare import BundleDiff, compare_versions
+from calibration.bundle.drift_watch import DriftWatchReport, drift_report
+from calibration.bundle.redis_store import RedisStore
 from calibration.bundle.schema import ALIAS_PATTERN
 from calibration.errors import BundleNotFound
 from service.api.deps import AliasParam, NameParam, PinnedBundle, PublishScope, ReadScope, RegistryDep, VersionParam
 from service.api.docs import ok_example, problem_responses
-from service.errors import InvalidBundle
+from service.errors import DriftCountsNotKept, InvalidBundle
 from service.middleware import OrjsonRoute
 from service.registry import BundleRegistry
 from service.schemas import (
@@ -170,3 +172,23 @@ def diff_versions(_: ReadScope, name: NameParam, older: FromParam, newer: ToPara
         _version_of(registry, name, newer),
         lambda parent, version: registry.get(parent, version).bundle,
     )
+
+
+@router.get(
+    "/v1/bundles/{name}/versions/{version}/drift",
+    response_model=DriftWatchReport,
+    responses={**problem_responses(401, 403, 404, 422, 500, 503)},
+)
+def drift_watch(_: ReadScope, loaded: PinnedBundle, registry: RegistryDep) -> DriftWatchReport:
+    """How each item of this version fits the responses scored with it so far, per group (the drift watch).
+
+    Counts kept by every replica with ``EQUITHETA_DRIFT_WATCH`` on (counts by theta bin and category only).
+    The RMSD between the observed and the model expected-score curves flags an item in a group above the
+    threshold once enough answers are counted: evidence for a content review, not a verdict on any score.
+    """
+    if not isinstance(registry.store, RedisStore):
+        raise DriftCountsNotKept(
+            "drift-watch counts are kept in the shared Redis store; this service uses a directory store "
+            "(run it with EQUITHETA_STORE=redis://... and EQUITHETA_DRIFT_WATCH=true)"
+        )
+    return drift_report(registry.store, loaded.bundle)
