@@ -1,4 +1,4 @@
-"""`equitheta demo`: invent the Tidewater data set, calibrate it by site, score it and summarise."""
+"""`equitheta demo`: invent the Tidewater data set, calibrate it by site, score it, then link the next intake."""
 
 from __future__ import annotations
 
@@ -88,5 +88,35 @@ def run_demo(args: argparse.Namespace) -> int:
             str(row["excluded_items"]),
         )
     console.print(table)
-    console.print(f"done. Try: equitheta bundle show tidewater-skills --store {store_dir}", highlight=False)
+    return _second_cycle(args, root, store_dir)
+
+
+def _second_cycle(args: argparse.Namespace, root: Path, store_dir: Path) -> int:
+    """The next year's intake, linked to the first calibration's scale, and what changed between the two."""
+    from calibration.cli import main
+
+    console = out_console()
+    second_path = root / "tidewater_skills_responses_cycle2.csv"
+    write_csv_atomic(make_demo_responses(args.respondents, seed=args.seed + 1, cycle=2), second_path)
+    console.print(
+        f"4. the next intake (invented): {args.respondents} respondents, two new tasks -> {second_path}; "
+        "calibrating it on the scale of tidewater-skills@1 (drift screening of the common tasks)",
+        highlight=False,
+    )
+    base = ["--store", str(store_dir)]
+    code = main(
+        ["calibrate", str(second_path), "--name", "tidewater-skills", *base, "--group-column", "site", "--link-to"]
+        + ["tidewater-skills@1"]
+    )
+    if code != 0:
+        return code
+    console.print("5. what changed from version 1 to version 2", highlight=False)
+    code = main(["bundle", "diff", "tidewater-skills@1", "tidewater-skills@2", *base])
+    if code != 0:
+        return code
+    console.print(
+        f"done. Try: equitheta bundle show tidewater-skills@2 --store {store_dir}; move the production alias to the "
+        f"new version with: equitheta bundle alias tidewater-skills@2 production --store {store_dir}",
+        highlight=False,
+    )
     return 0

@@ -126,8 +126,13 @@ def test_demo_runs_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture) -> 
     assert main(["demo", "--out", str(tmp_path), "--respondents", "600"]) == 0
     scores = pd.read_csv(tmp_path / "tidewater_skills_scores.csv")
     assert len(scores) == 600
-    assert DirectoryStore(tmp_path / "store").aliases("tidewater-skills")["production"].version == 1
-    assert "measurement error" in capsys.readouterr().out
+    store = DirectoryStore(tmp_path / "store")
+    assert store.aliases("tidewater-skills")["production"].version == 1
+    second = store.get("tidewater-skills", 2)  # the next intake, linked to the first version's scale
+    assert second.link is not None and second.link.parent == "tidewater-skills@1"
+    assert second.link.new_items == ["NUM09", "DIG09"]
+    out = capsys.readouterr().out
+    assert "measurement error" in out and "tidewater-skills@1 -> tidewater-skills@2: both on the scale" in out
 
 
 def test_calibrate_link_to_prints_the_link_and_refuses_what_it_cannot_do(
