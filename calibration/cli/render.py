@@ -98,7 +98,7 @@ def print_link(bundle: Bundle) -> None:
     console.print(
         f"  on the scale of {link.parent} ({link.method} link, {link.rounds} purification round(s)): "
         f"theta({link.parent}) = {constants.slope:.3f}{slope_se} x theta(this cycle's {who}) "
-        f"+ {constants.intercept:.3f}{intercept_se}",
+        f"{'-' if constants.intercept < 0 else '+'} {abs(constants.intercept):.3f}{intercept_se}",
         highlight=False,
     )
     console.print(

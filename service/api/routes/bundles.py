@@ -30,6 +30,7 @@ from service.schemas import (
     BundleSummary,
     PublishResult,
 )
+from service.security import OPEN_ACCESS
 
 router = APIRouter(route_class=OrjsonRoute, tags=["bundles"])
 
@@ -126,7 +127,8 @@ def move_alias(
 
     The alias history records when and by which API key (its name, never the key) every move was made.
     """
-    version = registry.set_alias(name, alias, body.version, by=f"API key {caller.name}")
+    by = caller.name if caller is OPEN_ACCESS else f"API key {caller.name}"
+    version = registry.set_alias(name, alias, body.version, by=by)
     return AliasResult(name=name, alias=alias, version=version)
 
 
