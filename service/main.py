@@ -13,7 +13,7 @@ from calibration.bundle import open_store
 from calibration.bundle.redis_store import RedisStore
 from calibration.irt.likelihood import single_threaded_blas
 from service.api.docs import document_problems
-from service.api.routes import bundles, ops, scores
+from service.api.routes import bundles, ops, scores, summaries
 from service.drift_watch import DriftWatch
 from service.errors import install_handlers
 from service.logs import configure_logging, log_event
@@ -73,7 +73,7 @@ def create_app(settings: Settings) -> FastAPI:
     app.state.settings, app.state.keyring, app.state.metrics = settings, keyring, Metrics()
     app.state.drift_watch = None  # started by the lifespan when EQUITHETA_DRIFT_WATCH is on
     install_handlers(app)
-    routers = (ops.router(settings), scores.router, bundles.router)
+    routers = (ops.router(settings), scores.router, summaries.router, bundles.router)
     for router in routers:
         app.include_router(router)
     app.state.route_table = [*app.router.routes, *(route for router in routers for route in router.routes)]

@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping, Sequence
 from itertools import chain
-from typing import Annotated, Literal, NotRequired
+from typing import Annotated, Any, Literal, NotRequired
 
 import numpy as np
 import orjson
@@ -64,6 +65,13 @@ class ResponseVector(TypedDict):
     ]
 
 
+def flat_answer_codes(responses: Sequence[Mapping[str, Any]]) -> np.ndarray:
+    """Every vector's answers, one after the other, as int64 (validated codes, in the order given)."""
+    count = sum(len(vector["answers"]) for vector in responses)
+    values = chain.from_iterable(vector["answers"].values() for vector in responses)
+    return np.fromiter(values, dtype=np.int64, count=count)
+
+
 _REQUEST_KEYS = frozenset({"responses", "options"})
 _VECTOR_KEYS = frozenset(ResponseVector.__annotations__)
 
@@ -78,9 +86,7 @@ class ScoreRequest(_Strict):
     def answer_codes(self) -> np.ndarray:
         """Every vector's answers, one after the other, as int64 (the validated codes, in the order given)."""
         if self._answer_codes is None:
-            count = sum(len(vector["answers"]) for vector in self.responses)
-            values = chain.from_iterable(vector["answers"].values() for vector in self.responses)
-            self._answer_codes = np.fromiter(values, dtype=np.int64, count=count)
+            self._answer_codes = flat_answer_codes(self.responses)
         return self._answer_codes
 
     @classmethod
@@ -129,6 +135,52 @@ def _plain_vector(vector: object) -> bool:
         and (group is None or (type(group) is str and len(group) <= MAX_GROUP_LENGTH))
         and type(vector.get("answers")) is dict
     )
+
+
+@with_config(ConfigDict(extra="forbid"))
+class SummaryVector(TypedDict):
+    """One respondent of a summary: an id, the group, an optional cohort, and the answers by item."""
+
+    id: Annotated[str, Field(min_length=1, max_length=MAX_ID_LENGTH, description="the respondent's id")]
+    group: NotRequired[
+        Annotated[
+            str | None,
+            Field(
+                max_length=MAX_GROUP_LENGTH,
+                description="the group to summarise (for a bundle with groups: one of them, whose item policy "
+                "scores the respondent)",
+            ),
+        ]
+    ]
+    cohort: NotRequired[
+        Annotated[str, Field(min_length=1, max_length=MAX_GROUP_LENGTH, description="a second breakdown")]
+    ]
+    answers: Annotated[
+        dict[str, Annotated[StrictInt, Field(ge=0, le=MAX_ANSWER_CODE)]],
+        Field(description="item id -> category code (strict whole numbers); omit items not administered"),
+    ]
+
+
+class SummaryOptions(_Strict):
+    """How many plausible values, their seed, and which percentiles to report."""
+
+    plausible_values: int = Field(10, ge=1, le=100, description="draws per respondent")
+    seed: int = Field(20261202, ge=0, le=2**63 - 1, description="the same seed gives the same summaries")
+    percentiles: list[Annotated[float, Field(gt=0, lt=100)]] = Field(default_factory=list, max_length=20)
+
+
+class SummaryRequest(_Strict):
+    """Response vectors to summarise by group (and cohort) with plausible values."""
+
+    responses: list[SummaryVector] = Field(min_length=1)
+    options: SummaryOptions = Field(default_factory=SummaryOptions)
+    _answer_codes: np.ndarray | None = PrivateAttr(default=None)
+
+    def answer_codes(self) -> np.ndarray:
+        """Every vector's answers, one after the other, as int64."""
+        if self._answer_codes is None:
+            self._answer_codes = flat_answer_codes(self.responses)
+        return self._answer_codes
 
 
 class ExcludedItemOut(_Strict):

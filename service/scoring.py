@@ -9,9 +9,10 @@ from typing import Any
 import numpy as np
 
 from calibration.bundle.scorer import UnknownGroup
-from service.errors import AnswerOutOfRange, ProblemError, UnknownGroupProblem, UnknownItem
+from calibration.bundle.summaries import GroupSummaries, summarize_groups
+from service.errors import AnswerOutOfRange, InvalidScoreRequest, ProblemError, UnknownGroupProblem, UnknownItem
 from service.registry import LoadedBundle
-from service.schemas import CAUTION, ScoreRequest
+from service.schemas import CAUTION, ScoreRequest, SummaryRequest
 
 
 def _finite(value: float) -> float | None:
@@ -83,7 +84,7 @@ def score_vectors(loaded: LoadedBundle, request: ScoreRequest, observe: Observer
     }
 
 
-def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
+def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest | SummaryRequest) -> np.ndarray:
     """(n_vectors, n_items) answers, NaN where none was given; errors name the earliest offending vector.
 
     Vectors usually share one key order: each distinct layout of keys is placed with one column
@@ -128,13 +129,15 @@ def _answer_matrix(loaded: LoadedBundle, request: ScoreRequest) -> np.ndarray:
     return x
 
 
-def _unknown_item(loaded: LoadedBundle, request: ScoreRequest, i: int, item: str) -> tuple[int, ProblemError]:
+def _unknown_item(
+    loaded: LoadedBundle, request: ScoreRequest | SummaryRequest, i: int, item: str
+) -> tuple[int, ProblemError]:
     respondent = request.responses[i]["id"]
     message = f"responses[{i}] (id {respondent!r}): item {item!r} is not in bundle {loaded.bundle.label}"
     return i, UnknownItem(message, field=f"responses.{i}.answers.{item}")
 
 
-def _resolve_groups(loaded: LoadedBundle, request: ScoreRequest) -> tuple[str, ...]:
+def _resolve_groups(loaded: LoadedBundle, request: ScoreRequest | SummaryRequest) -> tuple[str, ...]:
     scorer = loaded.scorer
     try:
         return scorer.resolve_groups([v.get("group") for v in request.responses], len(request.responses))
@@ -162,3 +165,40 @@ def _add_summed_scores(results: list[dict[str, Any]], summed_scores: list[float]
         if math.isfinite(summed):
             theta_s, se_s = tables.get(entry["group"], {}).get(int(summed), (math.nan, math.nan))
             entry.update(summed_score=int(summed), summed_score_theta=_finite(theta_s), summed_score_se=_finite(se_s))
+
+
+def summarize_vectors(loaded: LoadedBundle, request: SummaryRequest) -> GroupSummaries:
+    """Group (and cohort) summaries of the vectors with plausible values (see calibration.bundle.summaries).
+
+    With one bundle group a vector's ``group`` is any reporting group (none: the bundle's); with several
+    it must be one of them (its item policy scores the respondent). Cohorts are given for every vector or none.
+    """
+    scorer = loaded.scorer
+    x = _answer_matrix(loaded, request)
+    if scorer.default_group is not None:
+        scored_as = [scorer.default_group] * len(request.responses)
+        labels = [v.get("group") or scorer.default_group for v in request.responses]
+    else:
+        scored_as = labels = list(_resolve_groups(loaded, request))
+    given = [v.get("cohort") for v in request.responses]
+    cohorts = None
+    if any(c is not None for c in given):
+        i = next((i for i, c in enumerate(given) if c is None), None)
+        if i is not None:
+            raise InvalidScoreRequest(
+                f"responses[{i}] (id {request.responses[i]['id']!r}): no cohort; give every respondent a cohort, "
+                "or none",
+                field=f"responses.{i}.cohort",
+            )
+        cohorts = [str(c) for c in given]
+    options = request.options
+    return summarize_groups(
+        scorer,
+        x,
+        labels,
+        scored_as=scored_as,
+        cohorts=cohorts,
+        draws=options.plausible_values,
+        seed=options.seed,
+        percentiles=options.percentiles,
+    )

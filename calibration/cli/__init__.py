@@ -225,6 +225,45 @@ def _add_bundle(sub: argparse._SubParsersAction) -> None:
     _subparser(bsub, "schema", "print the bundle JSON Schema")
 
 
+def _percentiles(text: str) -> tuple[float, ...]:
+    try:
+        values = tuple(float(p) for p in text.split(",") if p.strip())
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a comma-separated list of numbers") from None
+    if any(not 0 < p < 100 for p in values):
+        raise argparse.ArgumentTypeError(f"percentiles lie strictly between 0 and 100, got {text}")
+    return values
+
+
+def _add_summarize(sub: argparse._SubParsersAction) -> None:
+    summ = _subparser(
+        sub,
+        "summarize",
+        "compare groups (and cohorts) from a response file with plausible values: each group's mean and SD "
+        "with SEs and intervals, and every difference of means (Rubin's rules)",
+    )
+    summ.add_argument("responses", type=Path, help="CSV or Parquet: an id column, the group column, item columns")
+    summ.add_argument("--bundle", required=True, help="NAME, NAME@VERSION or NAME@ALIAS")
+    summ.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    summ.add_argument(
+        "--group-column",
+        required=True,
+        help="the groups to compare (for a bundle with groups: its groups, whose item policy scores them)",
+    )
+    summ.add_argument("--cohort-column", help="a second breakdown (e.g. year or programme): cells are group x cohort")
+    summ.add_argument(
+        "--out",
+        required=True,
+        type=Path,
+        help="CSV of the group summaries; the differences go to the same name with _differences",
+    )
+    summ.add_argument("--plausible-values", type=_positive_int, default=10, help="draws per respondent")
+    summ.add_argument("--seed", type=int, default=20261202, help="seed of the draws (the same seed, the same output)")
+    summ.add_argument("--percentiles", type=_percentiles, default=(), help="e.g. 10,50,90 (default: none)")
+    summ.add_argument("--id-column", default="id", help="column holding the respondent ids")
+    summ.add_argument("--ignore-columns", default="", help="comma-separated columns that are not items")
+
+
 def _add_drift(sub: argparse._SubParsersAction) -> None:
     drift = _subparser(
         sub,
@@ -271,7 +310,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"equitheta {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)
-    for add in (_add_calibrate, _add_score, _add_bundle, _add_drift, _add_serve, _add_demo):
+    for add in (_add_calibrate, _add_score, _add_summarize, _add_bundle, _add_drift, _add_serve, _add_demo):
         add(sub)
     return parser
 
@@ -310,6 +349,10 @@ def _run(args: argparse.Namespace) -> int:
             from calibration.cli.bundle import run_bundle
 
             return run_bundle(args)
+        if args.command == "summarize":
+            from calibration.cli.summarize import run_summarize
+
+            return run_summarize(args)
         if args.command == "drift":
             from calibration.cli.drift import run_drift
 

@@ -9,13 +9,21 @@ slots), ``estep``, ``mstep``, ``latent`` (group densities), ``optimizer`` (EM + 
 from calibration.estimation.estep import HeldLikelihood
 from calibration.estimation.inference import threshold_se
 from calibration.estimation.latent import LatentSpec
-from calibration.estimation.mml import HeldItemFit, calibrate_groups, calibrate_single_group, fit_item_given_offsets
+from calibration.estimation.mml import (
+    CellDensities,
+    HeldItemFit,
+    calibrate_groups,
+    calibrate_single_group,
+    fit_cell_densities,
+    fit_item_given_offsets,
+)
 from calibration.estimation.results import CalibrationFit, MultiGroupFit
 from calibration.estimation.settings import ConvergenceWarning, EMSettings, SlopePrior
 from calibration.irt.likelihood import marginal_log_likelihood
 
 __all__ = [
     "CalibrationFit",
+    "CellDensities",
     "ConvergenceWarning",
     "EMSettings",
     "HeldItemFit",
@@ -25,6 +33,7 @@ __all__ = [
     "SlopePrior",
     "calibrate_groups",
     "calibrate_single_group",
+    "fit_cell_densities",
     "fit_item_given_offsets",
     "marginal_log_likelihood",
     "threshold_se",

@@ -32,7 +32,13 @@ from calibration.estimation.optimizer import run_em
 from calibration.estimation.results import CalibrationFit, MultiGroupFit
 from calibration.estimation.settings import EMSettings
 from calibration.estimation.start import starting_values
-from calibration.irt.likelihood import checked_responses, normal_log_weights, with_single_threaded_blas
+from calibration.irt.likelihood import (
+    checked_responses,
+    exp_by_rows,
+    normal_log_weights,
+    normal_weights,
+    with_single_threaded_blas,
+)
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
 
 
@@ -363,3 +369,63 @@ def _newton(vec: FloatArray, terms: Callable[[FloatArray], HeldTerms | None]) ->
         if np.max(np.abs(step)) < NEWTON_TOLERANCE:
             return vec, current
     return vec, None
+
+
+@dataclass(frozen=True)
+class CellDensities:
+    """Normal latent densities of reporting cells with the items held (arrays of shape (n_cells,))."""
+
+    mean: FloatArray
+    sd: FloatArray
+    log_likelihood: float
+    converged: bool
+    n_iter: int
+
+
+def fit_cell_densities(
+    log_likelihood: FloatArray,
+    cells: IntArray,
+    n_cells: int,
+    points: FloatArray,
+    *,
+    settings: EMSettings | None = None,
+) -> CellDensities:
+    """Marginal ML of a normal latent density per cell, every item held (the population model of plausible values).
+
+    ``log_likelihood`` (n, Q) is each respondent's ``log P(x_i | theta_q)`` on ``points`` under the held
+    item parameters, ``cells`` (n,) each respondent's cell 0 .. n_cells - 1. Bock-Aitkin EM on the cells'
+    means and SDs (the posterior moments of :func:`latent_update`), SQUAREM-accelerated; the densities
+    are on the items' scale.
+    """
+    settings = settings or EMSettings(tolerance=1e-6)
+    cells = np.asarray(cells, dtype=np.int64)
+    members = [np.flatnonzero(cells == c) for c in range(n_cells)]
+    scaled, peak = exp_by_rows(np.asarray(log_likelihood, dtype=np.float64).copy())  # held: exponentiate once
+
+    def em_map(vec: FloatArray) -> tuple[FloatArray, float]:
+        mean, sd = vec[:n_cells], vec[n_cells:]
+        if np.any(sd <= 0) or not np.all(np.isfinite(vec)):
+            raise ValueError("invalid parameters")
+        new, log_lik = vec.copy(), 0.0
+        for c, rows in enumerate(members):
+            if rows.size == 0:
+                continue
+            w = normal_weights(points, float(mean[c]), float(sd[c]))
+            joint = scaled[rows] * w
+            total = joint.sum(axis=1)
+            log_lik += float(np.log(total).sum() + peak[rows].sum())
+            mass = (joint / total[:, None]).sum(axis=0)
+            new[c], new[n_cells + c] = latent_update(
+                mass, points, float(mean[c]), float(sd[c]), free_mean=True, free_sd=True
+            )
+        return new, log_lik
+
+    start = np.concatenate([np.zeros(n_cells), np.ones(n_cells)])
+    vec, converged, n_iter, history = run_em(start, em_map, settings, warn=False)
+    return CellDensities(
+        mean=vec[:n_cells],
+        sd=vec[n_cells:],
+        log_likelihood=history[-1] if history else float("nan"),
+        converged=converged,
+        n_iter=n_iter,
+    )

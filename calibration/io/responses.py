@@ -211,8 +211,8 @@ def _trimmed_ids(table: TextTable, id_column: str) -> tuple[Any, list[str]]:
     return ids, [f"{table.label(i)}, column {id_column!r}: empty respondent id" for i in empty]
 
 
-def _group_problems(groups: list[str], table: TextTable, group_column: str) -> list[str]:
-    return [f"{table.label(i)}, column {group_column!r}: empty group" for i, g in enumerate(groups) if not g]
+def _group_problems(groups: list[str], table: TextTable, group_column: str, what: str = "group") -> list[str]:
+    return [f"{table.label(i)}, column {group_column!r}: empty {what}" for i, g in enumerate(groups) if not g]
 
 
 def _group_labels(table: TextTable, group_column: str | None, source: str) -> tuple[str, ...] | None:
@@ -237,6 +237,7 @@ class ScoringBatch:
     ids: Any  # Arrow string array, trimmed
     groups: list[str] | None
     responses: FloatArray
+    cohorts: list[str] | None = None
 
 
 class ScoringInput:
@@ -261,12 +262,17 @@ class ScoringInput:
         group_column: str | None = None,
         ignore_columns: Sequence[str] = (),
         batch_rows: int = SCORING_BATCH_ROWS,
+        cohort_column: str | None = None,
     ) -> None:
         self.path = Path(path)
         self.source = self.path.name
         columns = read_header(self.path)
         check_required_columns(self.path, columns, id_column, group_column)
-        reserved = {id_column, *ignore_columns} | ({group_column} if group_column else set())
+        if cohort_column is not None and cohort_column not in columns:
+            raise InputError(
+                self.source, [f"no cohort column {cohort_column!r}; the columns are: {', '.join(columns)}"]
+            )
+        reserved = {id_column, *ignore_columns} | {c for c in (group_column, cohort_column) if c}
         unknown = [c for c in columns if c not in reserved and c not in item_categories]
         problems = [
             f"column {c!r} is not an item of the bundle (known items: {', '.join(list(item_categories)[:8])}"
@@ -284,6 +290,7 @@ class ScoringInput:
         absent = [c for c in self.item_ids if c not in self.present]
         self.notes = [f"bundle items with no column, scored as not administered: {', '.join(absent)}"] if absent else []
         self.id_column, self.group_column, self.batch_rows = id_column, group_column, batch_rows
+        self.cohort_column = cohort_column
         self.header_lines = 0 if self.path.suffix.lower() in (".parquet", ".pq") else 1
 
     def batches(self) -> Iterator[ScoringBatch]:
@@ -293,7 +300,8 @@ class ScoringInput:
         (or any other problem) sends the reader back to the start to read the file as text, which
         names every bad cell. Rows already yielded are not yielded again.
         """
-        needed = [self.id_column, *([self.group_column] if self.group_column else []), *self.present]
+        labels = [c for c in (self.group_column, self.cohort_column) if c]
+        needed = [self.id_column, *labels, *self.present]
         typed = self.header_lines == 1
         yielded = 0
         if typed:
@@ -320,6 +328,9 @@ class ScoringInput:
             groups = None if self.group_column is None else table.text(self.group_column)
             if groups is not None and self.group_column is not None:
                 batch_problems += _group_problems(groups, table, self.group_column)
+            cohorts = None if self.cohort_column is None else table.text(self.cohort_column)
+            if cohorts is not None and self.cohort_column is not None:
+                batch_problems += _group_problems(cohorts, table, self.cohort_column, "cohort")
             parsed, code_problems, bad_cells = parse_codes(table, self.present)
             range_problems, out_of_range = self._range_problems(parsed, table)
             total += len(batch_problems) + bad_cells + out_of_range
@@ -332,7 +343,11 @@ class ScoringInput:
             responses = np.full((table.n_rows - start, len(self.item_ids)), np.nan)
             responses[:, self.positions] = parsed[start:]
             yield ScoringBatch(
-                table.first_row + start, ids.slice(start), None if groups is None else groups[start:], responses
+                table.first_row + start,
+                ids.slice(start),
+                None if groups is None else groups[start:],
+                responses,
+                None if cohorts is None else cohorts[start:],
             )
         if n_rows == 0:
             raise InputError(self.source, ["the file has a header but no respondents"])

@@ -23,7 +23,7 @@ from service.api.docs import example
 from service.errors import PayloadTooLarge
 from service.metrics import Metrics
 from service.registry import BundleRegistry, LoadedBundle
-from service.schemas import ScoreRequest
+from service.schemas import ScoreRequest, SummaryRequest
 from service.security import KeyRing, Principal
 from service.settings import Settings
 
@@ -119,15 +119,26 @@ ScoreBody = Annotated[
 ]
 
 
+def _within_limit(n_vectors: int, request: Request) -> None:
+    """Refuse (413) a request with more vectors than ``max_vectors``."""
+    settings: Settings = request.app.state.settings
+    if n_vectors > settings.max_vectors:
+        raise PayloadTooLarge(
+            f"{n_vectors} response vectors; at most {settings.max_vectors} per request (EQUITHETA_MAX_VECTORS)"
+        )
+
+
 async def score_batch(body: ScoreBody, request: Request) -> ScoreRequest:
     """The score request, refused (413) when it holds more vectors than ``max_vectors``."""
-    settings: Settings = request.app.state.settings
-    if len(body.responses) > settings.max_vectors:
-        raise PayloadTooLarge(
-            f"{len(body.responses)} response vectors; at most {settings.max_vectors} per request "
-            "(EQUITHETA_MAX_VECTORS)"
-        )
+    _within_limit(len(body.responses), request)
+    return body
+
+
+async def summary_batch(body: SummaryRequest, request: Request) -> SummaryRequest:
+    """The summary request, refused (413) when it holds more vectors than ``max_vectors``."""
+    _within_limit(len(body.responses), request)
     return body
 
 
 ScoreBatch = Annotated[ScoreRequest, Depends(score_batch)]
+SummaryBatch = Annotated[SummaryRequest, Depends(summary_batch)]

@@ -160,3 +160,23 @@ def test_calibrate_link_to_prints_the_link_and_refuses_what_it_cannot_do(
     assert main(["bundle", "diff", "skills@1", linked.label, "--store", str(store_dir)]) == 0
     diff = capsys.readouterr().out
     assert f"skills@1 -> {linked.label}: both on the scale of skills@1" in diff and "NUM09" in diff
+
+
+def test_summarize_writes_groups_and_differences(
+    published: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture
+) -> None:
+    # skills@1 is a single-group bundle: the site column then holds reporting groups of any name.
+    _, store_dir = published
+    data = tmp_path / "sites.csv"
+    make_demo_responses(900, seed=8).to_csv(data, index=False)
+    out = tmp_path / "summary.csv"
+    base = ["summarize", str(data), "--bundle", "skills@1", "--store", str(store_dir), "--out", str(out)]
+    assert main([*base, "--group-column", "site", "--percentiles", "25,75"]) == 0
+    printed = capsys.readouterr().out
+    cells = pd.read_csv(out)
+    differences = pd.read_csv(tmp_path / "summary_differences.csv")
+    assert sorted(cells["group"]) == ["marsh-creek", "port-ellery", "ridgeview"] and cells["n"].sum() == 900
+    assert {"mean", "se", "ci_low", "ci_high", "sd", "p25", "p75", "plausible_values", "seed"} <= set(cells.columns)
+    assert len(differences) == 3 and "Rubin's rules" in printed and "describe groups, not individuals" in printed
+    assert main([*base, "--group-column", "region"]) == 2  # no such column: named, nothing written
+    assert "no group column 'region'" in capsys.readouterr().err
