@@ -288,9 +288,13 @@ class BundleRegistry:
             raise BundleNotFound(f"no bundle named {name!r}")
         return versions, self._view.aliases.get(name, {})
 
+    def alias_records(self, name: str) -> dict[str, AliasRecord]:
+        """Every alias of ``name`` with its history, read from the store."""
+        return self._store(self.store.aliases, name)  # type: ignore[no-any-return]
+
     def alias_record(self, name: str, alias: str) -> AliasRecord:
         """One alias with its history, read from the store (404 when the bundle or the alias is unknown)."""
-        aliases = self._store(self.store.aliases, name)
+        aliases = self.alias_records(name)
         if alias not in aliases:
             self.versions(name)  # an unknown bundle says so first
             known = ", ".join(sorted(aliases)) or "none"

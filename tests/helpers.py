@@ -158,3 +158,44 @@ def metric_value(text: str, sample: str, **labels: str) -> float:
             if s.name == sample and all(s.labels.get(k) == v for k, v in labels.items()):
                 return float(s.value)
     raise AssertionError(f"no sample {sample} {labels} in the metrics")
+
+
+ARTIFACTS = Path(__file__).parents[1] / "test-artifacts"
+"""Screenshots and pages the browser tests leave for a person to look at (not committed)."""
+
+
+@contextlib.contextmanager
+def headless_chromium() -> Iterator[object]:
+    """Debian's chromium driven by its own chromedriver (selenium; no download, no network).
+
+    Skips when either is missing, unless EQUITHETA_REQUIRE_BROWSER=1 (CI), which fails instead.
+    """
+    chromium, driver_path = shutil.which("chromium"), shutil.which("chromedriver")
+    if chromium is None or driver_path is None:
+        if os.environ.get("EQUITHETA_REQUIRE_BROWSER") == "1":
+            pytest.fail("EQUITHETA_REQUIRE_BROWSER=1 but Debian's chromium or chromedriver is not installed")
+        pytest.skip("no chromium/chromedriver (scripts/test installs them where it can)")
+    os.environ.setdefault("SE_OFFLINE", "true")  # never let selenium look for a driver on the network
+    from selenium import webdriver
+    from selenium.webdriver.chrome.service import Service
+
+    options = webdriver.ChromeOptions()
+    options.binary_location = chromium
+    for flag in (
+        "--headless=new",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-dev-shm-usage",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--no-first-run",
+        "--window-size=1280,1800",
+    ):
+        options.add_argument(flag)
+    options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
+    driver = webdriver.Chrome(service=Service(driver_path), options=options)
+    try:
+        yield driver
+    finally:
+        driver.quit()

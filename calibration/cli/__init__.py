@@ -264,6 +264,31 @@ def _add_summarize(sub: argparse._SubParsersAction) -> None:
     summ.add_argument("--ignore-columns", default="", help="comma-separated columns that are not items")
 
 
+def _add_review(sub: argparse._SubParsersAction) -> None:
+    review = _subparser(
+        sub,
+        "review",
+        "write a version's proposed policy cells (not invariant, or flagged by any method) as an editable CSV: "
+        "change a status and write a note, then recalibrate with --policy-overrides FILE",
+    )
+    review.add_argument("reference", help="NAME@VERSION or NAME@ALIAS")
+    review.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    review.add_argument("--out", required=True, type=Path, help="the decisions file (CSV) to write")
+    review.add_argument("--all", action="store_true", help="every item in every focal group, not only those for review")
+
+
+def _add_report(sub: argparse._SubParsersAction) -> None:
+    report = _subparser(
+        sub,
+        "report",
+        "write a version's calibration report: one self-contained HTML page (plots inline, no network) for "
+        "reviewers and evaluators",
+    )
+    report.add_argument("reference", help="NAME, NAME@VERSION or NAME@ALIAS")
+    report.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    report.add_argument("--out", required=True, type=Path, help="the HTML file to write")
+
+
 def _add_drift(sub: argparse._SubParsersAction) -> None:
     drift = _subparser(
         sub,
@@ -310,7 +335,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"equitheta {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)
-    for add in (_add_calibrate, _add_score, _add_summarize, _add_bundle, _add_drift, _add_serve, _add_demo):
+    commands = (_add_calibrate, _add_score, _add_summarize, _add_bundle, _add_review, _add_report, _add_drift)
+    for add in (*commands, _add_serve, _add_demo):
         add(sub)
     return parser
 
@@ -353,6 +379,14 @@ def _run(args: argparse.Namespace) -> int:
             from calibration.cli.summarize import run_summarize
 
             return run_summarize(args)
+        if args.command == "review":
+            from calibration.cli.review import run_review
+
+            return run_review(args)
+        if args.command == "report":
+            from calibration.cli.report import run_report
+
+            return run_report(args)
         if args.command == "drift":
             from calibration.cli.drift import run_drift
 

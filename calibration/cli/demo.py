@@ -114,9 +114,15 @@ def _second_cycle(args: argparse.Namespace, root: Path, store_dir: Path) -> int:
     code = main(["bundle", "diff", "tidewater-skills@1", "tidewater-skills@2", *base])
     if code != 0:
         return code
+    report = root / "tidewater_skills_report.html"
+    console.print("6. the calibration report of version 2 for reviewers and evaluators", highlight=False)
+    code = main(["report", "tidewater-skills@2", *base, "--out", str(report)])
+    if code != 0:
+        return code
     console.print(
-        f"done. Try: equitheta bundle show tidewater-skills@2 --store {store_dir}; move the production alias to the "
-        f"new version with: equitheta bundle alias tidewater-skills@2 production --store {store_dir}",
+        f"done. Open {report} in a browser. Try: equitheta review tidewater-skills@2 --store {store_dir} --out "
+        f"decisions.csv (the cells for content review); move the production alias to the new version with: "
+        f"equitheta bundle alias tidewater-skills@2 production --store {store_dir}",
         highlight=False,
     )
     return 0

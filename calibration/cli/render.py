@@ -7,10 +7,11 @@ of a rung with no freed cell, an alpha without complete rows) prints as a dash.
 from __future__ import annotations
 
 from calibration.bundle.compare import BundleDiff
-from calibration.bundle.schema import Bundle, IrtDifRow, ObservedDifRow
+from calibration.bundle.schema import Bundle
 from calibration.bundle.store import AliasRecord
 from calibration.cli.console import dash, new_table, out_console
 from calibration.dif.effect_size import effect_interval
+from calibration.report.evidence import cells_for_review, irt_text, logistic_text, observed_text
 
 CAUTION = (
     "Every score carries measurement error: report the SE with it. Scores with low reliability or few "
@@ -22,9 +23,6 @@ DIF_CAUTION = (
     "left out or treated differently for a group. Leaving an item out for one group changes that group's "
     "content coverage."
 )
-# Observed-score classes and logistic levels that count as "this method sees DIF".
-OBSERVED_CONCERN_CLASSES = ("B", "C")
-LOGISTIC_CONCERN_LEVELS = ("moderate", "large")
 # Theta points at which `bundle show` prints the test information.
 INFORMATION_THETAS = (-3.0, -2.0, -1.0, 0.0, 1.0, 2.0, 3.0)
 
@@ -158,52 +156,11 @@ def _print_groups(bundle: Bundle) -> None:
     console.print(f"  anchors: {', '.join(anchors.items) or 'none'} ({anchors.method})", highlight=False)
 
 
-def _observed_text(row: ObservedDifRow | None) -> str:
-    if row is None:
-        return "-"
-    if row.method == "mantel-haenszel":
-        return f"MH D-DIF {dash(row.mh_d_dif, '.2f')} ({row.dif_class})"
-    return f"Mantel SMD/SD {dash(row.smd_over_sd, '.2f')} ({row.dif_class})"
-
-
-def _logistic_text(row: ObservedDifRow | None) -> str:
-    if row is None or row.logistic_delta_r2 is None:
-        return "-"
-    return f"{row.logistic_delta_r2:.3f} ({row.logistic_level or '-'})"
-
-
-def _irt_text(row: IrtDifRow | None) -> tuple[str, str, str]:
-    if row is None:
-        return "-", "-", "-"
-    effect = dash(row.effect_theta, ".2f")
-    if row.effect_theta is not None and row.effect_theta_se is not None:
-        low, high = effect_interval(row.effect_theta, row.effect_theta_se)
-        effect += f" [{low:.2f}, {high:.2f}]"
-    return f"{row.g2_omnibus:.1f} ({row.df_omnibus})", dash(row.p_adjusted, ".3g"), f"{effect} {row.level}"
-
-
-def agreement(irt: IrtDifRow | None, observed: ObservedDifRow | None) -> str:
-    """Whether the IRT test and the observed-score methods point the same way, in words."""
-    irt_flag = irt is not None and irt.flagged
-    observed_flag = observed is not None and (
-        observed.dif_class[:1] in OBSERVED_CONCERN_CLASSES or observed.logistic_level in LOGISTIC_CONCERN_LEVELS
-    )
-    if irt_flag and observed_flag:
-        return "agree: DIF"
-    if irt_flag:
-        return "disagree: IRT flags it, the observed-score methods call it negligible"
-    if observed_flag:
-        return "disagree: observed-score methods see DIF, the IRT test does not flag it"
-    return "agree: no DIF"
-
-
 def print_policy_evidence(bundle: Bundle) -> None:
     """Every cell that is not invariant or that any method flags, with all the evidence side by side."""
     console = out_console()
     if bundle.dif is None:
         return
-    irt = {(r.item, r.group): r for r in bundle.dif.irt if r.stage == "test"}
-    observed = {(r.item, r.group): r for r in bundle.dif.observed}
     table = new_table(
         "item policy and DIF evidence (cells not invariant, or flagged by any method; proposals for review)",
         [
@@ -219,30 +176,22 @@ def print_policy_evidence(bundle: Bundle) -> None:
         ],
         right=("IRT G2 (df)", "FDR p"),
     )
-    for item in bundle.items:
-        for group, policy in item.policy.items():
-            if group == bundle.metric.reference_group:
-                continue
-            key = (item.id, group)
-            verdict = agreement(irt.get(key), observed.get(key))
-            if policy.status == "invariant" and verdict == "agree: no DIF":
-                continue
-            g2, p, effect = _irt_text(irt.get(key))
-            status = policy.status if policy.status == "invariant" else f"{policy.status}"
-            if policy.reason.startswith("reviewer override"):
-                status += " (reviewer)"
-            table.add_row(
-                item.id,
-                group,
-                status,
-                g2,
-                p,
-                effect,
-                _observed_text(observed.get(key)),
-                _logistic_text(observed.get(key)),
-                verdict,
-            )
-    if table.row_count:
+    cells = cells_for_review(bundle)
+    for cell in cells:
+        g2, p, effect = irt_text(cell.irt)
+        status = cell.policy.status + (" (reviewer)" if cell.reviewed else "")
+        table.add_row(
+            cell.item,
+            cell.group,
+            status,
+            g2,
+            p,
+            effect,
+            observed_text(cell.observed),
+            logistic_text(cell.observed),
+            cell.verdict,
+        )
+    if cells:
         console.print(table)
         for item in bundle.items:
             for group, policy in item.policy.items():

@@ -60,7 +60,9 @@ def read_policy_overrides(path: Path) -> list[tuple[str, str, str, str]]:
     """Reviewer decisions: CSV columns ``item``, ``group``, ``status`` and ``note`` (all required).
 
     Returns (item, group, status, note) tuples; statuses and names are checked
-    against the calibration by the pipeline, which knows the items and groups.
+    against the calibration by the pipeline, which knows the items and groups. A file written by
+    ``equitheta review`` also has a ``proposed`` column: a row whose status is still the proposed one
+    and has no note is no decision and is skipped; every other column is context and ignored.
     """
     table = read_table(path)
     needed = ["item", "group", "status", "note"]
@@ -69,9 +71,12 @@ def read_policy_overrides(path: Path) -> list[tuple[str, str, str, str]]:
         raise InputError(
             path.name, [f"the policy override file needs columns {', '.join(needed)}; missing: {', '.join(missing)}"]
         )
+    columns = needed + (["proposed"] if "proposed" in table.columns else [])
     out, problems = [], []
-    for i, row in enumerate(table_rows(table, needed)):
+    for i, row in enumerate(table_rows(table, columns)):
         values = [row[c] for c in needed]
+        if row.get("proposed") and values[2].lower() == row["proposed"].lower() and not values[3]:
+            continue  # the proposal kept: no decision to record
         empty = [c for c, v in zip(needed, values, strict=True) if not v]
         if empty:
             problems.append(f"{row_label(i, table.header_lines)}: empty {', '.join(empty)}")

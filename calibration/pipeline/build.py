@@ -141,6 +141,7 @@ def _item_entries(
                 status=cell.status,  # type: ignore[arg-type]
                 reason=cell.reason,
                 evidence=cell.evidence or PolicyEvidence(),
+                proposed_status=cell.proposed,  # type: ignore[arg-type]
                 slope=float(fit.tables[g, j, 0]) if specific else None,
                 intercepts=[float(c) for c in fit.tables[g, j, 1:kj]] if specific else None,
             )

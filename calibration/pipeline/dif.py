@@ -177,7 +177,16 @@ def _irt_row(
         effect_theta_se=finite_or_none(test.effect_theta_se),
         level=test.level(settings),  # type: ignore[arg-type]
         flagged=stage == "test" and test.flagged(settings),
+        reference_slope=float(test.reference_table[0]),
+        reference_intercepts=_finite_intercepts(test.reference_table),
+        focal_slope=float(test.focal_table[0]),
+        focal_intercepts=_finite_intercepts(test.focal_table),
     )
+
+
+def _finite_intercepts(table: np.ndarray) -> list[float]:
+    """The intercepts of a (slope, intercepts...) slot row without its NaN padding."""
+    return [float(c) for c in table[1:] if np.isfinite(c)]
 
 
 def _observed_rows(

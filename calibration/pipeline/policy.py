@@ -23,6 +23,7 @@ class CellPolicy:
     status: str
     reason: str
     evidence: PolicyEvidence | None = None
+    proposed: str | None = None  # the computed status, once a reviewer's decision replaces it
 
 
 class PolicyTable:
@@ -52,9 +53,10 @@ class PolicyTable:
         """Reviewer decisions replace the computed status (checked first; see :func:`check_overrides`)."""
         check_overrides(overrides, item_ids, group_names)
         for o in overrides:
-            cell = (item_ids.index(o.item), group_names.index(o.group))
-            self._cells[cell].status = o.status
-            self._cells[cell].reason = f"reviewer override: {o.note.strip()}"
+            cell = self._cells[(item_ids.index(o.item), group_names.index(o.group))]
+            cell.proposed = cell.status if cell.proposed is None else cell.proposed
+            cell.status = o.status
+            cell.reason = f"reviewer override: {o.note.strip()}"
 
     def group_free(self, k_max: int, *, statuses: tuple[str, ...] = ("group_specific",)) -> np.ndarray:
         """(n_groups, n_items, k_max): True where a cell's status is one of ``statuses`` (its own parameters)."""

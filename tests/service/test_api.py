@@ -307,3 +307,13 @@ def test_alias_moves_record_the_key_name_never_the_key(keyed_settings: Settings)
     assert document["version"] == 1 and [m["by"] for m in document["history"]] == ["API key publisher"] * 2
     assert all(m["moved_at"].endswith("Z") for m in document["history"])
     assert "example-publish-key" not in history.text
+
+
+def test_report_route_answers_the_page(keyed_settings: Settings) -> None:
+    with TestClient(create_app(keyed_settings)) as client:
+        reply = client.get("/v1/bundles/pantry-checkout/versions/1/report", headers=auth("reader"))
+        assert client.get("/v1/bundles/pantry-checkout/versions/1/report").status_code == 401
+        missing = client.get("/v1/bundles/pantry-checkout/versions/9/report", headers=auth("reader"))
+    assert reply.status_code == 200 and reply.headers["content-type"].startswith("text/html")
+    assert "pantry-checkout@1: calibration report" in reply.text and '<section id="flagged">' in reply.text
+    assert missing.status_code == 404 and missing.headers["content-type"] == "application/problem+json"

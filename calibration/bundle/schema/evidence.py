@@ -113,6 +113,10 @@ class IrtDifRow(Frozen):
     effect_theta_se: float | None = Field(None, description="Delta-method SE of effect_theta")
     level: EffectLevel
     flagged: bool
+    reference_slope: float | None = Field(None, description="the item's reference parameters in the freed model")
+    reference_intercepts: list[float] | None = None
+    focal_slope: float | None = Field(None, description="the group's own parameters in the freed model")
+    focal_intercepts: list[float] | None = None
 
 
 class DifSettingsRecord(Frozen):

@@ -71,6 +71,9 @@ class GroupPolicy(Frozen):
     status: PolicyStatus
     reason: str
     evidence: PolicyEvidence = Field(default_factory=PolicyEvidence)
+    proposed_status: PolicyStatus | None = Field(
+        None, description="the status the evidence proposed, when a reviewer's decision replaced it (reason: the note)"
+    )
     slope: float | None = Field(None, description="Group-specific slope when status is group_specific")
     intercepts: list[float] | None = Field(None, description="Group-specific intercepts when group_specific")
 

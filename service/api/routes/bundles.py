@@ -8,7 +8,7 @@ from __future__ import annotations
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Query
-from fastapi.responses import JSONResponse
+from fastapi.responses import HTMLResponse, JSONResponse
 
 from calibration.bundle import Bundle
 from calibration.bundle.compare import BundleDiff, compare_versions
@@ -194,3 +194,21 @@ def drift_watch(_: ReadScope, loaded: PinnedBundle, registry: RegistryDep) -> Dr
             "(run it with EQUITHETA_STORE=redis://... and EQUITHETA_DRIFT_WATCH=true)"
         )
     return drift_report(registry.store, loaded.bundle)
+
+
+@router.get(
+    "/v1/bundles/{name}/versions/{version}/report",
+    response_class=HTMLResponse,
+    responses={
+        200: {"content": {"text/html": {}}, "description": "the calibration report page"},
+        **problem_responses(401, 403, 404, 422, 500, 503),
+    },
+)
+def report_page(_: ReadScope, loaded: PinnedBundle, registry: RegistryDep) -> HTMLResponse:
+    """The calibration report of one version: one self-contained HTML page (plots inline, no network) with the
+    data, the invariance ladder, anchors, the item policy by group, every flagged cell's curves and evidence,
+    information and SE, reliability, item fit, summed-score tables, reviewers' decisions and the cautions."""
+    from calibration.report.page import render_report  # plotting loads only when a report is asked for
+
+    aliases = registry.alias_records(loaded.bundle.name)
+    return HTMLResponse(render_report(loaded.bundle, aliases=aliases))
