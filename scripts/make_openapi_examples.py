@@ -19,6 +19,7 @@ OUT = ROOT / "openapi_examples"
 sys.path.insert(0, str(ROOT))
 
 from calibration.bundle import DirectoryStore  # noqa: E402
+from calibration.bundle.canonical import document_of  # noqa: E402
 from calibration.io import ResponseData  # noqa: E402
 from calibration.irt.simulate import simulate_responses  # noqa: E402
 from calibration.pipeline import calibrate_data  # noqa: E402
@@ -181,9 +182,9 @@ def main() -> int:
     work = Path(tempfile.mkdtemp())
     try:
         bundle = DirectoryStore(work).publish(example_bundle())
-        (OUT / "bundle.json").write_text(json.dumps(bundle.model_dump(mode="json"), indent=1) + "\n")
+        (OUT / "bundle.json").write_text(json.dumps(document_of(bundle), indent=1) + "\n")
         other = bundle.model_copy(update={"created_at": "2026-12-02T00:00:00Z", "hash": ""})
-        (OUT / "bundle_other.json").write_text(json.dumps(other.model_dump(mode="json"), indent=1) + "\n")
+        (OUT / "bundle_other.json").write_text(json.dumps(document_of(other), indent=1) + "\n")
         requests = {
             "score_request": {
                 "responses": [
@@ -221,7 +222,7 @@ def main() -> int:
         cycles = Path(tempfile.mkdtemp())
         DirectoryStore(cycles).put_version(bundle)
         second = DirectoryStore(cycles).publish(example_second_cycle(bundle))
-        (OUT / "bundle_v2.json").write_text(json.dumps(second.model_dump(mode="json"), indent=1) + "\n")
+        (OUT / "bundle_v2.json").write_text(json.dumps(document_of(second), indent=1) + "\n")
         app = create_app(Settings(store=str(cycles), api_keys=keys, log_level="warning"))
         with TestClient(app) as client:
             reply = client.get(DIFF_PATH, headers={"Authorization": f"Bearer {KEYS['reader']}"})

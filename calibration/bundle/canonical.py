@@ -33,10 +33,28 @@ def content_hash(document: dict[str, Any]) -> str:
     return hashlib.sha256(canonical_bytes(body)).hexdigest()
 
 
+# Optional fields added after schema 2: left out of a document while empty, like the link section.
+_LATER_POLICY_FIELDS = ("proposed_status",)
+_LATER_IRT_DIF_FIELDS = ("reference_slope", "reference_intercepts", "focal_slope", "focal_intercepts")
+
+
 def document_of(bundle: Bundle) -> dict[str, Any]:
-    """The bundle as a JSON document; optional sections added by later schema versions are left out when
-    empty, so a document written by an earlier version is written back byte for byte (its hash still holds)."""
-    return bundle.model_dump(mode="json", exclude={"link"} if bundle.link is None else None)
+    """The bundle as a JSON document; optional sections and fields added by later schema versions are left
+    out when empty, so a document written by an earlier version is written back byte for byte (its hash
+    still holds)."""
+    document = bundle.model_dump(mode="json", exclude={"link"} if bundle.link is None else None)
+    for item in document["items"]:
+        for cell in item["policy"].values():
+            _drop_empty(cell, _LATER_POLICY_FIELDS)
+    for row in (document.get("dif") or {}).get("irt", ()):
+        _drop_empty(row, _LATER_IRT_DIF_FIELDS)
+    return document
+
+
+def _drop_empty(entry: dict[str, Any], fields: tuple[str, ...]) -> None:
+    for field in fields:
+        if entry.get(field) is None:
+            entry.pop(field, None)
 
 
 def seal(bundle: Bundle, *, version: int | None = None) -> Bundle:

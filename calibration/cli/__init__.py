@@ -56,7 +56,7 @@ class _Formatter(argparse.ArgumentDefaultsHelpFormatter):
 
     def _get_help_string(self, action: argparse.Action) -> str | None:
         text = action.help or ""
-        if action.default in (None, False, "", argparse.SUPPRESS) or "%(default)" in text:
+        if action.default in (None, False, "", (), argparse.SUPPRESS) or "default" in text:
             return text
         return super()._get_help_string(action)
 

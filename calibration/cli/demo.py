@@ -119,6 +119,16 @@ def _second_cycle(args: argparse.Namespace, root: Path, store_dir: Path) -> int:
     code = main(["report", "tidewater-skills@2", *base, "--out", str(report)])
     if code != 0:
         return code
+    summaries = root / "tidewater_skills_site_summaries.csv"
+    console.print(
+        "7. for evaluators: the sites of the new intake compared with plausible values (version 2)", highlight=False
+    )
+    code = main(
+        ["summarize", str(second_path), "--bundle", "tidewater-skills@2", *base, "--group-column", "site"]
+        + ["--percentiles", "10,50,90", "--out", str(summaries)]
+    )
+    if code != 0:
+        return code
     console.print(
         f"done. Open {report} in a browser. Try: equitheta review tidewater-skills@2 --store {store_dir} --out "
         f"decisions.csv (the cells for content review); move the production alias to the new version with: "

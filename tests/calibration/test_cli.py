@@ -133,6 +133,10 @@ def test_demo_runs_end_to_end(tmp_path: Path, capsys: pytest.CaptureFixture) -> 
     assert second.link.new_items == ["NUM09", "DIG09"]
     out = capsys.readouterr().out
     assert "measurement error" in out and "tidewater-skills@1 -> tidewater-skills@2: both on the scale" in out
+    assert (tmp_path / "tidewater_skills_report.html").read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
+    sites = pd.read_csv(tmp_path / "tidewater_skills_site_summaries.csv")
+    assert sorted(sites["group"]) == ["marsh-creek", "port-ellery", "ridgeview"] and sites["n"].sum() == 600
+    assert "plausible values" in out
 
 
 def test_calibrate_link_to_prints_the_link_and_refuses_what_it_cannot_do(

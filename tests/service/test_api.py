@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 from pathlib import Path
 
@@ -159,6 +160,13 @@ def test_errors_name_the_field_item_or_value(keyed_settings: Settings) -> None:
         assert validation["status"] == 422 and validation["errors"][0]["field"] == "body.responses.0.answers.T1"
         extra = post({"responses": [{"id": "a", "answers": {}}], "colour": "blue"})
         assert extra["errors"][0]["field"] == "body.colour"
+        # The bundle is sent as its stored canonical bytes, so the client can check the hash itself
+        # (hashlib over the document without its hash field, keys sorted, no white space).
+        stored = client.get("/v1/bundles/pantry-checkout/versions/1", headers=auth("reader"))
+        document = stored.json()
+        body = {k: v for k, v in document.items() if k != "hash"}
+        canonical = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
+        assert hashlib.sha256(canonical).hexdigest() == document["hash"]
         missing = client.get("/v1/bundles/pantry-checkout/versions/7", headers=auth("reader")).json()
         assert missing["detail"] == "bundle 'pantry-checkout' has no version 7 (versions: 1)"
         assert client.get("/nowhere").json()["type"].endswith("/not-found")

@@ -8,9 +8,9 @@ from __future__ import annotations
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Query
-from fastapi.responses import HTMLResponse, JSONResponse
+from fastapi.responses import HTMLResponse, JSONResponse, Response
 
-from calibration.bundle import Bundle
+from calibration.bundle import Bundle, to_bytes
 from calibration.bundle.compare import BundleDiff, compare_versions
 from calibration.bundle.drift_watch import DriftWatchReport, drift_report
 from calibration.bundle.redis_store import RedisStore
@@ -68,9 +68,12 @@ def list_versions(_: ReadScope, name: NameParam, registry: RegistryDep) -> Bundl
     response_model=Bundle,
     responses={**problem_responses(401, 403, 404, 422, 500, 503)},
 )
-def get_version(_: ReadScope, loaded: PinnedBundle) -> Bundle:
-    """The whole verified bundle: groups, items, policy per item and group with evidence, anchors, quality."""
-    return loaded.bundle
+def get_version(_: ReadScope, loaded: PinnedBundle) -> Response:
+    """The whole verified bundle: groups, items, policy per item and group with evidence, anchors, quality.
+
+    Sent as its stored canonical bytes, so a client can check the hash: SHA-256 of the same document
+    without its `hash` field, keys sorted, no white space."""
+    return Response(to_bytes(loaded.bundle), media_type="application/json")
 
 
 @router.put(
