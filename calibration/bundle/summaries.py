@@ -5,9 +5,10 @@ is shrunk towards the one prior). Here every respondent gets ``draws`` plausible
 posterior under a latent density conditioned on their reporting cell (the group, and the cohort when
 given), the cells' densities fitted with the bundle's items held (Mislevy 1991). Each cell's mean and SD
 and every pairwise difference of means are computed on each set of draws and combined by Rubin's rules
-(:mod:`calibration.irt.plausible`), with 95% intervals from Rubin's df and the difference's standardized
-size (the difference over the pooled SD). The sampling variance of a mean is that of a simple random
-sample (``sd^2 / n``): a clustered or weighted design needs its own variance estimator. Each
+(:mod:`calibration.irt.plausible`), with 95% intervals from the Barnard-Rubin df (complete-data df n - 1)
+and the difference's standardized size (the difference over the pooled SD). The sampling variance of a
+mean is that of a simple random sample (``sd^2 / n``): a clustered or weighted design needs its own
+variance estimator. Each
 respondent is scored on their group's item set (the bundle's policy); when groups were scored on
 different item sets the summary says so, since their comparison then rests on the items they share.
 """
@@ -48,7 +49,7 @@ class CellSummary(Frozen):
     se: float = Field(description="Rubin's total SE of the mean (measurement and sampling)")
     ci_low: float
     ci_high: float
-    df: float | None = Field(description="Rubin's degrees of freedom (null: no spread between draws)")
+    df: float | None = Field(description="Barnard-Rubin small-sample degrees of freedom of the interval")
     sd: float
     sd_se: float
     percentiles: dict[str, float] = Field(default_factory=dict, description="mean over the draws of each percentile")
@@ -83,7 +84,7 @@ class GroupSummaries(Frozen):
     method: str = (
         "plausible values (Mislevy 1991) under each cell's normal latent density fitted with the items held; "
         "means, SDs and differences combined over the draws by Rubin's rules (1987); 95% intervals from "
-        "Rubin's df; simple random sampling within cells"
+        "Barnard and Rubin's (1999) small-sample df; simple random sampling within cells"
     )
     caution: str = SUMMARY_CAUTION
 
@@ -169,9 +170,10 @@ def summarize_groups(  # noqa: PLR0913 - the data and keyword-only options
         pv = values[rows]  # (n_c, draws)
         n = rows.size
         means, variances = pv.mean(axis=0), pv.var(axis=0, ddof=1) if n > 1 else np.zeros(draws)
-        mean = rubin(means, variances / max(n, 1))
+        complete_df = max(n - 1, 1)  # had theta been observed
+        mean = rubin(means, variances / max(n, 1), complete_df=complete_df)
         sds = np.sqrt(variances)
-        sd = rubin(sds, variances / max(2 * (n - 1), 1))  # var(sd) about sd^2 / (2 (n - 1))
+        sd = rubin(sds, variances / max(2 * (n - 1), 1), complete_df=complete_df)  # var(sd) about sd^2/(2(n-1))
         low, high = mean.interval()
         if n < SMALL_CELL:
             label = group if cohort is None else f"{group} / {cohort}"
@@ -196,7 +198,11 @@ def summarize_groups(  # noqa: PLR0913 - the data and keyword-only options
     for (a, first), (b, second) in itertools.combinations(enumerate(cells), 2):
         pa, pb = values[members[a]], values[members[b]]
         va, vb = pa.var(axis=0, ddof=1), pb.var(axis=0, ddof=1)
-        gap = rubin(pa.mean(axis=0) - pb.mean(axis=0), va / pa.shape[0] + vb / pb.shape[0])
+        gap = rubin(
+            pa.mean(axis=0) - pb.mean(axis=0),
+            va / pa.shape[0] + vb / pb.shape[0],
+            complete_df=max(pa.shape[0] + pb.shape[0] - 2, 1),
+        )
         low, high = gap.interval()
         differences.append(
             DifferenceSummary(

@@ -9,7 +9,10 @@ the posterior on the quadrature grid with each point's mass spread evenly over i
 rule the posterior integrates by), so they are continuous.
 
 Rubin's rules for M sets: ``Q = mean(q_m)``, ``U = mean(u_m)``, ``B = var(q_m)``,
-``T = U + (1 + 1/M) B`` and ``df = (M - 1) (1 + U / ((1 + 1/M) B))^2`` (Rubin 1987).
+``T = U + (1 + 1/M) B`` and ``df = (M - 1) (1 + U / ((1 + 1/M) B))^2`` (Rubin 1987). That df assumes large
+complete-data samples; given the complete-data df ``v`` (e.g. n - 1 for a mean) the small-sample df of
+Barnard & Rubin (1999) is used: ``g = (1 + 1/M) B / T``, ``v_obs = (v + 1) / (v + 3) v (1 - g)`` and
+``df = 1 / (1 / df_Rubin + 1 / v_obs)``, below ``v``.
 """
 
 from __future__ import annotations
@@ -66,14 +69,15 @@ class RubinEstimate:
     between: float  # B: the variance of the M estimates
 
     def interval(self, level: float = 0.95) -> tuple[float, float]:
-        """The ``level`` confidence interval from the t distribution with Rubin's df."""
+        """The ``level`` confidence interval from the t distribution with the estimate's df."""
         quantile = stats.t.ppf(0.5 + level / 2, self.df) if math.isfinite(self.df) else stats.norm.ppf(0.5 + level / 2)
         half = float(quantile) * self.se
         return self.estimate - half, self.estimate + half
 
 
-def rubin(estimates: FloatArray, variances: FloatArray) -> RubinEstimate:
-    """Rubin's rules for M estimates and their sampling variances (see the module)."""
+def rubin(estimates: FloatArray, variances: FloatArray, *, complete_df: float = math.inf) -> RubinEstimate:
+    """Rubin's rules for M estimates and their sampling variances; with ``complete_df`` (the statistic's
+    df had theta been observed) the Barnard-Rubin small-sample df (see the module)."""
     q = np.asarray(estimates, dtype=np.float64)
     u = np.asarray(variances, dtype=np.float64)
     m = q.size
@@ -82,4 +86,8 @@ def rubin(estimates: FloatArray, variances: FloatArray) -> RubinEstimate:
     inflated = (1.0 + 1.0 / m) * between
     total = within + inflated
     df = (m - 1) * (1.0 + within / inflated) ** 2 if inflated > 0 else math.inf
+    if math.isfinite(complete_df) and total > 0:
+        share = inflated / total
+        observed = (complete_df + 1.0) / (complete_df + 3.0) * complete_df * (1.0 - share)
+        df = 1.0 / (1.0 / df + 1.0 / observed) if observed > 0 else df
     return RubinEstimate(float(q.mean()), math.sqrt(total), df, within, between)

@@ -38,6 +38,27 @@ def test_rubins_rules_equal_the_formulas_written_out() -> None:
     assert (low, high) == pytest.approx((ours.estimate - half, ours.estimate + half), rel=1e-14)
 
 
+def test_small_sample_df_follows_barnard_and_rubin() -> None:
+    # Barnard & Rubin (1999), written out here from memory of the paper: g = (1 + 1/M) B / T,
+    # v_obs = (v + 1) / (v + 3) v (1 - g), df = 1 / (1 / df_Rubin + 1 / v_obs). Two limits that do not rest
+    # on memory: a huge complete-data df gives Rubin's df back, and with no spread between the draws the df
+    # is v_obs with g = 0, i.e. v (v + 1) / (v + 3).
+    estimates = np.array([0.512, 0.498, 0.531, 0.507, 0.520])
+    variances = np.array([0.0021, 0.0019, 0.0023, 0.0020, 0.0022])
+    m, v = estimates.size, 24.0
+    u_bar, b = variances.mean(), statistics.variance(estimates)
+    total = u_bar + (1 + 1 / m) * b
+    g = (1 + 1 / m) * b / total
+    df_rubin = (m - 1) / g**2
+    v_obs = (v + 1) / (v + 3) * v * (1 - g)
+    ours = rubin(estimates, variances, complete_df=v)
+    assert ours.df == pytest.approx(1 / (1 / df_rubin + 1 / v_obs), rel=1e-13)
+    assert ours.df < v and ours.se == rubin(estimates, variances).se  # only the df changes
+    assert rubin(estimates, variances, complete_df=1e12).df == pytest.approx(df_rubin, rel=1e-6)
+    flat = rubin(np.full(m, 0.5), variances, complete_df=v)
+    assert flat.df == pytest.approx(v * (v + 1) / (v + 3), rel=1e-13)
+
+
 def test_draws_follow_the_posterior_found_by_quadrature() -> None:
     # One pattern, prior N(0.3, 1.1^2): the continuous posterior's mean and variance by scipy.integrate.quad;
     # 200,000 draws. The draws follow the grid posterior with each point's mass spread over its interval, so
