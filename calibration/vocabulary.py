@@ -8,8 +8,10 @@ from __future__ import annotations
 
 from typing import Literal, get_args
 
-ItemModel = Literal["2pl", "1pl", "grm"]
-"""2PL (right/wrong), 1PL (right/wrong, one slope shared by every 1PL item), graded response."""
+ItemModel = Literal["2pl", "1pl", "grm", "3pl", "gpcm", "pcm"]
+"""2PL (right/wrong), 1PL (right/wrong, one slope shared by every 1PL and PCM item), graded response,
+3PL (right/wrong with a lower asymptote), generalized partial credit, partial credit (GPCM with the
+shared Rasch-family slope)."""
 ScoringMethod = Literal["eap", "map", "ml"]
 """Expected a posteriori, maximum a posteriori, maximum likelihood."""
 PolicyStatus = Literal["invariant", "group_specific", "excluded"]

@@ -34,8 +34,16 @@ def content_hash(document: dict[str, Any]) -> str:
 
 
 # Optional fields added after schema 2: left out of a document while empty, like the link section.
-_LATER_POLICY_FIELDS = ("proposed_status",)
-_LATER_IRT_DIF_FIELDS = ("reference_slope", "reference_intercepts", "focal_slope", "focal_intercepts")
+_LATER_POLICY_FIELDS = ("proposed_status", "guessing")
+_LATER_ITEM_FIELDS = ("guessing", "guessing_se")
+_LATER_IRT_DIF_FIELDS = (
+    "reference_slope",
+    "reference_intercepts",
+    "focal_slope",
+    "focal_intercepts",
+    "reference_guessing",
+    "focal_guessing",
+)
 
 
 def document_of(bundle: Bundle) -> dict[str, Any]:
@@ -44,6 +52,7 @@ def document_of(bundle: Bundle) -> dict[str, Any]:
     still holds)."""
     document = bundle.model_dump(mode="json", exclude={"link"} if bundle.link is None else None)
     for item in document["items"]:
+        _drop_empty(item, _LATER_ITEM_FIELDS)
         for cell in item["policy"].values():
             _drop_empty(cell, _LATER_POLICY_FIELDS)
     for row in (document.get("dif") or {}).get("irt", ()):

@@ -18,6 +18,7 @@ import numpy as np
 from pydantic import Field
 
 from calibration.bundle.schema import Bundle, Frozen, ItemEntry
+from calibration.bundle.scorer import entry_parameters
 from calibration.bundle.store import scale_chain
 from calibration.dif.effect_size import effect_size
 from calibration.irt.models import ItemParameters, expected_item_scores, total_information
@@ -96,25 +97,7 @@ class BundleDiff(Frozen):
 
 
 def _one(entry: ItemEntry) -> ItemParameters:
-    return ItemParameters(
-        slopes=np.array([entry.slope]),
-        intercepts=np.array([entry.intercepts], dtype=np.float64),
-        n_categories=np.array([entry.n_categories]),
-        models=(entry.model,),
-    )
-
-
-def _stack(entries: list[ItemEntry]) -> ItemParameters:
-    width = max(e.n_categories for e in entries) - 1
-    intercepts = np.full((len(entries), width), np.nan)
-    for row, entry in enumerate(entries):
-        intercepts[row, : entry.n_categories - 1] = entry.intercepts
-    return ItemParameters(
-        slopes=np.array([e.slope for e in entries]),
-        intercepts=intercepts,
-        n_categories=np.array([e.n_categories for e in entries]),
-        models=tuple(e.model for e in entries),
-    )
+    return entry_parameters([entry])
 
 
 def _item_changes(older: Bundle, newer: Bundle, mean: float, sd: float) -> tuple[list[ItemChange], list[str]]:
@@ -142,7 +125,14 @@ def _item_changes(older: Bundle, newer: Bundle, mean: float, sd: float) -> tuple
             changes.append(ItemChange(item=item.id, change="not comparable", **sides))
             continue
         common.append(item.id)
-        gap = max(abs(a - b) for a, b in zip([old.slope, *old.intercepts], [new.slope, *new.intercepts], strict=True))
+        gap = max(
+            abs(a - b)
+            for a, b in zip(
+                [old.slope, *old.intercepts, old.guessing or 0.0],
+                [new.slope, *new.intercepts, new.guessing or 0.0],
+                strict=True,
+            )
+        )
         unsigned, signed = effect_size(_one(old), _one(new), mean, sd)
         changes.append(
             ItemChange(
@@ -160,8 +150,8 @@ def _score_changes(older: Bundle, newer: Bundle, common: list[str]) -> list[Scor
     """True-score change over DIFF_THETAS for a respondent answering every common item (see the module)."""
     if not common:
         return []
-    old = _stack([next(i for i in older.items if i.id == item) for item in common])
-    new = _stack([next(i for i in newer.items if i.id == item) for item in common])
+    old = entry_parameters([next(i for i in older.items if i.id == item) for item in common])
+    new = entry_parameters([next(i for i in newer.items if i.id == item) for item in common])
     thetas = np.asarray(DIFF_THETAS, dtype=np.float64)
     fine = np.linspace(-8.0, 8.0, 3201)  # the newer test characteristic curve, inverted on a fine grid
     new_curve = expected_item_scores(new, fine).sum(axis=0)

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from calibration.bundle.schema import Bundle
+from calibration.bundle.schema import Bundle, ItemEntry
 from calibration.errors import UnknownGroup
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import FloatArray, IntArray, ItemParameters
@@ -57,17 +57,16 @@ class ScoredBatch:
     summed_score: FloatArray  # summed score when every item of the group's plan was answered, else NaN
 
 
-def _shared_parameters(bundle: Bundle) -> ItemParameters:
-    k_max = max(item.n_categories for item in bundle.items)
-    intercepts = np.full((len(bundle.items), k_max - 1), np.nan)
-    for j, item in enumerate(bundle.items):
-        intercepts[j, : item.n_categories - 1] = item.intercepts
-    return ItemParameters(
-        slopes=np.array([item.slope for item in bundle.items]),
-        intercepts=intercepts,
-        n_categories=np.array([item.n_categories for item in bundle.items]),
-        models=tuple(item.model for item in bundle.items),
-    )
+def entry_parameters(entries: Sequence[ItemEntry], group: str | None = None) -> ItemParameters:
+    """The items' parameters as one test: the shared ones, or with ``group`` that group's own where it has them."""
+    rows = []
+    for entry in entries:
+        policy = None if group is None else entry.policy[group]
+        if policy is not None and policy.status == "group_specific" and policy.slope is not None and policy.intercepts:
+            rows.append((policy.slope, policy.intercepts, entry.model, policy.guessing))
+        else:
+            rows.append((entry.slope, entry.intercepts, entry.model, entry.guessing))
+    return ItemParameters.stack(rows)
 
 
 def group_codes(groups: Sequence[str]) -> tuple[list[str], IntArray]:
@@ -97,26 +96,18 @@ class BundleScorer:
         self.prior = NormalPrior(settings.prior_mean, settings.prior_sd)
         scale = settings.reporting_scale
         self.reporting_scale = scale.to_scale()
-        shared = _shared_parameters(bundle)
         self.plans: dict[str, GroupScoringPlan] = {}
         for group in bundle.metric.groups:
             keep: list[int] = []
             excluded: list[tuple[str, str]] = []
-            slopes = shared.slopes.copy()
-            intercepts = shared.intercepts.copy()
             for j, item in enumerate(bundle.items):
                 policy = item.policy[group.name]
                 if policy.status == "excluded":
                     excluded.append((item.id, policy.reason))
                     continue
-                if policy.status == "group_specific" and policy.slope is not None and policy.intercepts:
-                    slopes[j] = policy.slope
-                    intercepts[j, : item.n_categories - 1] = policy.intercepts
                 keep.append(j)
             columns = np.array(keep, dtype=np.int64)
-            params = ItemParameters(
-                slopes=slopes, intercepts=intercepts, n_categories=shared.n_categories, models=shared.models
-            ).subset(columns)
+            params = entry_parameters(bundle.items, group.name).subset(columns)
             self.plans[group.name] = GroupScoringPlan(
                 group.name, columns, params, tuple(excluded), score_tables(params, self.grid)
             )

@@ -87,8 +87,25 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:
     cal.add_argument("--name", required=True, help="bundle name (lower-case letters, digits, . _ -)")
     cal.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
     cal.add_argument("--id-column", default="id", help="column holding the respondent ids")
-    cal.add_argument("--items", type=Path, help="item spec CSV (item, model, categories, include, label)")
-    cal.add_argument("--model", choices=["2pl", "1pl"], default="2pl", help="model for right/wrong items")
+    cal.add_argument(
+        "--items",
+        type=Path,
+        help="item spec CSV (item, model, categories, include, label, guessing); it overrides "
+        "the two model options item by item",
+    )
+    cal.add_argument(
+        "--model",
+        choices=["2pl", "1pl", "3pl"],
+        default="2pl",
+        help="model for right/wrong items (3pl: a lower asymptote per item, estimated under a beta(5, 17) prior)",
+    )
+    cal.add_argument(
+        "--polytomous-model",
+        choices=["grm", "gpcm", "pcm"],
+        default="grm",
+        help="model for items with three or more categories: graded response, generalized partial credit, or "
+        "partial credit (one slope shared with every pcm and 1pl item)",
+    )
     cal.add_argument(
         "--slope-prior-sd",
         type=_positive_float,

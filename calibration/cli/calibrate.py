@@ -63,6 +63,7 @@ def run_calibrate(args: argparse.Namespace) -> int:
         id_column=args.id_column,
         item_spec=spec,
         dichotomous_model=args.model,
+        polytomous_model=args.polytomous_model,
         group_column=args.group_column,
     )
     rows = read_policy_overrides(args.policy_overrides) if args.policy_overrides else []

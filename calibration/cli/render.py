@@ -57,10 +57,11 @@ def print_calibration_summary(bundle: Bundle) -> None:
         + ("  (every group: see the groups table)" if grouped else ""),
         highlight=False,
     )
+    asymptotes = any(item.guessing is not None for item in bundle.items)
     table = new_table(
-        "item parameters (slope-threshold form; SE in brackets)",
-        ["item", "model", "slope", "thresholds", "item-rest r"],
-        right=("slope", "item-rest r"),
+        "item parameters (slope-threshold form; a partial-credit item's thresholds are its steps; SE in brackets)",
+        ["item", "model", "slope", "thresholds", *(["asymptote"] if asymptotes else []), "item-rest r"],
+        right=("slope", "asymptote", "item-rest r"),
     )
     for item in bundle.items:
         thresholds = "  ".join(
@@ -68,7 +69,11 @@ def print_calibration_summary(bundle: Bundle) -> None:
             for b, s in zip(item.thresholds, item.threshold_se, strict=True)
         )
         slope = dash(item.slope) + ("" if item.slope_se is None else f" ({item.slope_se:.3f})")
-        table.add_row(item.id, item.model, slope, thresholds, dash(item.item_rest_correlation, ".2f"))
+        asymptote = []
+        if asymptotes:  # an asymptote without an SE was held at the item spec's value
+            se = " (held)" if item.guessing_se is None else f" ({item.guessing_se:.3f})"
+            asymptote = ["-" if item.guessing is None else f"{item.guessing:.3f}{se}"]
+        table.add_row(item.id, item.model, slope, thresholds, *asymptote, dash(item.item_rest_correlation, ".2f"))
     console.print(table)
     for item in bundle.excluded_items:
         console.print(f"  left out {item.id}: {item.reason}", highlight=False)

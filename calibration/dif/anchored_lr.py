@@ -31,7 +31,7 @@ from calibration.estimation import (
     fit_item_given_offsets,
 )
 from calibration.irt.likelihood import QuadratureGrid, build_design, log_likelihood_grid, one_item_log_likelihood
-from calibration.irt.models import FloatArray, IntArray, ItemParameters
+from calibration.irt.models import GUESSING_SLOT, FloatArray, IntArray, ItemParameters
 
 EFFECT_SE_STEP = 1e-5
 """Relative step of the central differences that give the effect's gradient (delta method)."""
@@ -57,7 +57,8 @@ class ItemGroupTest:
     focal_table: FloatArray  # ... for the focal group under M2
     p_adjusted: float = float("nan")
     effect_theta_se: float = float("nan")  # delta-method SE of effect_theta under M2
-    focal_covariance: FloatArray | None = None  # (K, K): the focal group's own slots under M2
+    focal_covariance: FloatArray | None = None  # the focal group's estimated own slots under M2
+    focal_slots: IntArray | None = None  # which slots those are (a held slot, e.g. an asymptote, is left out)
 
     def effect_interval(self) -> tuple[float, float]:
         """95% interval of the unsigned effect, clipped at 0 (NaN bounds without an SE)."""
@@ -150,19 +151,23 @@ def _test_item(  # noqa: PLR0913 - the cell, the base model and its data
     omnibus_only: bool = False,
 ) -> ItemGroupTest:
     points = settings.quadrature.points
-    k_j = int(fit.template.n_categories[j])
+    n_s = int(fit.template.n_slots[j])
     # The other items' likelihood, split by the studied item's answer once for all nested models
     # (the reference group's split once for every focal group).
     held = [reference, _held_rows(fit, base, responses, j, g, points)]
-    start = np.stack([fit.tables[0, j : j + 1, :k_j], fit.tables[g, j : j + 1, :k_j]])
+    start = np.stack([fit.tables[0, j : j + 1, :n_s], fit.tables[g, j : j + 1, :n_s]])
     latent = LatentSpec(
         mean=np.array([0.0, fit.latent_mean[g]]),
         sd=np.array([1.0, fit.latent_sd[g]]),
         free_mean=np.array([False, True]),
         free_sd=np.array([False, True]),
     )
+    fixed = None
+    if fit.settings.held_guessing and np.isfinite(fit.settings.held_guessing[j]) and fit.template.has_guessing[j]:
+        fixed = np.zeros((2, 1, n_s), dtype=bool)
+        fixed[:, 0, GUESSING_SLOT] = True  # an asymptote the item spec holds is held in every model
     return nested_item_tests(
-        held, fit.template.subset([j]), start, latent, settings, item=j, group=g, omnibus_only=omnibus_only
+        held, fit.template.subset([j]), start, latent, settings, item=j, group=g, fixed=fixed, omnibus_only=omnibus_only
     )
 
 
@@ -184,13 +189,21 @@ def nested_item_tests(  # noqa: PLR0913 - the held rows, the item and keyword-on
     groups' latent densities (the focal mean and SD are re-estimated in every model; the effect is
     weighted by the focal density given). ``fixed`` (2, 1, K) holds slots at ``start``: a reference
     with no rows and known parameters (an earlier calibration cycle) is a drift test between cycles.
+
+    The focal group's own slots: none (M0), every slot but the slope (M1) and all (M2); so the omnibus
+    test has one df per slot, the uniform part (M1 against M0) one fewer and the non-uniform part (the
+    slope) one. A 3PL item's asymptote is one of its slots: the omnibus test frees slope, intercept and
+    asymptote (3 df), the uniform part intercept and asymptote (2 df: a difference in the lower part of
+    the curve counts as uniform), and every estimated asymptote carries the asymptote prior in both
+    models, so the statistic is a difference of penalized log-likelihoods.
     """
-    k_j = int(one.n_categories[0])
+    k_j = int(one.n_slots[0])  # slots: K categories' slope and intercepts, a 3PL item's asymptote
     focal_mean, focal_sd = float(latent.mean[1]), float(latent.sd[1])  # the given density weights the effect
     designs = [np.zeros(k_j, dtype=bool), np.arange(k_j) > 0, np.ones(k_j, dtype=bool)]
     if omnibus_only:
         designs = [designs[0], designs[2]]
     fits: list[HeldItemFit] = []
+    held_focal = np.zeros(k_j, dtype=bool) if fixed is None else np.asarray(fixed, dtype=bool)[1, 0]
     for free_slots in designs:
         group_free = np.zeros((2, 1, k_j), dtype=bool)
         group_free[1, 0] = free_slots
@@ -208,24 +221,28 @@ def nested_item_tests(  # noqa: PLR0913 - the held rows, the item and keyword-on
     effect, signed = effect_size(ref_params, foc_params, focal_mean, focal_sd)
     covariance = fits[-1].covariance()
     own = fits[-1].slot_index[1, 0]
-    focal_covariance = None if covariance is None or (own < 0).any() else covariance[np.ix_(own, own)]
+    focal_slots = np.flatnonzero(own >= 0)
+    focal_covariance = None if covariance is None else covariance[np.ix_(own[focal_slots], own[focal_slots])]
+    df_all = int(np.sum(designs[-1] & ~held_focal))
+    df_uniform = int(np.sum(np.arange(k_j) > 0) - np.sum(held_focal[1:]))
     return ItemGroupTest(
         item=item,
         group=group,
         g2_omnibus=g2_all,
-        df_omnibus=k_j,
-        p_omnibus=float(stats.chi2.sf(g2_all, k_j)),
+        df_omnibus=df_all,
+        p_omnibus=float(stats.chi2.sf(g2_all, df_all)),
         g2_nonuniform=g2_non,
         p_nonuniform=float(stats.chi2.sf(g2_non, 1)) if not omnibus_only else float("nan"),
         g2_uniform=g2_uni,
-        df_uniform=k_j - 1,
-        p_uniform=float(stats.chi2.sf(g2_uni, k_j - 1)) if not omnibus_only else float("nan"),
+        df_uniform=df_uniform,
+        p_uniform=float(stats.chi2.sf(g2_uni, df_uniform)) if not omnibus_only else float("nan"),
         effect_theta=effect,
         effect_signed=signed,
         reference_table=final[0, 0].copy(),
         focal_table=final[1, 0].copy(),
         effect_theta_se=_effect_se(fits[-1], focal_mean, focal_sd, covariance),
         focal_covariance=focal_covariance,
+        focal_slots=focal_slots,
     )
 
 

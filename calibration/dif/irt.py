@@ -88,8 +88,7 @@ def run_irt_dif(  # noqa: PLR0913 - the data, the base fit and keyword-only opti
             "(G2 - df) / sqrt(2 df), ties broken by its sum over groups and then by item id; the first "
             f"k = max({settings.min_anchors}, {settings.anchor_fraction:.0%} of {n_items} items) = {k} are the anchors"
         )
-    k_max = int(n_categories.max())
-    group_free = np.zeros((n_groups, n_items, k_max), dtype=bool)
+    group_free = np.zeros(scalar_fit.tables.shape, dtype=bool)  # (groups, items, slots)
     others = [j for j in range(n_items) if j not in anchors]
     group_free[1:, others, :] = True
     for j, g in skip or ():

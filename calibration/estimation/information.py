@@ -33,7 +33,7 @@ from scipy import sparse
 from calibration.estimation.estep import GroupData, HeldLikelihood
 from calibration.estimation.latent import LatentSpec, latent_derivatives
 from calibration.estimation.layout import GroupLayout, params_from_table
-from calibration.estimation.settings import SlopePrior
+from calibration.estimation.settings import GUESSING_PRIOR, SlopePrior
 from calibration.irt.likelihood import (
     exp_by_rows,
     log_likelihood_grid,
@@ -43,6 +43,7 @@ from calibration.irt.likelihood import (
     split_log_table,
 )
 from calibration.irt.models import (
+    GUESSING_SLOT,
     PROBABILITY_FLOOR,
     FloatArray,
     IntArray,
@@ -141,10 +142,10 @@ def pair_sums(z: FloatArray, weights: FloatArray) -> FloatArray:
 def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, mean: float, sd: float) -> FloatArray:
     """Hessian of one group's marginal log-likelihood over every slot and its latent (mean, SD).
 
-    Local order: item j's slots at ``j * k_max .. j * k_max + k_max - 1``, then the mean, then the SD.
+    Local order: item j's slots at ``j * S .. j * S + S - 1`` (S = max_slots), then the mean, then the SD.
     """
     design = data.design
-    n_items, k_max, n_points = params.n_items, params.max_categories, points.size
+    n_items, k_max, n_points = params.n_items, params.max_slots, points.size  # k_max: slots per item
     n_slots = n_items * k_max
     size = n_slots + 2
     items = _ItemTables.build(params, points)
@@ -233,7 +234,7 @@ def _group_hessian(params: ItemParameters, data: GroupData, points: FloatArray, 
     gram[:, 0, 0] = mass
     gappy_answered, category_counts = column_sums[: gappy.size], column_sums[gappy.size :]
     # Expected counts r[j, k, q], category 0 as answered minus the rest.
-    counts = np.zeros((n_items, k_max, n_points))
+    counts = np.zeros((n_items, params.max_categories, n_points))
     counts[col_item, col_cat] = category_counts
     answered = np.broadcast_to(mass, (n_items, n_points)).copy()
     if gappy.size:
@@ -260,11 +261,19 @@ def _latent_index(latent: LatentSpec, n_item_free: int, g: int) -> IntArray:
     return np.array([mean_at, sd_at], dtype=np.int64)
 
 
-def _prior_hessian(information: FloatArray, tables: FloatArray, layout: GroupLayout, prior: SlopePrior) -> None:
-    """Subtract the slope prior's second derivative at each owned slope slot (in place, on minus the Hessian)."""
-    owned = layout.owner[..., 0]
-    at = layout.index[..., 0][owned]
-    np.add.at(information, (at, at), -prior.second_derivative(tables[..., 0][owned]))
+def _prior_hessian(
+    information: FloatArray, tables: FloatArray, layout: GroupLayout, prior: SlopePrior | None, template: ItemParameters
+) -> None:
+    """Subtract the priors' second derivatives (in place, on minus the Hessian): the slope prior's at each
+    owned slope slot, the asymptote prior's at each owned 3PL ``logit(g)`` slot."""
+    if prior is not None:
+        owned = layout.owner[..., 0]
+        at = layout.index[..., 0][owned]
+        np.add.at(information, (at, at), -prior.second_derivative(tables[..., 0][owned]))
+    if template.has_guessing.any():
+        owned = layout.owner[..., GUESSING_SLOT] & template.has_guessing[None, :]
+        at = layout.index[..., GUESSING_SLOT][owned]
+        np.add.at(information, (at, at), -GUESSING_PRIOR.second_derivative(tables[..., GUESSING_SLOT][owned]))
 
 
 def observed_information(
@@ -291,8 +300,7 @@ def observed_information(
         local = _group_hessian(params, data, points, float(latent.mean[g]), float(latent.sd[g]))
         index = np.concatenate([layout.index[g].reshape(-1), _latent_index(latent, n_item_free, g)])
         _scatter(information, -local, index)
-    if prior is not None:
-        _prior_hessian(information, tables, layout, prior)
+    _prior_hessian(information, tables, layout, prior, template)
     return information
 
 
@@ -316,14 +324,15 @@ def held_item_terms(
     """Marginal log-likelihood, its gradient and observed information for one studied item.
 
     Every other item is held (their likelihood in ``rows``, reference group 0 and focal group 1);
-    the parameters are the layout's free slots of the studied item, then the focal mean and SD.
+    the parameters are the layout's free slots of the studied item, then the focal mean and SD. A 3PL
+    item's estimated asymptotes add the asymptote prior's log density (a penalized likelihood).
     Within a block of rows that gave the studied item the same answer the complete-data score at a
     point is the same for every row, so one product of the block with ``[v, v * score]`` gives each
     row's likelihood and posterior mean score, and ``E[s s^T]`` is the block's expected counts
     times the score's outer product. Two passes over each block, no (rows x points) temporary.
     """
     n_item = layout.n_free
-    k_max = params[0].max_categories
+    k_max = params[0].max_slots
     size = k_max + 2
     information = np.zeros((n_item + 2, n_item + 2))
     gradient = np.zeros(n_item + 2)
@@ -363,4 +372,15 @@ def held_item_terms(
         _scatter(information, -local, index)
         keep = np.flatnonzero(index >= 0)
         np.add.at(gradient, index[keep], local_gradient[keep])
+    if params[0].has_guessing[0]:
+        # The asymptote prior, once per estimated asymptote (shared: the reference group's).
+        for h in range(len(rows)):
+            at = int(layout.index[h, 0, GUESSING_SLOT])
+            if at < 0 or not layout.owner[h, 0, GUESSING_SLOT]:
+                continue
+            g = float(params[h].guessing[0])
+            gamma = np.log(g) - np.log1p(-g)
+            log_lik += float(GUESSING_PRIOR.log_density(gamma))
+            gradient[at] += float(GUESSING_PRIOR.gradient(gamma))
+            information[at, at] -= float(GUESSING_PRIOR.second_derivative(gamma))
     return HeldTerms(log_lik, gradient, information)

@@ -1,7 +1,7 @@
 """Parameter layout: which item slots are free, per group, and where they sit in the parameter vector.
 
-An item's slots are its slope (slot 0) and its intercepts (slots 1..K-1); a group's
-items form a slot table of shape (n_items, k_max), NaN-padded.
+An item's slots are its slope (slot 0), its intercepts (slots 1..K-1) and, for a 3PL item,
+``logit(g)`` (slot 2); a group's items form a slot table of shape (n_items, max_slots), NaN-padded.
 """
 
 from __future__ import annotations
@@ -10,7 +10,15 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from calibration.irt.models import MODEL_1PL, FloatArray, IntArray, ItemParameters
+from calibration.irt.models import (
+    CUMULATIVE_MODELS,
+    GUESSING_SLOT,
+    MODEL_3PL,
+    SHARED_SLOPE_MODELS,
+    FloatArray,
+    IntArray,
+    ItemParameters,
+)
 
 
 @dataclass(frozen=True)
@@ -20,8 +28,8 @@ class GroupLayout:
     ``index[g, j, s]`` is the position of slot ``s`` of item ``j`` in group ``g``
     (slot 0 = slope, slots 1.. = intercepts) in the free-item-parameter vector, or -1
     when the slot does not exist or is fixed. A slot a group shares with the
-    reference group (group 0) has the reference group's index; "1pl" items share one
-    slope. ``owner`` marks the first place each index appears (where a slope prior
+    reference group (group 0) has the reference group's index; "1pl" and "pcm" items share
+    one slope (the Rasch family). ``owner`` marks the first place each index appears (where a slope prior
     is counted once). ``coupled`` is True when one index spans several items.
     """
 
@@ -40,8 +48,8 @@ class GroupLayout:
         fixed: np.ndarray | None = None,
     ) -> GroupLayout:
         """The layout of a slot template for ``n_groups`` groups, with group-specific and fixed slots."""
-        n_items, k_max = template.n_items, template.max_categories
-        exists = np.arange(k_max)[None, :] < template.n_categories[:, None]
+        n_items, k_max = template.n_items, template.max_slots
+        exists = np.arange(k_max)[None, :] < template.n_slots[:, None]
         shape = (n_groups, n_items, k_max)
         own = np.zeros(shape, dtype=bool) if group_free is None else np.asarray(group_free, dtype=bool)
         held = np.zeros(shape, dtype=bool) if fixed is None else np.asarray(fixed, dtype=bool)
@@ -54,7 +62,7 @@ class GroupLayout:
             for s_ in range(k_max):
                 if not exists[j, s_] or held[0, j, s_]:
                     continue
-                if s_ == 0 and template.models[j] == MODEL_1PL:
+                if s_ == 0 and template.models[j] in SHARED_SLOPE_MODELS:
                     if common_slope < 0:
                         common_slope, position = position, position + 1
                     index[0, j, 0] = common_slope
@@ -105,32 +113,56 @@ class GroupLayout:
 
 
 def slot_table(params: ItemParameters) -> FloatArray:
-    """(n_items, k_max) table: slope in column 0, intercepts after (NaN padding)."""
-    table = np.full((params.n_items, params.max_categories), np.nan)
+    """(n_items, max_slots) table: slope in column 0, intercepts after, a 3PL item's ``logit(g)`` in
+    column 2 (NaN padding)."""
+    table = np.full((params.n_items, params.max_slots), np.nan)
     table[:, 0] = params.slopes
-    table[:, 1:] = params.intercepts[:, : params.max_categories - 1]
+    table[:, 1 : params.max_categories] = params.intercepts[:, : params.max_categories - 1]
+    rows = params.has_guessing
+    if rows.any():
+        g = params.guessing[rows]
+        with np.errstate(divide="ignore"):
+            table[rows, GUESSING_SLOT] = np.log(g) - np.log1p(-g)
     return table
 
 
 def params_from_table(table: FloatArray, template: ItemParameters) -> ItemParameters:
     """Item parameters from a slot table, with the template's categories and models."""
+    k_max = template.max_categories
+    intercepts = table[:, 1:k_max].copy()
+    rows = template.has_guessing
+    guessing = np.zeros(template.n_items)
+    if rows.any():
+        intercepts[rows, 1:] = np.nan
+        guessing[rows] = 1.0 / (1.0 + np.exp(-table[rows, GUESSING_SLOT]))
     return ItemParameters(
         slopes=table[:, 0].copy(),
-        intercepts=table[:, 1:].copy(),
+        intercepts=intercepts,
         n_categories=template.n_categories,
         models=template.models,
+        guessing=guessing,
     )
 
 
-def valid_tables(tables: FloatArray, n_categories: IntArray) -> np.ndarray:
-    """(n_groups, n_items): finite slots and strictly decreasing intercepts."""
+def valid_tables(tables: FloatArray, template: ItemParameters) -> np.ndarray:
+    """(n_groups, n_items): finite slots, and strictly decreasing intercepts for the cumulative items
+    (a partial-credit item's steps may come in any order)."""
     k_max = tables.shape[-1]
-    exists = np.arange(k_max)[None, :] < n_categories[:, None]
+    exists = np.arange(k_max)[None, :] < template.n_slots[:, None]
     finite = (np.isfinite(tables) | ~exists[None]).all(axis=-1)
-    c = tables[..., 1:]
-    both = exists[:, 2:]  # intercept pairs (m, m+1) that both exist
+    n_categories = template.n_categories
+    ordered_items = np.array([m in CUMULATIVE_MODELS for m in template.models], dtype=bool)
+    both = (np.arange(2, max(k_max, 2))[None, :] < n_categories[:, None]) & ordered_items[:, None]
     if both.shape[1] == 0:
         return finite
+    c = tables[..., 1 : both.shape[1] + 2]
     steps = c[..., 1:] - c[..., :-1]
     ordered = ((steps < 0) | ~both[None]).all(axis=-1)
     return finite & ordered
+
+
+def slot_guessing(row: FloatArray, model: str) -> float | None:
+    """The lower asymptote ``g`` of one item's slot row when it is a 3PL item, else None."""
+    if model != MODEL_3PL:
+        return None
+    return float(1.0 / (1.0 + np.exp(-row[GUESSING_SLOT])))

@@ -39,7 +39,7 @@ from calibration.irt.likelihood import (
     normal_weights,
     with_single_threaded_blas,
 )
-from calibration.irt.models import FloatArray, IntArray, ItemParameters
+from calibration.irt.models import GUESSING_SLOT, FloatArray, IntArray, ItemParameters
 
 
 @with_single_threaded_blas  # the E-step splits rows over threads itself; idle BLAS threads would spin
@@ -85,6 +85,17 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
         tables = np.array(start, dtype=np.float64)
         template = params_from_table(tables[0], template)
     latent = latent or LatentSpec.reference_fixed(n_groups)
+    held_guessing = np.zeros(template.n_items, dtype=bool)
+    if settings.held_guessing:  # 3PL asymptotes held at known values (the item spec)
+        values = np.asarray(settings.held_guessing, dtype=np.float64)
+        held_guessing = np.isfinite(values) & template.has_guessing
+        if held_guessing.any():
+            tables[:, held_guessing, GUESSING_SLOT] = np.log(values[held_guessing]) - np.log1p(-values[held_guessing])
+            template = params_from_table(tables[0], template)
+            shape = (n_groups, template.n_items, template.max_slots)
+            held = np.zeros(shape, dtype=bool) if fixed is None else np.broadcast_to(fixed, shape).copy()
+            held[:, held_guessing, GUESSING_SLOT] = True
+            fixed = held
     layout = GroupLayout.build(template, n_groups, group_free=group_free, fixed=fixed)
     groups = prepare_groups(x, k, gi, n_groups, compress=settings.compress_patterns)
     points = settings.quadrature.points
@@ -104,7 +115,7 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
 
     def e_step(vec: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, list[ExpectedCounts]]:
         tabs, mean, sd = unpack(vec)
-        if not valid_tables(tabs, k).all() or np.any(sd <= 0) or not np.all(np.isfinite(mean)):
+        if not valid_tables(tabs, template).all() or np.any(sd <= 0) or not np.all(np.isfinite(mean)):
             raise ValueError("invalid parameters")
         results = [
             expected_counts(
@@ -310,7 +321,7 @@ def fit_item_given_offsets(  # noqa: PLR0913 - the held rows, the item and keywo
 
     def terms(vec: FloatArray) -> HeldTerms | None:
         tables, mean, sd = unpack(vec)
-        if sd[1] <= 0 or not valid_tables(tables, template.n_categories).all():
+        if sd[1] <= 0 or not valid_tables(tables, template).all():
             return None
         params = [params_from_table(tables[h], template) for h in range(2)]
         return held_item_terms(rows, params, mean, sd, points, layout)

@@ -1,6 +1,7 @@
 """M-step: Fisher scoring on the expected complete-data log-likelihood over the free slots.
 
-``sum_gjkq r[g,j,k,q] log P_gjk(theta_q)`` (plus an optional log-normal slope prior),
+``sum_gjkq r[g,j,k,q] log P_gjk(theta_q)`` (plus an optional log-normal slope prior and the
+asymptote prior of the 3PL items),
 whatever the slots' sharing: a slot shared by groups (an invariant item) or by items
 (the 1PL slope) has one entry in the parameter vector.
 """
@@ -10,8 +11,9 @@ from __future__ import annotations
 import numpy as np
 
 from calibration.estimation.layout import GroupLayout, params_from_table, valid_tables
-from calibration.estimation.settings import SlopePrior
+from calibration.estimation.settings import GUESSING_PRIOR, SlopePrior
 from calibration.irt.models import (
+    GUESSING_SLOT,
     PROBABILITY_FLOOR,
     FloatArray,
     ItemParameters,
@@ -54,21 +56,27 @@ def _item_objective(params: ItemParameters, points: FloatArray, counts: FloatArr
 
 
 def _prior_terms(
-    tables: FloatArray, layout: GroupLayout, prior: SlopePrior | None
+    tables: FloatArray, layout: GroupLayout, prior: SlopePrior | None, template: ItemParameters
 ) -> tuple[FloatArray, FloatArray, FloatArray]:
-    """Slope-prior objective (per group and item), gradient and curvature (per slot), counted once per index."""
+    """Prior objective (per group and item), gradient and curvature (per slot), counted once per index:
+    the optional slope prior, and the asymptote prior of every estimated 3PL asymptote."""
     shape = tables.shape
     objective = np.zeros(shape[:2])
     gradient = np.zeros(shape)
     curvature = np.zeros(shape)
-    if prior is None:
-        return objective, gradient, curvature
-    slopes = tables[..., 0]
-    counted = layout.owner[..., 0]
-    safe = np.where(counted, slopes, 1.0)
-    objective = np.where(counted, prior.log_density(safe), 0.0)
-    gradient[..., 0] = np.where(counted, prior.gradient(safe), 0.0)
-    curvature[..., 0] = np.where(counted, prior.curvature(safe), 0.0)
+    if prior is not None:
+        slopes = tables[..., 0]
+        counted = layout.owner[..., 0]
+        safe = np.where(counted, slopes, 1.0)
+        objective = np.where(counted, prior.log_density(safe), 0.0)
+        gradient[..., 0] = np.where(counted, prior.gradient(safe), 0.0)
+        curvature[..., 0] = np.where(counted, prior.curvature(safe), 0.0)
+    if template.has_guessing.any():
+        counted = layout.owner[..., GUESSING_SLOT] & template.has_guessing[None, :]
+        gamma = np.where(counted, tables[..., GUESSING_SLOT], 0.0)
+        objective = objective + np.where(counted, GUESSING_PRIOR.log_density(gamma), 0.0)
+        gradient[..., GUESSING_SLOT] = np.where(counted, GUESSING_PRIOR.gradient(gamma), 0.0)
+        curvature[..., GUESSING_SLOT] = np.where(counted, -GUESSING_PRIOR.second_derivative(gamma), 0.0)
     return objective, gradient, curvature
 
 
@@ -94,7 +102,7 @@ def m_step(
         return tables
 
     def evaluate(tabs: FloatArray, *, derivatives: bool) -> tuple[FloatArray, FloatArray | None, FloatArray | None]:
-        prior_obj, prior_grad, prior_curv = _prior_terms(tabs, layout, prior)
+        prior_obj, prior_grad, prior_curv = _prior_terms(tabs, layout, prior, template)
         objective = prior_obj.copy()
         if not derivatives:
             for g in range(n_groups):
@@ -129,7 +137,7 @@ def m_step(
         accepted = np.zeros(n_items, dtype=bool)
         for _halving in range(STEP_HALVINGS):
             trial = np.where(free, tables + scale[None, :, None] * step, tables)
-            valid = valid_tables(trial, template.n_categories).all(axis=0)
+            valid = valid_tables(trial, template).all(axis=0)
             trial_obj = np.full(n_items, -np.inf)
             if valid.any():
                 safe_trial = np.where(valid[None, :, None], trial, tables)
@@ -167,7 +175,7 @@ def item_gradient(
     With ``counts`` from the E-step at ``tables`` this is the marginal score (Fisher's identity),
     the quantity the observed information is differenced from.
     """
-    gradient = _prior_terms(tables, layout, prior)[1]
+    gradient = _prior_terms(tables, layout, prior, template)[1]
     for g in range(tables.shape[0]):
         gradient[g] += _item_blocks(params_from_table(tables[g], template), points, counts[g])[1]
     return layout.gather(gradient)

@@ -6,7 +6,15 @@ import math
 
 import numpy as np
 
-from calibration.irt.models import FloatArray, IntArray, ItemParameters
+from calibration.irt.models import (
+    ADJACENT_MODELS,
+    MODEL_2PL,
+    MODEL_3PL,
+    MODEL_GRM,
+    FloatArray,
+    IntArray,
+    ItemParameters,
+)
 
 
 def starting_values(responses: FloatArray, n_categories: IntArray, models: tuple[str, ...]) -> ItemParameters:
@@ -21,7 +29,51 @@ def starting_values(responses: FloatArray, n_categories: IntArray, models: tuple
     n_items = x.shape[1]
     k = np.asarray(n_categories, dtype=np.int64)
     if n_items > 1 and x.shape[0] > 2 and not np.isnan(x).any():
-        return _complete_data_values(x, k, models)
+        return _for_models(_complete_data_values(x, k, _cumulative(models)), x, models)
+    return _for_models(_incomplete_data_values(x, k, _cumulative(models)), x, models)
+
+
+START_GUESSING = 0.2
+"""A 3PL item's starting asymptote (the asymptote prior's mode)."""
+
+
+def _cumulative(models: tuple[str, ...]) -> tuple[str, ...]:
+    """The models with every item read as a cumulative one (the classical start is the same for all)."""
+    return tuple(MODEL_2PL if m == MODEL_3PL else (MODEL_GRM if m in ADJACENT_MODELS else m) for m in models)
+
+
+def _for_models(start: ItemParameters, x: FloatArray, models: tuple[str, ...]) -> ItemParameters:
+    """The cumulative start turned into each item's own model.
+
+    A 3PL item starts at the asymptote 0.2 with the intercept of its proportion correct above
+    chance, ``(p - 0.2) / 0.8``; a partial-credit item's steps start at the adjacent-category log
+    odds of its answers, ``log(n_k / n_{k-1})`` (counts floored at 0.5), the slope as for a graded item.
+    """
+    if tuple(models) == start.models:
+        return start
+    intercepts = start.intercepts.copy()
+    guessing = np.zeros(start.n_items)
+    for j, model in enumerate(models):
+        if model == MODEL_3PL:
+            attenuation = math.sqrt(1 + (start.slopes[j] / 1.7) ** 2)
+            p = 1.0 / (1.0 + math.exp(-start.intercepts[j, 0] / attenuation))
+            above = min(max((p - START_GUESSING) / (1.0 - START_GUESSING), 0.02), 0.98)
+            intercepts[j, 0] = math.log(above / (1.0 - above)) * attenuation
+            guessing[j] = START_GUESSING
+        elif model in ADJACENT_MODELS:
+            k_j = int(start.n_categories[j])
+            column = x[:, j]
+            counts = np.array([np.sum(column == c) for c in range(k_j)], dtype=np.float64)
+            counts = np.maximum(counts, 0.5)
+            intercepts[j, : k_j - 1] = np.log(counts[1:] / counts[:-1])
+    return ItemParameters(
+        slopes=start.slopes, intercepts=intercepts, n_categories=start.n_categories, models=models, guessing=guessing
+    )
+
+
+def _incomplete_data_values(x: FloatArray, k: IntArray, models: tuple[str, ...]) -> ItemParameters:
+    """Item by item: the same starting values for a table with missing answers."""
+    n_items = x.shape[1]
     answered = ~np.isnan(x)
     row_total = np.zeros(x.shape[0])
     for j in range(n_items):  # column by column: no scaled copy of the whole table

@@ -27,7 +27,7 @@ from calibration.io.tables import (
     read_header,
     row_label,
 )
-from calibration.irt.models import MODEL_1PL, MODEL_2PL, MODEL_GRM, FloatArray, IntArray
+from calibration.irt.models import MODEL_2PL, MODEL_GRM, RIGHT_WRONG_MODELS, FloatArray, IntArray
 
 MISSING_CODE_GAP = 4
 
@@ -41,6 +41,7 @@ class ItemSpec:
     n_categories: int | None = None
     include: bool = True
     label: str = ""
+    guessing: float | None = None  # a 3PL item's asymptote held at this value (None: estimated)
 
 
 @dataclass(frozen=True)
@@ -65,6 +66,8 @@ class ResponseData:
         Handling decisions a user should see (ignored columns and the like).
     header_lines : int
         Lines before the first respondent in the file (1 for CSV, 0 for Parquet), for messages.
+    held_guessing : dict of str to float
+        3PL items whose asymptote the item spec holds at a known value (the rest are estimated).
     """
 
     ids: tuple[str, ...]
@@ -77,6 +80,7 @@ class ResponseData:
     source_sha256: str = ""
     notes: tuple[str, ...] = field(default=())
     header_lines: int = 0
+    held_guessing: dict[str, float] = field(default_factory=dict)
 
     @property
     def n_persons(self) -> int:
@@ -105,6 +109,7 @@ def read_responses(
     group_column: str | None = None,
     item_spec: Sequence[ItemSpec] | None = None,
     dichotomous_model: str = MODEL_2PL,
+    polytomous_model: str = MODEL_GRM,
 ) -> ResponseData:
     """Read and validate a response table for calibration.
 
@@ -152,7 +157,7 @@ def read_responses(
         raise InputError(source, problems[:MAX_PROBLEMS], total=total)
 
     n_categories, models, category_problems = _categories_and_models(
-        responses, item_ids, declared, header, dichotomous_model
+        responses, item_ids, declared, header, (dichotomous_model, polytomous_model)
     )
     if category_problems:
         raise InputError(source, category_problems[:MAX_PROBLEMS], total=len(category_problems))
@@ -169,6 +174,7 @@ def read_responses(
         source_sha256=file_sha256(path),
         notes=tuple(notes),
         header_lines=header,
+        held_guessing={item: spec.guessing for item, spec in declared.items() if spec.guessing is not None},
     )
 
 
@@ -412,8 +418,9 @@ def _categories_and_models(
     item_ids: list[str],
     declared: dict[str, ItemSpec],
     header_lines: int,
-    dichotomous_model: str,
+    defaults: tuple[str, str],
 ) -> tuple[IntArray, tuple[str, ...], list[str]]:
+    """Each item's categories and model (the spec's, else the default for right/wrong or polytomous items)."""
     problems: list[str] = []
     n_categories = np.zeros(len(item_ids), dtype=np.int64)
     models: list[str] = []
@@ -441,8 +448,8 @@ def _categories_and_models(
             if unseen and np.count_nonzero(counts) > 1:
                 problems.append(_unused_categories_problem(item, column, counts, header_lines))
         n_categories[j] = k
-        model = spec.model or (dichotomous_model if k == 2 else MODEL_GRM)
-        if model in (MODEL_2PL, MODEL_1PL) and k != 2:
+        model = spec.model or (defaults[0] if k == 2 else defaults[1])
+        if model in RIGHT_WRONG_MODELS and k != 2:
             problems.append(f"item {item!r}: model {model} needs 2 categories, the data have {k}")
         models.append(model)
     return n_categories, tuple(models), problems

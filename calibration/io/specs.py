@@ -12,16 +12,17 @@ if TYPE_CHECKING:
 
 from calibration.io.responses import ItemSpec
 from calibration.io.tables import MAX_PROBLEMS, read_table, row_label, table_rows
-from calibration.irt.models import MODEL_1PL, MODEL_2PL, MODELS
+from calibration.irt.models import MODEL_3PL, MODELS, RIGHT_WRONG_MODELS
 
 
 def read_item_spec(path: Path) -> list[ItemSpec]:
-    """Read an item spec CSV: columns ``item`` (required), ``model``, ``categories``, ``include``, ``label``."""
+    """Read an item spec CSV: columns ``item`` (required), ``model``, ``categories``, ``include``, ``label`` and
+    ``guessing`` (a 3PL item's lower asymptote held at that value; empty: estimated)."""
     table = read_table(path)
     columns, header = table.columns, table.header_lines
     if "item" not in columns:
         raise InputError(path.name, [f"the item spec needs an 'item' column; found {', '.join(columns)}"])
-    known = {"item", "model", "categories", "include", "label"}
+    known = {"item", "model", "categories", "include", "label", "guessing"}
     problems = [f"unknown column {c!r} (known: {', '.join(sorted(known))})" for c in columns if c not in known]
     specs: list[ItemSpec] = []
     seen: set[str] = set()
@@ -44,13 +45,26 @@ def read_item_spec(path: Path) -> list[ItemSpec]:
                 problems.append(f"{where}, column 'categories': {raw_k!r} is not a whole number >= 2")
             else:
                 n_categories = int(raw_k)
-        if model in (MODEL_2PL, MODEL_1PL) and n_categories not in (None, 2):
+        if model in RIGHT_WRONG_MODELS and n_categories not in (None, 2):
             problems.append(f"{where}: model {model} needs 2 categories, the spec says {n_categories}")
+        guessing = None
+        raw_g = row["guessing"]
+        if raw_g:
+            try:
+                guessing = float(raw_g)
+            except ValueError:
+                guessing = float("nan")
+            if not 0.0 <= guessing < 1.0:
+                problems.append(f"{where}, column 'guessing': {raw_g!r} is not a number in [0, 1)")
+                guessing = None
+            elif model != MODEL_3PL:
+                problems.append(f"{where}, column 'guessing': only a 3pl item has a lower asymptote (model {model})")
+                guessing = None
         include_raw = row["include"].lower()
         if include_raw not in ("", "yes", "no", "true", "false", "1", "0"):
             problems.append(f"{where}, column 'include': {include_raw!r} is not yes/no")
         include = include_raw not in ("no", "false", "0")
-        specs.append(ItemSpec(item, model, n_categories, include, row["label"]))
+        specs.append(ItemSpec(item, model, n_categories, include, row["label"], guessing))
     if problems:
         raise InputError(path.name, problems[:MAX_PROBLEMS], total=len(problems))
     return specs

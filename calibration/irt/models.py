@@ -1,7 +1,8 @@
-"""Item response functions for the 2PL and the graded response model.
+"""Item response functions: 2PL/1PL, graded response, 3PL and (generalized) partial credit.
 
-One representation serves both models. Every item is a graded item with ``K``
-ordered categories ``0 .. K-1`` in slope-intercept form (logistic, D = 1):
+One representation serves every model. Every item has ``K`` ordered categories
+``0 .. K-1``, a slope ``a`` and ``K - 1`` intercepts ``c_k`` (logistic, D = 1). The
+cumulative models (2PL, 1PL, graded) read them as boundary curves:
 
     P*(X >= k | theta) = logistic(a * theta + c_k),    k = 1 .. K-1,
     P(X = k | theta)   = P*_k - P*_{k+1},               P*_0 = 1, P*_K = 0,
@@ -10,6 +11,16 @@ with intercepts ``c_1 > c_2 > ... > c_{K-1}`` (Samejima 1969). A 2PL item is the
 case ``K = 2`` with a single intercept ``c``; the "1PL" variant is a 2PL whose
 slope is shared by all items that use it (the sharing lives in the estimator,
 not here).
+
+A 3PL item (Birnbaum 1968) is a 2PL item with a lower asymptote ``g``:
+``P(X = 1) = g + (1 - g) logistic(a theta + c)``. The estimator works with
+``gamma = logit(g)``, the item's third slot.
+
+The generalized partial credit model (Muraki 1992) reads the intercepts as steps
+between adjacent categories: ``P(X = k) ∝ exp(k a theta + c_1 + ... + c_k)``
+(the empty sum for k = 0); its steps need not be ordered. The partial credit model
+(Masters 1982) is the case where every such item shares one slope (with the 1PL items:
+the Rasch family).
 
 Conversion to slope-threshold form: ``b_k = -c_k / a`` so that
 ``a * theta + c_k = a * (theta - b_k)``.
@@ -20,6 +31,7 @@ Arrays are padded to the largest category count in the test: intercepts of shape
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -33,7 +45,20 @@ IntArray = NDArray[np.int64]
 MODEL_2PL = "2pl"
 MODEL_1PL = "1pl"
 MODEL_GRM = "grm"
+MODEL_3PL = "3pl"
+MODEL_GPCM = "gpcm"
+MODEL_PCM = "pcm"
 MODELS = ITEM_MODELS
+CUMULATIVE_MODELS = (MODEL_2PL, MODEL_1PL, MODEL_GRM)
+"""Models read as boundary curves (the fast scoring paths serve tests of these only)."""
+ADJACENT_MODELS = (MODEL_GPCM, MODEL_PCM)
+"""Models read as adjacent-category steps."""
+SHARED_SLOPE_MODELS = (MODEL_1PL, MODEL_PCM)
+"""Models whose items share one slope (the Rasch family)."""
+RIGHT_WRONG_MODELS = (MODEL_2PL, MODEL_1PL, MODEL_3PL)
+"""Models that need exactly two categories."""
+GUESSING_SLOT = 2
+"""The slot of a 3PL item's ``logit(g)`` (slot 0 is the slope, slot 1 the intercept)."""
 
 
 @dataclass(frozen=True)
@@ -49,14 +74,16 @@ class ItemParameters:
     n_categories : int array of shape (n_items,)
         ``K_j`` for each item (2 for a dichotomous item).
     models : tuple of str
-        ``"2pl"``, ``"1pl"`` or ``"grm"`` per item (informative for scoring;
-        the estimator uses it to share the 1PL slope).
+        One of :data:`MODELS` per item (default: ``"2pl"`` for two categories, ``"grm"`` for more).
+    guessing : array of shape (n_items,), optional
+        The 3PL lower asymptote ``g`` (0 for every other model; default all 0).
     """
 
     slopes: FloatArray
     intercepts: FloatArray
     n_categories: IntArray
     models: tuple[str, ...] = field(default=())
+    guessing: FloatArray | None = None
 
     def __post_init__(self) -> None:
         slopes = np.asarray(self.slopes, dtype=np.float64)
@@ -73,6 +100,21 @@ class ItemParameters:
         models = self.models or tuple(MODEL_2PL if k == 2 else MODEL_GRM for k in n_categories)
         if len(models) != slopes.shape[0]:
             raise ValueError("models must name one model per item")
+        unknown = sorted({m for m in models if m not in MODELS})
+        if unknown:
+            raise ValueError(f"unknown item model(s) {', '.join(unknown)}; known: {', '.join(MODELS)}")
+        two = np.array([m in RIGHT_WRONG_MODELS for m in models], dtype=bool)
+        if np.any(two & (n_categories != 2)):
+            raise ValueError("2PL, 1PL and 3PL items need exactly two categories")
+        guessing = np.zeros(slopes.shape[0]) if self.guessing is None else np.asarray(self.guessing, dtype=np.float64)
+        if guessing.shape != slopes.shape:
+            raise ValueError("guessing must hold one value per item")
+        is_3pl = np.array([m == MODEL_3PL for m in models], dtype=bool)
+        if np.any(guessing[~is_3pl] != 0.0):
+            raise ValueError("only 3PL items have a lower asymptote")
+        if np.any(~((guessing >= 0.0) & (guessing < 1.0))):
+            raise ValueError("a lower asymptote must lie in [0, 1)")
+        object.__setattr__(self, "guessing", guessing)
         object.__setattr__(self, "slopes", slopes)
         object.__setattr__(self, "intercepts", intercepts)
         object.__setattr__(self, "n_categories", n_categories)
@@ -88,8 +130,37 @@ class ItemParameters:
         """Largest number of categories of any item."""
         return int(self.n_categories.max())
 
+    @property
+    def n_slots(self) -> IntArray:
+        """Parameters (slots) per item: slope and intercepts, and a 3PL item's ``logit(g)``."""
+        return np.where(self.has_guessing, 3, self.n_categories)
+
+    @property
+    def max_slots(self) -> int:
+        """Width of a slot table: the largest number of slots of any item."""
+        return int(self.n_slots.max())
+
+    @property
+    def has_guessing(self) -> np.ndarray:
+        """Boolean (n_items,): the 3PL items."""
+        return np.array([m == MODEL_3PL for m in self.models], dtype=bool)
+
+    @property
+    def adjacent(self) -> np.ndarray:
+        """Boolean (n_items,): the (generalized) partial credit items."""
+        return np.array([m in ADJACENT_MODELS for m in self.models], dtype=bool)
+
+    @property
+    def cumulative_only(self) -> bool:
+        """Every item is a 2PL, 1PL or graded item (the fast scoring paths apply)."""
+        return all(m in CUMULATIVE_MODELS for m in self.models)
+
     def thresholds(self) -> FloatArray:
-        """Slope-threshold locations ``b_k = -c_k / a``, shape (n_items, max_categories - 1)."""
+        """Slope-threshold locations ``b_k = -c_k / a``, shape (n_items, max_categories - 1).
+
+        For a partial-credit item these are its step difficulties; for a 3PL item the location of
+        the logistic part (where ``P = g + (1 - g) / 2``).
+        """
         return -self.intercepts / self.slopes[:, None]
 
     def subset(self, items: IntArray | list[int]) -> ItemParameters:
@@ -101,6 +172,22 @@ class ItemParameters:
             intercepts=self.intercepts[idx, : k_max - 1],
             n_categories=self.n_categories[idx],
             models=tuple(self.models[i] for i in idx),
+            guessing=self.guessing[idx],
+        )
+
+    @classmethod
+    def stack(cls, rows: Sequence[tuple[float, Sequence[float], str, float | None]]) -> ItemParameters:
+        """One test from per-item ``(slope, intercepts, model, asymptote or None)`` rows, intercepts NaN-padded."""
+        width = max(len(row[1]) for row in rows)
+        intercepts = np.full((len(rows), width), np.nan)
+        for j, row in enumerate(rows):
+            intercepts[j, : len(row[1])] = row[1]
+        return cls(
+            slopes=np.array([row[0] for row in rows], dtype=np.float64),
+            intercepts=intercepts,
+            n_categories=np.array([len(row[1]) + 1 for row in rows]),
+            models=tuple(row[2] for row in rows),
+            guessing=np.array([row[3] or 0.0 for row in rows], dtype=np.float64),
         )
 
     @classmethod
@@ -110,6 +197,7 @@ class ItemParameters:
         thresholds: FloatArray | list[list[float]] | list[float],
         *,
         models: tuple[str, ...] = (),
+        guessing: FloatArray | list[float] | None = None,
     ) -> ItemParameters:
         """Build from slope-threshold form (``c_k = -a * b_k``); NaN pads shorter items."""
         a = np.asarray(slopes, dtype=np.float64)
@@ -117,7 +205,8 @@ class ItemParameters:
         if b.ndim == 1:
             b = b[:, None]
         n_categories = np.sum(~np.isnan(b), axis=1) + 1
-        return cls(slopes=a, intercepts=-a[:, None] * b, n_categories=n_categories, models=models)
+        g = None if guessing is None else np.asarray(guessing, dtype=np.float64)
+        return cls(slopes=a, intercepts=-a[:, None] * b, n_categories=n_categories, models=models, guessing=g)
 
 
 PROBABILITY_FLOOR = 1e-300
@@ -166,14 +255,70 @@ def category_parameter_derivatives(
 ) -> tuple[FloatArray, FloatArray, FloatArray | None]:
     """Category probabilities and their derivatives with respect to each item's slots.
 
-    An item's slots are its slope (slot 0) and its intercepts ``c_1 .. c_{K-1}`` (slots 1..).
-    Returns ``prob`` (n_items, max_categories, n_theta), ``jac[j, k, q, s] = d P_jk / d slot_s``
-    (n_items, max_categories, n_theta, max_categories) and, with ``second``, the second
-    derivatives ``d2 P_jk / d slot_s d slot_t`` (..., max_categories, max_categories). With
-    ``eta = a theta + c_m`` at boundary m: ``dP*_m/d eta = W_m = P*_m (1 - P*_m)`` and
-    ``d2P*_m/d eta2 = W_m (1 - 2 P*_m)``; the slope's derivative carries ``theta``, an
-    intercept's only its own boundary. Padding slots and categories hold 0.
+    An item's slots are its slope (slot 0), its intercepts ``c_1 .. c_{K-1}`` (slots 1..) and, for
+    a 3PL item, ``gamma = logit(g)`` (slot 2). Returns ``prob`` (n_items, max_categories, n_theta),
+    ``jac[j, k, q, s] = d P_jk / d slot_s`` (n_items, max_categories, n_theta, max_slots) and, with
+    ``second``, the second derivatives ``d2 P_jk / d slot_s d slot_t`` (..., max_slots, max_slots).
+    Padding slots and categories hold 0.
+
+    Cumulative items: with ``eta = a theta + c_m`` at boundary m, ``dP*_m/d eta = W_m = P*_m (1 - P*_m)``
+    and ``d2P*_m/d eta2 = W_m (1 - 2 P*_m)``; the slope's derivative carries ``theta``, an
+    intercept's only its own boundary. 3PL items: the 2PL curve ``s`` scaled by ``1 - g`` plus ``g``,
+    so its slope and intercept derivatives are ``(1 - g)`` times the 2PL's, ``dP_1/d gamma = (1 - s)
+    g (1 - g)`` and the mixed terms carry ``d(1 - g)/d gamma = -g (1 - g)``. Partial-credit items:
+    ``log P_k = eta_k - log sum exp(eta)`` is linear in the slots through ``D_ks = d eta_k / d slot_s``
+    (``k theta`` for the slope, ``1[s <= k]`` for step s), so ``dP_k/d slot_s = P_k (D_ks - Dbar_s)`` and
+    ``d2 P_k = P_k ((D_ks - Dbar_s)(D_kt - Dbar_t) - Cov_P(D_s, D_t))``.
     """
+    n_items, k_max, n_slots = params.n_items, params.max_categories, params.max_slots
+    prob, jac_c, hess_c = _cumulative_parameter_derivatives(params, theta, second=second)
+    n_theta = prob.shape[2]
+    jac = np.zeros((n_items, k_max, n_theta, n_slots))
+    jac[..., :k_max] = jac_c
+    hess = None
+    if hess_c is not None:
+        hess = np.zeros((n_items, k_max, n_theta, n_slots, n_slots))
+        hess[..., :k_max, :k_max] = hess_c
+    rows = np.flatnonzero(params.has_guessing)
+    if rows.size:
+        g = params.guessing[rows][:, None]
+        s = prob[rows, 1]  # the 2PL curve
+        dg = g * (1.0 - g)  # d g / d gamma
+        prob[rows, 1] = g + (1.0 - g) * s
+        prob[rows, 0] = 1.0 - prob[rows, 1]
+        jac[rows, :, :, :2] *= (1.0 - g)[:, None, :, None]
+        d_gamma = (1.0 - s) * dg
+        jac[rows, 1, :, GUESSING_SLOT] = d_gamma
+        jac[rows, 0, :, GUESSING_SLOT] = -d_gamma
+        if hess is not None:
+            hess[rows, :, :, :2, :2] *= (1.0 - g)[:, None, :, None, None]
+            for slot in (0, 1):
+                mixed = -dg * jac_c[rows, 1, :, slot]
+                for k, sign in ((1, 1.0), (0, -1.0)):
+                    hess[rows, k, :, slot, GUESSING_SLOT] = sign * mixed
+                    hess[rows, k, :, GUESSING_SLOT, slot] = sign * mixed
+            curve = d_gamma * (1.0 - 2.0 * g)
+            hess[rows, 1, :, GUESSING_SLOT, GUESSING_SLOT] = curve
+            hess[rows, 0, :, GUESSING_SLOT, GUESSING_SLOT] = -curve
+    rows = np.flatnonzero(params.adjacent)
+    if rows.size:
+        p_adj = _adjacent_probabilities(params, rows, theta)
+        design = _adjacent_design(params, rows, theta, n_slots)  # (J', K, Q, S)
+        centred = design - np.einsum("jkq,jkqs->jqs", p_adj, design)[:, None]
+        prob[rows] = p_adj
+        jac[rows] = p_adj[..., None] * centred
+        if hess is not None:
+            outer = centred[..., :, None] * centred[..., None, :]
+            covariance = np.einsum("jkq,jkqst->jqst", p_adj, outer)
+            hess[rows] = p_adj[..., None, None] * (outer - covariance[:, None])
+    return prob, jac, hess
+
+
+def _cumulative_parameter_derivatives(
+    params: ItemParameters, theta: FloatArray, *, second: bool
+) -> tuple[FloatArray, FloatArray, FloatArray | None]:
+    """:func:`category_parameter_derivatives` of every item read as a cumulative (2PL or graded) item,
+    over the slots slope and intercepts (width max_categories)."""
     star = cumulative_probabilities(params, theta)
     prob = star[:, :-1, :] - star[:, 1:, :]
     points = np.asarray(theta, dtype=np.float64)
@@ -207,7 +352,8 @@ def linear_predictors(params: ItemParameters, theta: FloatArray) -> FloatArray:
 
 
 def cumulative_probabilities(params: ItemParameters, theta: FloatArray) -> FloatArray:
-    """Boundary curves ``P*_k`` with the fixed ends included.
+    """Boundary curves ``P*_k`` with the fixed ends included, every item read as a cumulative item
+    (a 3PL item's 2PL part; meaningless for partial-credit items, which the callers overwrite).
 
     Returns
     -------
@@ -227,13 +373,24 @@ def cumulative_probabilities(params: ItemParameters, theta: FloatArray) -> Float
 def category_probabilities(params: ItemParameters, theta: FloatArray) -> FloatArray:
     """``P(X = k | theta)``, shape (n_items, max_categories, n_theta); 0 for categories an item lacks."""
     star = cumulative_probabilities(params, theta)
-    return star[:, :-1, :] - star[:, 1:, :]
+    prob = star[:, :-1, :] - star[:, 1:, :]
+    rows = np.flatnonzero(params.has_guessing)
+    if rows.size:
+        g = params.guessing[rows][:, None]
+        prob[rows, 1] = g + (1.0 - g) * prob[rows, 1]
+        prob[rows, 0] = 1.0 - prob[rows, 1]
+    rows = np.flatnonzero(params.adjacent)
+    if rows.size:
+        prob[rows] = _adjacent_probabilities(params, rows, theta)
+    return prob
 
 
 def log_category_probabilities(params: ItemParameters, theta: FloatArray) -> FloatArray:
     """``log P(X = k | theta)`` computed in log space, shape (n_items, max_categories, n_theta).
 
-    See :func:`log_boundary_difference`. Categories an item lacks hold ``-inf``.
+    Cumulative items through :func:`log_boundary_difference`; a 3PL item's right answer as
+    ``log(g + (1 - g) s)`` by ``logaddexp``; partial-credit items as ``eta_k - log sum exp(eta)``.
+    Categories an item lacks hold ``-inf``.
     """
     z = linear_predictors(params, theta)
     n_items, _, n_theta = z.shape
@@ -243,27 +400,114 @@ def log_category_probabilities(params: ItemParameters, theta: FloatArray) -> Flo
     padded[:, 0, :] = np.inf
     padded[:, 1:k_max, :] = np.where(np.isnan(z), -np.inf, z)
     out = log_boundary_difference(padded[:, :-1, :], padded[:, 1:, :])
+    rows = np.flatnonzero(params.has_guessing)
+    if rows.size:
+        g = params.guessing[rows][:, None]
+        with np.errstate(divide="ignore"):  # g = 0: log g = -inf, the 2PL curve
+            out[rows, 1] = np.logaddexp(np.log(g), np.log1p(-g) + out[rows, 1])
+        out[rows, 0] = np.log1p(-g) + out[rows, 0]
+    rows = np.flatnonzero(params.adjacent)
+    if rows.size:
+        eta = _adjacent_predictors(params, rows, theta)
+        with np.errstate(invalid="ignore"):
+            out[rows] = eta - np.logaddexp.reduce(eta, axis=1, keepdims=True)
     exists = np.arange(k_max)[None, :] < params.n_categories[:, None]
     return np.where(exists[:, :, None], out, -np.inf)
+
+
+def _adjacent_predictors(params: ItemParameters, rows: IntArray, theta: FloatArray) -> FloatArray:
+    """``eta_k = k a theta + c_1 + ... + c_k`` of the listed partial-credit items, (rows, K, n_theta);
+    ``-inf`` for categories an item lacks."""
+    points = np.asarray(theta, dtype=np.float64)
+    k_max = params.max_categories
+    steps = np.nan_to_num(params.intercepts[rows, : k_max - 1], nan=0.0)
+    offsets = np.concatenate([np.zeros((rows.size, 1)), np.cumsum(steps, axis=1)], axis=1)  # (rows, K)
+    k = np.arange(k_max, dtype=np.float64)
+    eta = k[None, :, None] * params.slopes[rows][:, None, None] * points[None, None, :] + offsets[:, :, None]
+    exists = np.arange(k_max)[None, :] < params.n_categories[rows][:, None]
+    return np.where(exists[:, :, None], eta, -np.inf)
+
+
+def _adjacent_probabilities(params: ItemParameters, rows: IntArray, theta: FloatArray) -> FloatArray:
+    """Category probabilities of the listed partial-credit items, (rows, K, n_theta)."""
+    eta = _adjacent_predictors(params, rows, theta)
+    eta -= eta.max(axis=1, keepdims=True)
+    weights = np.exp(eta)
+    return weights / weights.sum(axis=1, keepdims=True)
+
+
+def _adjacent_design(params: ItemParameters, rows: IntArray, theta: FloatArray, n_slots: int) -> FloatArray:
+    """``D[j, k, q, s] = d eta_k / d slot_s`` of the listed partial-credit items: ``k theta`` for the slope,
+    1 for step ``s <= k`` (within the item's steps), 0 elsewhere."""
+    points = np.asarray(theta, dtype=np.float64)
+    k_max = params.max_categories
+    design = np.zeros((rows.size, k_max, points.size, n_slots))
+    k = np.arange(k_max, dtype=np.float64)
+    design[..., 0] = k[None, :, None] * points[None, None, :]
+    for step in range(1, k_max):
+        has = (params.n_categories[rows] > step).astype(np.float64)  # (rows,)
+        design[:, step:, :, step] = has[:, None, None]
+    return design
 
 
 def category_probability_derivatives(params: ItemParameters, theta: FloatArray) -> FloatArray:
     """``d P(X = k | theta) / d theta``, shape (n_items, max_categories, n_theta).
 
-    With ``W_k = P*_k (1 - P*_k)`` (``W_0 = W_K = 0``): ``dP_k/dtheta = a (W_k - W_{k+1})``.
+    See :func:`category_theta_derivatives`.
+    """
+    return category_theta_derivatives(params, theta, second=False)[1]
+
+
+def category_theta_derivatives(
+    params: ItemParameters, theta: FloatArray, *, second: bool = True
+) -> tuple[FloatArray, FloatArray, FloatArray | None]:
+    """Category probabilities and their first (and second) derivatives in theta, each (n_items, K, n_theta).
+
+    Cumulative items, with ``W_k = P*_k (1 - P*_k)`` (``W_0 = W_K = 0``): ``dP_k/dtheta = a (W_k -
+    W_{k+1})`` and ``d2P_k/dtheta2 = a^2 (W_k (1 - 2 P*_k) - W_{k+1} (1 - 2 P*_{k+1}))``; a 3PL item's are
+    ``(1 - g)`` times its 2PL part's; partial-credit items: ``dP_k/dtheta = a P_k (k - kbar)`` and
+    ``d2P_k/dtheta2 = a^2 P_k ((k - kbar)^2 - Var(k))`` with the mean and variance of the category.
     """
     star = cumulative_probabilities(params, theta)
+    prob = star[:, :-1, :] - star[:, 1:, :]
     w = star * (1.0 - star)
-    return params.slopes[:, None, None] * (w[:, :-1, :] - w[:, 1:, :])
+    a = params.slopes[:, None, None]
+    first = a * (w[:, :-1, :] - w[:, 1:, :])
+    curve = None
+    if second:
+        bend = w * (1.0 - 2.0 * star)
+        curve = a * a * (bend[:, :-1, :] - bend[:, 1:, :])
+    rows = np.flatnonzero(params.has_guessing)
+    if rows.size:
+        g = params.guessing[rows][:, None]
+        prob[rows, 1] = g + (1.0 - g) * prob[rows, 1]
+        prob[rows, 0] = 1.0 - prob[rows, 1]
+        first[rows] *= (1.0 - g)[:, None, :]
+        if curve is not None:
+            curve[rows] *= (1.0 - g)[:, None, :]
+    rows = np.flatnonzero(params.adjacent)
+    if rows.size:
+        p_adj = _adjacent_probabilities(params, rows, theta)
+        k = np.arange(params.max_categories, dtype=np.float64)[None, :, None]
+        mean = np.sum(p_adj * k, axis=1, keepdims=True)
+        slope = params.slopes[rows][:, None, None]
+        prob[rows] = p_adj
+        first[rows] = slope * p_adj * (k - mean)
+        if curve is not None:
+            variance = np.sum(p_adj * (k - mean) ** 2, axis=1, keepdims=True)
+            curve[rows] = slope * slope * p_adj * ((k - mean) ** 2 - variance)
+    return prob, first, curve
 
 
 def item_information(params: ItemParameters, theta: FloatArray) -> FloatArray:
     """Fisher information of each item, shape (n_items, n_theta).
 
     ``I_j(theta) = sum_k (dP_jk/dtheta)^2 / P_jk`` (Samejima 1969); for a 2PL item this
-    is ``a^2 P (1 - P)``.
+    is ``a^2 P (1 - P)``, for a 3PL item ``a^2 (1 - g)^2 s^2 (1 - s)^2 / (P (1 - P))`` with its 2PL
+    part ``s``.
     """
-    return information_from(category_probabilities(params, theta), category_probability_derivatives(params, theta))
+    prob, first, _ = category_theta_derivatives(params, theta, second=False)
+    return information_from(prob, first)
 
 
 def information_from(prob: FloatArray, deriv: FloatArray) -> FloatArray:

@@ -100,5 +100,10 @@ def person_fit_lz(
         with np.errstate(invalid="ignore", divide="ignore"):
             out[rows] = np.where((ok.sum(axis=1) > 0) & (var > 0), statistic / np.sqrt(var), np.nan)
 
-    run_blocks(dichotomous if params.max_categories == 2 else block, x.shape[0], DEFAULT_CHUNK, workers=None)
+    run_blocks(
+        dichotomous if params.max_categories == 2 and params.cumulative_only else block,
+        x.shape[0],
+        DEFAULT_CHUNK,
+        workers=None,
+    )
     return out

@@ -29,6 +29,8 @@ from calibration.irt.models import (
     FloatArray,
     IntArray,
     ItemParameters,
+    category_theta_derivatives,
+    information_from,
 )
 from calibration.vocabulary import SCORING_METHODS
 
@@ -246,6 +248,28 @@ def _expected_information(params: ItemParameters, answered: np.ndarray | None, t
     return _answered_sum(total, answered, a * a)
 
 
+def _any_model_curves(
+    params: ItemParameters, codes: IntArray, answered: np.ndarray | None, theta: FloatArray
+) -> tuple[FloatArray, FloatArray]:
+    """d log L / d theta and minus its second derivative for any item models (3PL, partial credit...):
+    ``sum_j P'_jx / P_jx`` and ``sum_j ((P'_jx / P_jx)^2 - P''_jx / P_jx)`` over the answered items,
+    from (J, K, n) tables at each respondent's theta (the cumulative-only paths avoid them)."""
+    prob, first, second = category_theta_derivatives(params, theta)
+    assert second is not None
+    at = codes.T[:, None, :]  # (J, 1, n)
+    p = np.maximum(np.take_along_axis(prob, at, axis=1)[:, 0], PROBABILITY_FLOOR)
+    ratio = np.take_along_axis(first, at, axis=1)[:, 0] / p
+    bend = np.take_along_axis(second, at, axis=1)[:, 0] / p
+    ones = np.ones(params.n_items)
+    return _answered_sum(ratio.T, answered, ones), _answered_sum((ratio * ratio - bend).T, answered, ones)
+
+
+def _any_model_information(params: ItemParameters, answered: np.ndarray | None, theta: FloatArray) -> FloatArray:
+    """Test information at each respondent's theta over the answered items, for any item models."""
+    prob, first, _ = category_theta_derivatives(params, theta, second=False)
+    return _answered_sum(information_from(prob, first).T, answered, np.ones(params.n_items))
+
+
 def _newton_theta(
     params: ItemParameters,
     x: FloatArray,
@@ -269,8 +293,10 @@ def _newton_theta(
     n_rows = theta.shape[0]
     active = np.ones(n_rows, dtype=bool)
     prior_curvature = 0.0 if prior is None else 1.0 / prior.sd**2
-    dichotomous = params.max_categories == 2
-    lower, upper = (None, None) if dichotomous else _answer_factors(params, codes)
+    general = not params.cumulative_only  # 3PL or partial-credit items: the general (J, K, n) path
+    information = _any_model_information if general else _expected_information
+    dichotomous = params.max_categories == 2 and not general
+    lower, upper = (None, None) if dichotomous or general else _answer_factors(params, codes)
     # Right/wrong items: the curvature of the last step is the expected information, so a row whose
     # last step was below SE_REUSE_STEP keeps it for its SE (it changes by far less than 1e-6 there).
     last_info = np.full(n_rows, np.nan)
@@ -280,7 +306,9 @@ def _newton_theta(
             break
         rows: slice | IntArray = slice(None) if idx.size == n_rows else idx  # a view while every row is active
         on = None if answered is None else answered[rows]
-        if lower is None or upper is None:
+        if general:
+            gradient, curvature = _any_model_curves(params, codes[rows], on, theta[rows])
+        elif lower is None or upper is None:
             gradient, curvature = _right_wrong_curves(params, codes[rows], on, theta[rows])
         else:
             gradient, curvature = _answer_curves(params, lower[rows], upper[rows], on, theta[rows])
@@ -291,8 +319,7 @@ def _newton_theta(
         if bent.size:
             flat = idx[bent]
             curvature[bent] = (
-                _expected_information(params, None if answered is None else answered[flat], theta[flat])
-                + prior_curvature
+                information(params, None if answered is None else answered[flat], theta[flat]) + prior_curvature
             )
         step = np.clip(gradient / np.maximum(curvature, 1e-12), -1.0, 1.0)
         before = theta[rows]
@@ -307,7 +334,7 @@ def _newton_theta(
     again = np.flatnonzero(~np.isfinite(info))
     if again.size:
         on = None if answered is None else answered[again]
-        info[again] = _expected_information(params, on, theta[again]) + prior_curvature
+        info[again] = information(params, on, theta[again]) + prior_curvature
     with np.errstate(divide="ignore"):
         se = np.where(info > 0, 1.0 / np.sqrt(info), np.inf)
     return theta, se

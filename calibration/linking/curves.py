@@ -26,6 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize
 
+from calibration.estimation.layout import params_from_table, slot_table
 from calibration.irt.likelihood import QuadratureGrid, normal_weights
 from calibration.irt.models import FloatArray, ItemParameters, category_probabilities, expected_item_scores
 from calibration.vocabulary import LinkMethod
@@ -59,6 +60,7 @@ def rescale(params: ItemParameters, slope: float, intercept: float) -> ItemParam
         intercepts=params.intercepts - (a * intercept)[:, None],
         n_categories=params.n_categories,
         models=params.models,
+        guessing=params.guessing,  # an asymptote is a probability: the same on every scale
     )
 
 
@@ -95,7 +97,7 @@ def characteristic_curve_constants(
 ) -> LinkingConstants:
     """The constants that put ``new`` (common items, new scale) on the scale of ``old`` (same items, same order).
 
-    ``covariance`` of the new items' slots, in the order slope then intercepts item by item (the
+    ``covariance`` of the new items' slots, in the order slope, intercepts (and logit(g)) item by item (the
     existing slots only), gives the constants' SEs by the delta method.
     """
     if old.n_items != new.n_items or not np.array_equal(old.n_categories, new.n_categories):
@@ -127,23 +129,16 @@ def _minimise(objective: Callable[[FloatArray], float]) -> FloatArray:
 
 
 def _slot_vector(params: ItemParameters) -> tuple[FloatArray, Callable[[FloatArray], ItemParameters]]:
-    """The existing slots (slope, intercepts) item by item, and the map back to parameters."""
-    exists = np.arange(params.max_categories - 1)[None, :] < (params.n_categories - 1)[:, None]
-    rows = zip(params.slopes, params.intercepts, exists, strict=True)
-    vector = np.concatenate([np.concatenate([[a], c[m]]) for a, c, m in rows])
+    """The existing slots (slope, intercepts, a 3PL item's logit(g)) item by item, and the map back."""
+    table = slot_table(params)
+    exists = np.arange(params.max_slots)[None, :] < params.n_slots[:, None]
 
     def rebuild(values: FloatArray) -> ItemParameters:
-        slopes, intercepts, at = params.slopes.copy(), params.intercepts.copy(), 0
-        for j in range(params.n_items):
-            slopes[j] = values[at]
-            width = int(exists[j].sum())
-            intercepts[j, :width] = values[at + 1 : at + 1 + width]
-            at += 1 + width
-        return ItemParameters(
-            slopes=slopes, intercepts=intercepts, n_categories=params.n_categories, models=params.models
-        )
+        moved = table.copy()
+        moved[exists] = values
+        return params_from_table(moved, params)
 
-    return vector, rebuild
+    return table[exists], rebuild
 
 
 def _constants_jacobian(

@@ -31,8 +31,9 @@ from calibration.dif.anchored_lr import EFFECT_SE_STEP, ItemGroupTest, nested_it
 from calibration.dif.effect_size import effect_size
 from calibration.dif.multiplicity import adjust
 from calibration.estimation import EMSettings, HeldLikelihood, LatentSpec
+from calibration.estimation.layout import params_from_table, slot_table
 from calibration.irt.likelihood import build_design, log_likelihood_grid, one_item_log_likelihood
-from calibration.irt.models import FloatArray, ItemParameters
+from calibration.irt.models import GUESSING_SLOT, FloatArray, ItemParameters
 
 NEW_CYCLE = 1
 """The new cycle's position in the two-group drift models (0 is the earlier cycle, without rows)."""
@@ -44,7 +45,7 @@ class PublishedItem:
 
     position: int
     params: ItemParameters  # one item
-    slot_se: FloatArray  # (K,): slope, intercepts; 0 where the bundle has none
+    slot_se: FloatArray  # (slots,): slope, intercepts, a 3PL item's logit(g); 0 where the bundle has none
 
 
 @dataclass(frozen=True)
@@ -59,8 +60,8 @@ class DriftTest:
 
 
 def _slots(params: ItemParameters) -> FloatArray:
-    k = int(params.n_categories[0])
-    return np.concatenate([params.slopes[:1], params.intercepts[0, : k - 1]])
+    """One item's slots: slope, intercepts and a 3PL item's ``logit(g)``."""
+    return slot_table(params)[0]
 
 
 def _published_effect_variance(published: PublishedItem, new: ItemParameters, mean: float, sd: float) -> float:
@@ -74,9 +75,7 @@ def _published_effect_variance(published: PublishedItem, new: ItemParameters, me
         for step in (h, -h):
             moved = base.copy()
             moved[s] += step
-            params = ItemParameters(
-                slopes=moved[:1], intercepts=moved[None, 1:], n_categories=published.params.n_categories
-            )
+            params = params_from_table(moved[None], published.params)
             values.append(effect_size(params, new, mean, sd)[0])
         gradient[s] = (values[0] - values[1]) / (2 * h)
     return float(gradient @ (published.slot_se**2 * gradient))
@@ -84,17 +83,19 @@ def _published_effect_variance(published: PublishedItem, new: ItemParameters, me
 
 def _between_cycles(test: ItemGroupTest, published: PublishedItem, mean: float, sd: float) -> DriftTest:
     """The Wald test and the effect's SE with both cycles' sampling error (see the module)."""
-    k = int(published.params.n_categories[0])
+    k = int(published.params.n_slots[0])
     change = test.focal_table[:k] - _slots(published.params)
     if test.focal_covariance is None:  # the information was singular: only the LR test is left
         return DriftTest(test, float("nan"), test.p_omnibus)
-    variance = test.focal_covariance + np.diag(published.slot_se**2)
+    own = test.focal_slots if test.focal_slots is not None else np.arange(k)  # the slots the test estimated
+    change = change[own]
+    variance = test.focal_covariance + np.diag(published.slot_se[own] ** 2)
     wald = float(change @ np.linalg.solve(variance, change))
-    new = ItemParameters(
-        slopes=test.focal_table[:1], intercepts=test.focal_table[None, 1:k], n_categories=published.params.n_categories
-    )
+    new = params_from_table(test.focal_table[None, :k], published.params)
     effect_variance = test.effect_theta_se**2 + _published_effect_variance(published, new, mean, sd)
-    moved = replace(test, p_omnibus=float(stats.chi2.sf(wald, k)), effect_theta_se=float(np.sqrt(effect_variance)))
+    moved = replace(
+        test, p_omnibus=float(stats.chi2.sf(wald, own.size)), effect_theta_se=float(np.sqrt(effect_variance))
+    )
     return DriftTest(moved, wald, test.p_omnibus)
 
 
@@ -131,8 +132,11 @@ def drift_tests(  # noqa: PLR0913 - the data, the provisional link and keyword-o
         ]
         table = _slots(item.params)
         start = np.stack([table[None], table[None]])  # (2, 1, K): both cycles start at the published values
-        fixed = np.zeros((2, 1, k_j), dtype=bool)
+        fixed = np.zeros((2, 1, table.size), dtype=bool)
         fixed[0] = True  # the earlier cycle's parameters are known
+        if settings.held_guessing and np.isfinite(settings.held_guessing[j]) and params.has_guessing[j]:
+            fixed[1, 0, GUESSING_SLOT] = True  # an asymptote the item spec holds is not tested
+            start[1, 0, GUESSING_SLOT] = np.log(settings.held_guessing[j]) - np.log1p(-settings.held_guessing[j])
         test = nested_item_tests(
             held, params.subset([j]), start, latent, settings, item=j, group=NEW_CYCLE, fixed=fixed
         )

@@ -27,8 +27,11 @@ from calibration.bundle.schema import (
     ScoringSettings,
 )
 from calibration.estimation import MultiGroupFit, threshold_se
+from calibration.estimation.layout import slot_guessing
+from calibration.estimation.settings import GUESSING_PRIOR
 from calibration.io import ResponseData, finite_or_none
 from calibration.irt.likelihood import QuadratureGrid
+from calibration.irt.models import GUESSING_SLOT, MODEL_3PL
 from calibration.irt.reliability import information_curve
 from calibration.pipeline.link import LinkStage
 from calibration.pipeline.policy import PolicyTable
@@ -83,7 +86,7 @@ def build_bundle(run: CalibrationRun, findings: Findings) -> Bundle:
             data_source=data.source,
             n_respondents=data.n_persons,
             n_respondents_by_group={g: int(sizes[i]) for i, g in enumerate(group_names)},
-            settings=settings.describe(),
+            settings=_settings_record(settings, prepared),
             notes=list(data.notes),
         ),
         metric=_metric(fit, group_names, sizes),
@@ -144,6 +147,7 @@ def _item_entries(
                 proposed_status=cell.proposed,  # type: ignore[arg-type]
                 slope=float(fit.tables[g, j, 0]) if specific else None,
                 intercepts=[float(c) for c in fit.tables[g, j, 1:kj]] if specific else None,
+                guessing=slot_guessing(fit.tables[g, j], prepared.models[j]) if specific else None,
             )
         items.append(
             ItemEntry(
@@ -160,6 +164,8 @@ def _item_entries(
                 threshold_se=held[j].threshold_se
                 if j in held
                 else [finite_or_none(float(s)) for s in b_se[j, : kj - 1]],
+                guessing=held[j].guessing if j in held else slot_guessing(fit.tables[0, j], prepared.models[j]),
+                guessing_se=held[j].guessing_se if j in held else _guessing_se(fit, j, prepared.models[j]),
                 category_map=prepared.category_maps.get(j),
                 n_responses=int(np.sum(~np.isnan(x[:, j]))),
                 mean_score=finite_or_none(float(np.nanmean(x[:, j]))),
@@ -168,6 +174,25 @@ def _item_entries(
             )
         )
     return items
+
+
+def _settings_record(settings: PipelineSettings, prepared: PreparedData) -> dict[str, str | int | float | bool | None]:
+    """The settings as provenance records them; with 3PL items, their asymptote prior and any held asymptotes."""
+    record = settings.describe()
+    if MODEL_3PL in prepared.models:
+        record["guessing_prior"] = GUESSING_PRIOR.describe()
+        held = [f"{i}={g:g}" for i, g in zip(prepared.item_ids, prepared.held_guessing, strict=False) if g == g]
+        if held:
+            record["held_asymptotes"] = ", ".join(held)
+    return record
+
+
+def _guessing_se(fit: MultiGroupFit, j: int, model: str) -> float | None:
+    """SE of a 3PL asymptote by the delta method from ``logit(g)``: ``g (1 - g) SE(logit g)``."""
+    g = slot_guessing(fit.tables[0, j], model)
+    if g is None:
+        return None
+    return finite_or_none(g * (1.0 - g) * float(fit.slot_se[0, j, GUESSING_SLOT]))
 
 
 def _metric(fit: MultiGroupFit, group_names: list[str], sizes: np.ndarray) -> Metric:

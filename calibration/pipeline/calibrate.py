@@ -71,6 +71,8 @@ def calibrate_data(  # noqa: PLR0913 - the data and keyword-only options
         check_link_request(link, settings)
         reference_group = link_reference_group(data, link, reference_group)
     prepared = prepare_data(data, settings=settings, reference_group=reference_group, overrides=overrides)
+    if prepared.held_guessing:  # every fit holds the asymptotes the item spec gives
+        settings = replace(settings, em=replace(settings.em, held_guessing=prepared.held_guessing))
     notes = list(prepared.notes)
     policy = PolicyTable(prepared.n_items, prepared.n_groups)
     stage: DifStage | None = None

@@ -22,6 +22,7 @@ from calibration.dif.logistic import logistic_dif
 from calibration.dif.observed import MatchingSet, ObservedScreening, screen_observed
 from calibration.dif.settings import DifSettings
 from calibration.estimation import MultiGroupFit
+from calibration.estimation.layout import slot_guessing
 from calibration.io import finite_or_none
 from calibration.pipeline.fits import quiet_fit
 from calibration.pipeline.policy import PolicyTable
@@ -85,8 +86,8 @@ def run_dif_stage(
         progress=None if progress is None else (lambda stage, done, total: progress(stage, done, float(total))),
     )
     _set_policy(policy, outcome, prepared, settings)
-    irt_rows = [_irt_row(t, "screening", item_ids, group_names, settings.dif) for t in outcome.screening.values()]
-    irt_rows += [_irt_row(t, "test", item_ids, group_names, settings.dif) for t in outcome.tests.values()]
+    irt_rows = [_irt_row(t, "screening", prepared, settings.dif) for t in outcome.screening.values()]
+    irt_rows += [_irt_row(t, "test", prepared, settings.dif) for t in outcome.tests.values()]
     report = DifReport(
         settings=DifSettingsRecord(
             fdr_alpha=settings.dif.fdr_level,
@@ -157,12 +158,11 @@ def _evidence(test: ItemGroupTest, settings: DifSettings, note: str) -> PolicyEv
     )
 
 
-def _irt_row(
-    test: ItemGroupTest, stage: str, item_ids: tuple[str, ...], groups: list[str], settings: DifSettings
-) -> IrtDifRow:
+def _irt_row(test: ItemGroupTest, stage: str, prepared: PreparedData, settings: DifSettings) -> IrtDifRow:
+    k_j, model = int(prepared.k[test.item]), prepared.models[test.item]
     return IrtDifRow(
-        item=item_ids[test.item],
-        group=groups[test.group],
+        item=prepared.item_ids[test.item],
+        group=prepared.group_names[test.group],
         stage=stage,  # type: ignore[arg-type]
         g2_omnibus=test.g2_omnibus,
         df_omnibus=test.df_omnibus,
@@ -178,15 +178,12 @@ def _irt_row(
         level=test.level(settings),  # type: ignore[arg-type]
         flagged=stage == "test" and test.flagged(settings),
         reference_slope=float(test.reference_table[0]),
-        reference_intercepts=_finite_intercepts(test.reference_table),
+        reference_intercepts=[float(c) for c in test.reference_table[1:k_j]],
         focal_slope=float(test.focal_table[0]),
-        focal_intercepts=_finite_intercepts(test.focal_table),
+        focal_intercepts=[float(c) for c in test.focal_table[1:k_j]],
+        reference_guessing=slot_guessing(test.reference_table, model),
+        focal_guessing=slot_guessing(test.focal_table, model),
     )
-
-
-def _finite_intercepts(table: np.ndarray) -> list[float]:
-    """The intercepts of a (slope, intercepts...) slot row without its NaN padding."""
-    return [float(c) for c in table[1:] if np.isfinite(c)]
 
 
 def _observed_rows(

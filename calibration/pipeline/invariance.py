@@ -31,7 +31,7 @@ def invariance_ladder(
         prepared.models,
     )
     structural = set(prepared.no_variance_cells)
-    n_items, k_max = x.shape[1], int(k.max())
+    n_items, k_max = x.shape[1], scalar.tables.shape[2]  # k_max: slots per item
     everything = np.ones((n_groups, n_items, k_max), dtype=bool)
     everything[0] = False
     for j, g in structural:

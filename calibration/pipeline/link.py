@@ -36,10 +36,12 @@ from calibration.bundle.schema import (
     ReportingScaleSettings,
     ScoringSettings,
 )
+from calibration.bundle.scorer import entry_parameters
 from calibration.errors import CalibrationInputError
 from calibration.estimation import EMSettings, LatentSpec, MultiGroupFit
+from calibration.estimation.layout import slot_table
 from calibration.io import ResponseData, finite_or_none
-from calibration.irt.models import ItemParameters
+from calibration.irt.models import GUESSING_SLOT, SHARED_SLOPE_MODELS, ItemParameters
 from calibration.linking import DriftTest, PublishedItem, characteristic_curve_constants, drift_tests, rescale
 from calibration.linking.curves import LinkingConstants
 from calibration.pipeline.dif import ProgressCallback
@@ -124,7 +126,7 @@ def common_items(prepared: PreparedData, parent: Bundle) -> _Common:
             reason = f"{entry.n_categories} categories in {parent.label}, {k_j} in this calibration"
         elif entry.category_map != merged:
             reason = f"answer codes merged as {entry.category_map} in {parent.label}, as {merged} now"
-        elif (entry.model == "1pl") != (model == "1pl"):
+        elif entry.model != model:
             reason = f"model {entry.model} in {parent.label}, {model} now"
         if reason is not None:
             not_linked.append(NotLinkedItem(item=item, reason=reason + ": calibrated as a new item"))
@@ -132,26 +134,22 @@ def common_items(prepared: PreparedData, parent: Bundle) -> _Common:
             continue
         positions.append(j)
         held[j] = entry
-        published[j] = ItemParameters(
-            slopes=np.array([entry.slope]),
-            intercepts=np.array([entry.intercepts], dtype=np.float64),
-            n_categories=np.array([k_j]),
-            models=(model,),
-        )
+        published[j] = entry_parameters([entry])
     return _Common(positions, published, held, new_items, not_linked)
 
 
 def _stack(published: dict[int, ItemParameters], items: Sequence[int]) -> ItemParameters:
     """The published parameters of ``items`` as one test (intercepts NaN-padded to the widest item)."""
-    width = max(int(published[j].n_categories[0]) for j in items) - 1
-    intercepts = np.full((len(items), width), np.nan)
-    for row, j in enumerate(items):
-        intercepts[row, : published[j].intercepts.shape[1]] = published[j].intercepts[0]
-    return ItemParameters(
-        slopes=np.array([published[j].slopes[0] for j in items]),
-        intercepts=intercepts,
-        n_categories=np.array([int(published[j].n_categories[0]) for j in items]),
-        models=tuple(published[j].models[0] for j in items),
+    return ItemParameters.stack(
+        [
+            (
+                float(published[j].slopes[0]),
+                published[j].intercepts[0, : int(published[j].n_categories[0]) - 1].tolist(),
+                published[j].models[0],
+                float(published[j].guessing[0]),
+            )
+            for j in items
+        ]
     )
 
 
@@ -162,8 +160,7 @@ def _on_parent_scale(fit: MultiGroupFit, constants: LinkingConstants) -> MultiGr
     tables = fit.tables.copy()
     for g in range(tables.shape[0]):
         rescaled = rescale(fit.group_params(g), slope, shift)
-        tables[g, :, 0] = rescaled.slopes
-        tables[g, :, 1:] = rescaled.intercepts[:, : tables.shape[2] - 1]
+        tables[g] = slot_table(rescaled)
     mean, sd = slope * fit.latent_mean + shift, slope * fit.latent_sd
     mean_se, sd_se = slope * fit.latent_mean_se, slope * fit.latent_sd_se
     mean_se[0], sd_se[0] = constants.intercept_se, constants.slope_se  # the reference group's density is (B, A)
@@ -201,6 +198,8 @@ def _rescale_jacobian(fit: MultiGroupFit, slope: float, shift: float) -> np.ndar
             jacobian[i, i] = 1.0 / slope
             continue
         jacobian[i, i] = 1.0
+        if s == GUESSING_SLOT and fit.template.has_guessing[j]:
+            continue  # a 3PL asymptote does not depend on the scale
         if index[g, j, 0] >= 0:
             jacobian[i, index[g, j, 0]] = -shift / slope
     for i in range(fit.layout.n_free, size):
@@ -212,7 +211,7 @@ def _slot_covariance(fit: MultiGroupFit, items: Sequence[int]) -> np.ndarray | N
     """Covariance of the reference group's slots of ``items`` (slope, intercepts item by item)."""
     if fit.covariance is None:
         return None
-    at = [int(fit.layout.index[0, j, s]) for j in items for s in range(int(fit.template.n_categories[j]))]
+    at = [int(fit.layout.index[0, j, s]) for j in items for s in range(int(fit.template.n_slots[j]))]
     return fit.covariance[np.ix_(at, at)]
 
 
@@ -228,20 +227,19 @@ def _fixed_fit(  # noqa: PLR0913 - the data, the policy, the link and the start
     progress: ProgressCallback | None,
 ) -> MultiGroupFit:
     """Every parameter but the link items' (held at their published values) on the parent's scale."""
-    n_groups, k_max = prepared.n_groups, int(prepared.k.max())
-    group_free = policy.group_free(k_max)
+    n_groups = prepared.n_groups
     tables = start.tables.copy()
+    group_free = policy.group_free(tables.shape[2])
     fixed = np.zeros(tables.shape, dtype=bool)
     for j in link:
-        k_j = int(prepared.k[j])
-        tables[0, j, 0] = common.published[j].slopes[0]
-        tables[0, j, 1:k_j] = common.published[j].intercepts[0, : k_j - 1]
-        fixed[0, j, :k_j] = True
+        row = slot_table(common.published[j])[0]
+        tables[0, j, : row.size] = row
+        fixed[0, j, : row.size] = True
         for g in range(1, n_groups):
             if not group_free[g, j].any():
                 tables[g, j] = tables[0, j]
-    one_pl = [j for j, m in enumerate(prepared.models) if m == "1pl"]
-    held_one_pl = [j for j in link if prepared.models[j] == "1pl"]
+    one_pl = [j for j, m in enumerate(prepared.models) if m in SHARED_SLOPE_MODELS]
+    held_one_pl = [j for j in link if prepared.models[j] in SHARED_SLOPE_MODELS]
     if held_one_pl:  # the 1PL items share one slope: the published one
         tables[:, one_pl, 0] = common.published[held_one_pl[0]].slopes[0]
         fixed[0, one_pl, 0] = True
@@ -277,8 +275,12 @@ LINK_RULE = (
 
 
 def _published_se(entry: ItemEntry) -> np.ndarray:
-    """The published slot SEs (slope, intercepts), 0 where the bundle has none."""
+    """The published slot SEs (slope, intercepts, a 3PL item's logit(g) from the SE of g), 0 where the bundle
+    has none."""
     values = [entry.slope_se, *entry.intercept_se]
+    if entry.guessing is not None:
+        g = entry.guessing
+        values.append(None if entry.guessing_se is None or not 0 < g < 1 else entry.guessing_se / (g * (1 - g)))
     return np.array([0.0 if v is None else v for v in values], dtype=np.float64)
 
 
@@ -340,6 +342,7 @@ def run_link_stage(  # noqa: PLR0913 - the data, the policy, the request and the
         standard_errors=False,
         quadrature=settings.em.quadrature,
         compress_patterns=False,
+        held_guessing=settings.em.held_guessing,
     )
     reference_rows = policy.administered(prepared.x, prepared.group_index)[prepared.group_index == 0]
     all_common = [PublishedItem(j, common.published[j], _published_se(common.entries[j])) for j in common.positions]

@@ -57,6 +57,7 @@ class PreparedData:
     excluded_items: list[ExcludedItem]
     no_variance_cells: dict[tuple[int, int], str]
     notes: list[str]
+    held_guessing: tuple[float, ...] = ()  # per kept item: a 3PL asymptote the item spec holds, else NaN
 
     @property
     def n_groups(self) -> int:
@@ -162,8 +163,19 @@ def prepare_data(
     _check_anchors(settings.dif.anchors, item_ids, data.item_ids, excluded_items, n_groups)
     # An item merged down to two categories becomes a 2PL item.
     models = tuple("2pl" if k[pos] == 2 and data.models[j] == "grm" else data.models[j] for pos, j in enumerate(keep))
+    held = tuple(data.held_guessing.get(item, float("nan")) for item in item_ids)
     return PreparedData(
-        group_names, group_index, x, item_ids, k, models, category_maps, excluded_items, no_variance_cells, notes
+        group_names,
+        group_index,
+        x,
+        item_ids,
+        k,
+        models,
+        category_maps,
+        excluded_items,
+        no_variance_cells,
+        notes,
+        held if data.held_guessing else (),
     )
 
 

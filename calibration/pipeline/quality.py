@@ -6,9 +6,10 @@ import numpy as np
 
 from calibration.bundle.schema import Dimensionality, GroupQuality, ItemQuality, SummedScoreRow
 from calibration.estimation import EMSettings, MultiGroupFit
+from calibration.estimation.settings import GUESSING_PRIOR
 from calibration.io import finite_or_none
 from calibration.irt.likelihood import QuadratureGrid
-from calibration.irt.models import ItemParameters
+from calibration.irt.models import GUESSING_SLOT, ItemParameters
 from calibration.irt.reliability import marginal_reliability
 from calibration.irt.scoring import NormalPrior, eap_scores
 from calibration.irt.summed_scores import summed_score_table
@@ -31,6 +32,9 @@ from calibration.quality.model_fit import (
 
 SLOPE_VERY_LARGE = 4.0
 """A reference slope above this is reported as very large (a near-Heywood case)."""
+PRIOR_DOMINATED = 0.8
+"""A 3PL asymptote whose SE is above this share of the asymptote prior's SD is reported as set mostly by the
+prior (equitheta's rule: the data narrowed the prior by less than a fifth)."""
 
 
 def quality_by_group(
@@ -84,6 +88,18 @@ def review_warnings(prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTa
             notes.append(f"item {item!r}: slope {slopes[j]:.3f} is not positive (miskeyed?)")
         elif slopes[j] > SLOPE_VERY_LARGE:
             notes.append(f"item {item!r}: slope {slopes[j]:.2f} is very large (near-Heywood?)")
+    weak = []
+    for j in np.flatnonzero(fit.template.has_guessing):
+        g = float(fit.group_params(0).guessing[j])
+        se = g * (1.0 - g) * float(fit.slot_se[0, j, GUESSING_SLOT])
+        if np.isfinite(se) and se > PRIOR_DOMINATED * GUESSING_PRIOR.sd:
+            weak.append(f"{prepared.item_ids[j]} ({g:.2f}, SE {se:.2f})")
+    if weak:
+        notes.append(
+            f"3PL asymptotes set mostly by their prior (mode 0.2, SD {GUESSING_PRIOR.sd:.3f}): {', '.join(weak)}; "
+            "few respondents low enough on the scale to show guessing, or too few items: consider holding the "
+            "asymptote at the chance rate in the item spec, or the 2PL"
+        )
     return notes
 
 

@@ -85,13 +85,8 @@ def _table(
     return f'<table class="{css}"><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>'
 
 
-def _one(slope: float, intercepts: Sequence[float], model: str) -> ItemParameters:
-    return ItemParameters(
-        slopes=np.array([slope]),
-        intercepts=np.array([list(intercepts)], dtype=np.float64),
-        n_categories=np.array([len(intercepts) + 1]),
-        models=(model,),
-    )
+def _one(slope: float, intercepts: Sequence[float], model: str, guessing: float | None) -> ItemParameters:
+    return ItemParameters.stack([(slope, list(intercepts), model, guessing)])
 
 
 def _overview(bundle: Bundle) -> str:
@@ -139,6 +134,35 @@ def _overview(bundle: Bundle) -> str:
     if provenance.notes:
         parts.append("<h3>Handling notes</h3><ul>" + "".join(f"<li>{_e(n)}</li>" for n in provenance.notes) + "</ul>")
     return "".join(parts)
+
+
+def _items(bundle: Bundle) -> str:
+    """Every item's model and reference parameters with their SEs."""
+    asymptotes = any(item.guessing is not None for item in bundle.items)
+
+    def with_se(value: float | None, se: float | None, spec: str) -> str:
+        return _n(value, spec) + ("" if se is None else f" ({se:{spec}})")
+
+    rows = []
+    for item in bundle.items:
+        locations = "  ".join(with_se(b, s, ".2f") for b, s in zip(item.thresholds, item.threshold_se, strict=True))
+        row: list[object] = [item.id, item.model, with_se(item.slope, item.slope_se, ".3f"), locations]
+        if asymptotes:
+            held = item.guessing is not None and item.guessing_se is None
+            row.append(
+                "-" if item.guessing is None else with_se(item.guessing, item.guessing_se, ".3f") + held * " held"
+            )
+        row += [item.n_responses, _n(item.item_rest_correlation, ".2f")]
+        rows.append(row)
+    header = ["item", "model", "slope (SE)", "thresholds or steps (SE)", *(["asymptote (SE)"] if asymptotes else [])]
+    note = (
+        "<p class=muted>Slope-threshold form of the reference group's parameters. Graded and 2PL items: the "
+        "theta where each boundary curve passes 0.5; partial-credit items: the step difficulties, where adjacent "
+        "categories are equally likely (they need not be ordered); 3PL items: the location of the curve above "
+        "its lower asymptote, which is estimated under a beta(5, 17) prior unless the item spec holds it.</p>"
+    )
+    n = len(header)
+    return _table([*header, "answers", "item-rest r"], rows, numeric=(n, n + 1)) + note
 
 
 def _ladder(bundle: Bundle) -> str:
@@ -209,12 +233,13 @@ def _matrix(bundle: Bundle, cells: dict[tuple[str, str], CellEvidence]) -> str:
 
 
 def _cell_plot(bundle: Bundle, entry: ItemEntry, cell: CellEvidence) -> str:
-    reference = _one(entry.slope, entry.intercepts, entry.model)
+    reference = _one(entry.slope, entry.intercepts, entry.model, entry.guessing)
     policy = cell.policy
     if policy.status == "group_specific" and policy.slope is not None and policy.intercepts:
-        own, source = _one(policy.slope, policy.intercepts, entry.model), "the group's parameters in this bundle"
+        own = _one(policy.slope, policy.intercepts, entry.model, policy.guessing)
+        source = "the group's parameters in this bundle"
     elif cell.irt is not None and cell.irt.focal_slope is not None and cell.irt.focal_intercepts:
-        own = _one(cell.irt.focal_slope, cell.irt.focal_intercepts, entry.model)
+        own = _one(cell.irt.focal_slope, cell.irt.focal_intercepts, entry.model, cell.irt.focal_guessing)
         source = "the group's own parameters in the DIF test's freed model"
     else:
         own, source = None, "no group-specific curve is recorded for this cell"
@@ -374,6 +399,7 @@ def render_report(bundle: Bundle, *, aliases: dict[str, AliasRecord] | None = No
     reviewed = [c for c in cells if c.reviewed]
     sections = [
         ("overview", "Data and calibration", _overview(bundle)),
+        ("items", "Items and their parameters", _items(bundle)),
         ("ladder", "Invariance ladder", _ladder(bundle)),
         ("anchors", "Anchors and how they were chosen", _anchors(bundle)),
         ("policy", "Item policy by group", _matrix(bundle, by_cell)),

@@ -78,11 +78,20 @@ def test_item_spec_declares_categories_and_rejects_codes_outside(tmp_path: Path)
 
 def test_item_spec_problems_are_listed(tmp_path: Path) -> None:
     with pytest.raises(InputError) as err:
-        read_item_spec(write(tmp_path, "item,model,categories\nQ1,3pl,\nQ1,2pl,4\n", "spec.csv"))
+        read_item_spec(
+            write(
+                tmp_path,
+                "item,model,categories,guessing\nQ1,4pl,,\nQ1,2pl,4,\nQ2,3pl,,1.2\nQ3,2pl,,0.2\nQ4,3pl,3,\n",
+                "spec.csv",
+            )
+        )
     text = str(err.value)
-    assert "'3pl' is not one of" in text
+    assert "'4pl' is not one of 2pl, 1pl, grm, 3pl, gpcm, pcm" in text
     assert "item 'Q1' is listed twice" in text
     assert "model 2pl needs 2 categories, the spec says 4" in text
+    assert "row 3 (line 4), column 'guessing': '1.2' is not a number in [0, 1)" in text
+    assert "row 4 (line 5), column 'guessing': only a 3pl item has a lower asymptote (model 2pl)" in text
+    assert "model 3pl needs 2 categories, the spec says 3" in text
 
 
 def test_parquet_reads_like_csv(tmp_path: Path) -> None:

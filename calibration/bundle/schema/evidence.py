@@ -117,6 +117,8 @@ class IrtDifRow(Frozen):
     reference_intercepts: list[float] | None = None
     focal_slope: float | None = Field(None, description="the group's own parameters in the freed model")
     focal_intercepts: list[float] | None = None
+    reference_guessing: float | None = Field(None, description="a 3PL item's reference asymptote in the freed model")
+    focal_guessing: float | None = Field(None, description="a 3PL item's focal asymptote in the freed model")
 
 
 class DifSettingsRecord(Frozen):

@@ -76,15 +76,18 @@ class GroupPolicy(Frozen):
     )
     slope: float | None = Field(None, description="Group-specific slope when status is group_specific")
     intercepts: list[float] | None = Field(None, description="Group-specific intercepts when group_specific")
+    guessing: float | None = Field(None, description="Group-specific lower asymptote of a group_specific 3PL item")
 
     @model_validator(mode="after")
     def _specific_parameters(self) -> GroupPolicy:
-        if self.status != "group_specific" and (self.slope is not None or self.intercepts is not None):
+        own = (self.slope, self.intercepts, self.guessing)
+        if self.status != "group_specific" and any(v is not None for v in own):
             raise ValueError(f"a {self.status} cell carries no group-specific parameters")
         if self.status == "group_specific":
             if self.slope is None or not self.intercepts:
                 raise ValueError("a group_specific cell needs its slope and intercepts")
-            check_item_parameters("group-specific parameters", self.slope, self.intercepts)
+            # The order of the intercepts is checked by the item, which knows its model.
+            check_item_parameters("group-specific parameters", self.slope, self.intercepts, ordered=False)
         return self
 
 
@@ -95,11 +98,15 @@ class ItemEntry(Frozen):
     model: ItemModel
     n_categories: int = Field(ge=2)
     slope: float
-    intercepts: list[float] = Field(description="c_1 > c_2 > ... (slope-intercept form)")
+    intercepts: list[float] = Field(
+        description="c_1 > c_2 > ... (slope-intercept form); a partial-credit item's step intercepts, in any order"
+    )
     thresholds: list[float] = Field(description="b_k = -c_k / slope (slope-threshold form, derived)")
     slope_se: float | None = None
     intercept_se: list[float | None]
     threshold_se: list[float | None]
+    guessing: float | None = Field(None, description="A 3PL item's lower asymptote g (absent for other models)")
+    guessing_se: float | None = Field(None, ge=0, description="SE of g (delta method from logit(g)); null when held")
     category_map: list[int] | None = Field(
         None, description="Answer code -> model category when sparse categories were merged (index = answer code)"
     )
@@ -113,7 +120,10 @@ class ItemEntry(Frozen):
         k = self.n_categories - 1
         if not (len(self.intercepts) == len(self.thresholds) == len(self.intercept_se) == len(self.threshold_se) == k):
             raise ValueError(f"item {self.id!r}: {self.n_categories} categories need {k} intercepts and thresholds")
-        check_item_parameters(f"item {self.id!r}", self.slope, self.intercepts)
+        ordered = self.model not in ("gpcm", "pcm")
+        check_item_parameters(f"item {self.id!r}", self.slope, self.intercepts, ordered=ordered, guessing=self.guessing)
+        if (self.guessing is not None) != (self.model == "3pl"):
+            raise ValueError(f"item {self.id!r}: a lower asymptote belongs to a 3pl item, and a 3pl item needs one")
         if self.slope != 0:
             for m, (c, b) in enumerate(zip(self.intercepts, self.thresholds, strict=True)):
                 if abs(b + c / self.slope) > THRESHOLD_TOLERANCE * max(1.0, abs(b)):
@@ -126,7 +136,12 @@ class ItemEntry(Frozen):
         for group, policy in self.policy.items():
             if policy.intercepts is not None and len(policy.intercepts) != k:
                 raise ValueError(f"item {self.id!r}, group {group!r}: {k} group-specific intercepts needed")
-        if self.model in ("2pl", "1pl") and self.n_categories != 2:
+            if policy.status == "group_specific" and policy.slope is not None and policy.intercepts:
+                where = f"item {self.id!r}, group {group!r}"
+                check_item_parameters(where, policy.slope, policy.intercepts, ordered=ordered, guessing=policy.guessing)
+                if (policy.guessing is not None) != (self.model == "3pl"):
+                    raise ValueError(f"{where}: group-specific parameters of a 3pl item need their lower asymptote")
+        if self.model in ("2pl", "1pl", "3pl") and self.n_categories != 2:
             raise ValueError(f"item {self.id!r}: model {self.model} has exactly 2 categories")
         if self.category_map is not None and (
             sorted(set(self.category_map)) != list(range(self.n_categories))
