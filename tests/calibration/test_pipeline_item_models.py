@@ -71,7 +71,7 @@ def mixed(tmp_path_factory: pytest.TempPathFactory) -> dict:
     store = root / "store"
     code = main(
         ["calibrate", str(root / "mixed.csv"), "--items", str(root / "spec.csv"), "--name", "mixed",
-         "--store", str(store), "--group-column", "mode", "--reference-group", "paper"]
+         "--store", str(store), "--group-column", "mode", "--reference-group", "paper", "--dif-action", "free"]
     )  # fmt: skip
     assert code == 0
     return {"root": root, "store": store, "bundle": DirectoryStore(store).get("mixed", 1), "frame": frame}
@@ -97,10 +97,17 @@ def test_bundle_carries_the_models(mixed: dict) -> None:
 
 
 def test_dif_on_3pl_and_partial_credit_items(mixed: dict) -> None:
+    # --dif-action free: the flagged cells get the group's own parameters, a 3PL item's with its asymptote.
     bundle: Bundle = mixed["bundle"]
     items = {item.id: item for item in bundle.items}
-    assert items[DIF_3PL].policy["tablet"].status == "excluded"
-    assert items[DIF_GPCM].policy["tablet"].status == "excluded"
+    own_3pl, own_gpcm = items[DIF_3PL].policy["tablet"], items[DIF_GPCM].policy["tablet"]
+    assert own_3pl.status == "group_specific" and own_3pl.guessing is not None
+    assert own_gpcm.status == "group_specific" and own_gpcm.guessing is None and len(own_gpcm.intercepts) == 3
+    # Built in: 0.9 harder for the tablet group, i.e. intercepts 0.9 slope lower.
+    assert own_3pl.intercepts[0] - items[DIF_3PL].intercepts[0] == pytest.approx(-0.9 * items[DIF_3PL].slope, abs=0.45)
+    plan = BundleScorer(bundle).plans["tablet"]
+    at = list(plan.columns).index([i.id for i in bundle.items].index(DIF_3PL))
+    assert plan.params.guessing[at] == own_3pl.guessing and plan.params.intercepts[at, 0] == own_3pl.intercepts[0]
     flagged = {i.id for i in bundle.items if i.policy["tablet"].status != "invariant"}
     assert flagged <= {DIF_3PL, DIF_GPCM, "MC09"}  # the built-in cells and at most one false flag
     rows = {(r.item, r.stage): r for r in bundle.dif.irt}
@@ -116,11 +123,14 @@ def written_out(bundle: Bundle, group: str, theta: float) -> list[list[float]]:
     """Category probabilities of the group's items from the bundle's numbers, by the models' formulas."""
     out = []
     for item in bundle.items:
-        if item.policy[group].status == "excluded":
+        policy = item.policy[group]
+        if policy.status == "excluded":
             continue
-        a, c = item.slope, item.intercepts
+        a, c, g = item.slope, item.intercepts, item.guessing
+        if policy.status == "group_specific":
+            a, c, g = policy.slope, policy.intercepts, policy.guessing
         if item.model == "3pl":
-            right = item.guessing + (1 - item.guessing) / (1 + math.exp(-(a * theta + c[0])))
+            right = g + (1 - g) / (1 + math.exp(-(a * theta + c[0])))
             out.append([1 - right, right])
         elif item.model in ("gpcm", "pcm"):
             numerators = [math.exp(sum(a * theta + c[v] for v in range(m))) for m in range(len(c) + 1)]
@@ -136,6 +146,7 @@ def test_scores_equal_written_out_quadrature_and_scipy(mixed: dict) -> None:
     scorer = BundleScorer(bundle)
     frame = mixed["frame"].head(6)
     kept = [i.id for i in bundle.items if i.policy["tablet"].status != "excluded"]
+    assert len(kept) == len(bundle.items)  # --dif-action free: nothing left out
     groups = ["tablet"] * 6
     answers = frame[[i.id for i in bundle.items]].to_numpy(dtype=float)
     eap = scorer.score(answers, groups=groups, method="eap")

@@ -338,6 +338,26 @@ def test_corrected_person_fit_is_standard_normal_under_the_model(method: str) ->
     assert plain.std() < star.std()
 
 
+def test_corrected_person_fit_is_standard_normal_for_3pl_and_partial_credit_items() -> None:
+    # The same simulation with 20 3PL and 10 four-category GPCM items (seeded, invented parameters), at the
+    # ML estimate: the category form of l_z* with each model's own P and P'.
+    from calibration.irt.person_fit import person_fit_lz
+    from calibration.irt.simulate import simulate_items
+
+    rng = np.random.default_rng(14)
+    rows = [
+        (float(a), [float(c)], "3pl", float(g))
+        for a, c, g in zip(rng.uniform(1.0, 2.0, 20), rng.normal(0, 1, 20), rng.uniform(0.1, 0.25, 20), strict=True)
+    ]
+    rows += [(float(a), [float(v) for v in rng.normal(0, 1, 3)], "gpcm", None) for a in rng.uniform(0.8, 1.6, 10)]
+    params = ItemParameters.stack(rows)
+    x = simulate_items(params, rng.normal(size=10_000), rng)
+    scores = ml_scores(params, x)
+    keep = ~scores.extreme
+    star = person_fit_lz(params, x[keep], scores.theta[keep], corrected=True)
+    assert abs(star.mean()) < 0.15 and 0.9 < star.std() < 1.1
+
+
 def test_library_scoring_refuses_codes_outside_the_items_categories() -> None:
     # A code 5 on a right/wrong item once scored as if it were the top category; now the boundary refuses it.
     params = ItemParameters.from_thresholds(np.array([1.0, 1.2]), np.array([0.0, 0.5]))
