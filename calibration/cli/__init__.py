@@ -195,7 +195,13 @@ def _add_score(sub: argparse._SubParsersAction) -> None:
         help="NAME, NAME@VERSION or NAME@ALIAS (NAME: the production alias, else the newest version)",
     )
     sc.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
-    sc.add_argument("--out", required=True, type=Path, help="output CSV (written to a temporary name, then renamed)")
+    sc.add_argument(
+        "--out",
+        required=True,
+        type=Path,
+        help="output CSV (written to a temporary name, then renamed); with --engine dask a name that does not end "
+        "in .csv is a directory of Parquet parts",
+    )
     sc.add_argument("--id-column", default="id", help="column holding the respondent ids")
     sc.add_argument("--method", choices=["eap", "map", "ml"], help="default: the bundle's scoring method")
     sc.add_argument("--ignore-columns", default="", help="comma-separated columns that are not items")
@@ -205,6 +211,22 @@ def _add_score(sub: argparse._SubParsersAction) -> None:
         choices=["error", "reference"],
         default="error",
         help="a group the bundle does not know: an error, or score with the reference group",
+    )
+    dask = sc.add_argument_group("scale-out (the dask extra: pip install 'equitheta[dask]')")
+    dask.add_argument(
+        "--engine",
+        choices=["local", "dask"],
+        default="local",
+        help="local: this process, batch by batch; dask: partition by partition on a Dask cluster",
+    )
+    dask.add_argument(
+        "--scheduler",
+        metavar="ADDRESS",
+        help="a running Dask scheduler (tcp://host:8786); its workers must see the input and output paths "
+        "(default: a local cluster started for the job)",
+    )
+    dask.add_argument(
+        "--dask-workers", type=int, default=2, help="worker processes of the local cluster (one thread each)"
     )
 
 

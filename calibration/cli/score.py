@@ -5,33 +5,17 @@ from __future__ import annotations
 import argparse
 from collections import Counter
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
 from calibration.bundle import Bundle, resolve
-from calibration.bundle.scorer import BundleScorer, ScoredBatch, UnknownGroup, group_codes
+from calibration.bundle.scorer import BundleScorer, ScoredBatch, UnknownGroup
 from calibration.cli import UsageError, store_from
 from calibration.cli.console import error_console, out_console
 from calibration.cli.render import CAUTION
 from calibration.io import MAX_PROBLEMS, ScoringInput, read_header, row_label
-from calibration.io.write import atomic_output, csv_line, csv_rows, csv_text, fixed_decimals
-
-# The output columns, in order (an interface: keep the names).
-SCORE_COLUMNS = (
-    "id",
-    "group",
-    "theta",
-    "se",
-    "scale_score",
-    "scale_se",
-    "items_answered",
-    "method",
-    "person_fit_lz_star",
-    "flags",
-    "excluded_items",
-    "bundle",
-)
+from calibration.io.scores import SCORE_COLUMNS, score_rows
+from calibration.io.write import atomic_output, csv_line
 
 
 def run_score(args: argparse.Namespace) -> int:
@@ -46,6 +30,8 @@ def run_score(args: argparse.Namespace) -> int:
     ignore = [c.strip() for c in args.ignore_columns.split(",") if c.strip()]
     if args.group_column is None and scorer.default_group is None:
         raise UsageError(_missing_group_column(args.responses, bundle, scorer, args.id_column, ignore))
+    if args.engine == "dask":
+        return _run_on_dask(args, bundle, ignore)
     opened = ScoringInput(
         args.responses,
         item_categories=scorer.item_categories,
@@ -75,6 +61,46 @@ def run_score(args: argparse.Namespace) -> int:
     for note in opened.notes:
         error_console().print(f"note: {note}", highlight=False)
     summary.print(bundle, args.out, scorer.bundle.scoring.reporting_scale.decimals)
+    return 0
+
+
+def _run_on_dask(args: argparse.Namespace, bundle: Bundle, ignore: list[str]) -> int:
+    """``equitheta score --engine dask``: the file's partitions scored on a cluster (see calibration.distributed)."""
+    try:
+        from calibration.distributed.scoring import score_file_on_dask
+    except ImportError as exc:
+        raise UsageError(
+            f"--engine dask needs Dask ({exc.name} is not installed): pip install 'equitheta[dask]'"
+        ) from exc
+    import time
+
+    console = error_console()
+    start = time.perf_counter()
+
+    def progress(done: int, total: int) -> None:
+        console.print(f"[{time.perf_counter() - start:8.1f} s] partition {done} of {total} scored", highlight=False)
+
+    where = args.scheduler or f"a local cluster of {args.dask_workers} worker processes"
+    console.print(f"scoring {args.responses.name} on {where}", highlight=False)
+    result = score_file_on_dask(
+        args.responses,
+        bundle,
+        args.out,
+        scheduler=args.scheduler,
+        n_workers=args.dask_workers,
+        progress=progress,
+        id_column=args.id_column,
+        group_column=args.group_column,
+        ignore_columns=tuple(ignore),
+        method=args.method,
+        unknown_to_reference=args.unknown_group == "reference",
+    )
+    for note in result.notes:
+        console.print(f"note: {note}", highlight=False)
+    summary = ScoreSummary()
+    summary.add_arrays(result.theta, result.se, result.scale, result.flags, result.method, result.n_rows)
+    summary.print(bundle, args.out, bundle.scoring.reporting_scale.decimals)
+    out_console().print(f"  {result.n_partitions} partition(s) on Dask", highlight=False)
     return 0
 
 
@@ -108,45 +134,6 @@ def _unknown_group_message(
     )
 
 
-def score_rows(scorer: BundleScorer, ids: Any, groups: tuple[str, ...], result: ScoredBatch) -> bytes:
-    """The scored rows as CSV lines in SCORE_COLUMNS order (the column names are an interface: keep them).
-
-    Theta, SE and person fit with 6 decimals; reporting-scale columns with the bundle's decimals (the
-    SE with one more); empty where there is no value.
-    """
-    import pyarrow as pa
-    import pyarrow.compute as pc
-
-    n = len(ids)
-    decimals = scorer.bundle.scoring.reporting_scale.decimals
-    names, which = group_codes(groups)
-    positions = pa.array(which)
-    excluded = [";".join(item for item, _ in scorer.excluded_for(g)) for g in names]
-
-    def per_group(texts: list[str]) -> Any:
-        return pc.take(csv_text(pa.array(texts, type=pa.string())), positions)
-
-    def repeated(text: str) -> Any:
-        return csv_text(pa.repeat(pa.scalar(text, type=pa.string()), n))
-
-    flags = [";".join(f) for f in result.flags] if any(result.flags) else pa.repeat(pa.scalar("", type=pa.string()), n)
-    columns = [
-        csv_text(ids),
-        per_group(names),
-        fixed_decimals(result.theta, 6),
-        fixed_decimals(result.se, 6),
-        fixed_decimals(result.scale_score, decimals),
-        fixed_decimals(result.scale_se, decimals + 1),
-        pc.cast(pa.array(result.n_answered), pa.string()),
-        repeated(result.method),
-        fixed_decimals(result.person_fit, 6),
-        csv_text(flags),
-        per_group(excluded),
-        repeated(scorer.bundle.label),
-    ]
-    return csv_rows(columns)
-
-
 class ScoreSummary:
     """Running figures of a scored file for the closing summary (a few floats per respondent)."""
 
@@ -167,6 +154,17 @@ class ScoreSummary:
         self.flags.update(f for flags in result.flags for f in flags)
         self.method = result.method
         self.n_rows += len(result.theta)
+
+    def add_arrays(  # noqa: PLR0913 - the figures a distributed run gathers
+        self, theta: np.ndarray, se: np.ndarray, scale: np.ndarray, flags: Counter[str], method: str, n_rows: int
+    ) -> None:
+        """Take in the figures of a whole run scored elsewhere (finite values only, as :meth:`add` keeps)."""
+        self.theta.append(theta)
+        self.se.append(se)
+        self.scale.append(scale)
+        self.flags.update(flags)
+        self.method = method
+        self.n_rows += n_rows
 
     def print(self, bundle: Bundle, path: Path, decimals: int) -> None:
         """The summary lines: count, theta mean and SD, median SE, scale mean, flags, the caution."""

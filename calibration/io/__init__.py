@@ -18,13 +18,22 @@ from calibration.io.responses import (
     read_responses,
 )
 from calibration.io.specs import read_item_spec, read_policy_overrides
-from calibration.io.tables import MAX_PROBLEMS, TextTable, parse_codes, read_header, row_label
+from calibration.io.tables import (
+    MAX_PROBLEMS,
+    Partition,
+    TextTable,
+    parse_codes,
+    plan_partitions,
+    read_header,
+    row_label,
+)
 from calibration.io.write import current_umask, finite_or_none, write_csv_atomic
 
 __all__ = [
     "MAX_PROBLEMS",
     "InputError",
     "ItemSpec",
+    "Partition",
     "ResponseData",
     "ScoringBatch",
     "ScoringInput",
@@ -33,6 +42,7 @@ __all__ = [
     "file_sha256",
     "finite_or_none",
     "parse_codes",
+    "plan_partitions",
     "read_for_scoring",
     "read_header",
     "read_item_spec",

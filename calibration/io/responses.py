@@ -18,6 +18,7 @@ if TYPE_CHECKING:
 from calibration.io.tables import (
     MAX_PROBLEMS,
     CodesNotTyped,
+    Partition,
     TextTable,
     as_text,
     check_required_columns,
@@ -269,9 +270,11 @@ class ScoringInput:
         ignore_columns: Sequence[str] = (),
         batch_rows: int = SCORING_BATCH_ROWS,
         cohort_column: str | None = None,
+        partition: Partition | None = None,
     ) -> None:
         self.path = Path(path)
-        self.source = self.path.name
+        self.partition = partition
+        self.source = self.path.name if partition is None else partition.describe(self.path)
         columns = read_header(self.path)
         check_required_columns(self.path, columns, id_column, group_column)
         if cohort_column is not None and cohort_column not in columns:
@@ -297,7 +300,8 @@ class ScoringInput:
         self.notes = [f"bundle items with no column, scored as not administered: {', '.join(absent)}"] if absent else []
         self.id_column, self.group_column, self.batch_rows = id_column, group_column, batch_rows
         self.cohort_column = cohort_column
-        self.header_lines = 0 if self.path.suffix.lower() in (".parquet", ".pq") else 1
+        text = self.path.suffix.lower() not in (".parquet", ".pq")
+        self.header_lines = 1 if text and partition is None else 0  # a CSV partition counts rows, not lines
 
     def batches(self) -> Iterator[ScoringBatch]:
         """Valid batches in file order; one InputError at the end if any row has a problem.
@@ -308,17 +312,20 @@ class ScoringInput:
         """
         labels = [c for c in (self.group_column, self.cohort_column) if c]
         needed = [self.id_column, *labels, *self.present]
-        typed = self.header_lines == 1
+        typed = self.path.suffix.lower() not in (".parquet", ".pq")
+        part = self.partition
         yielded = 0
         if typed:
             try:
-                for batch in self._batches(iter_tables(self.path, self.batch_rows, codes=self.present, include=needed)):
+                tables = iter_tables(self.path, self.batch_rows, codes=self.present, include=needed, partition=part)
+                for batch in self._batches(tables):
                     yield batch
                     yielded += len(batch.ids)
                 return
             except CodesNotTyped:
                 pass
-        yield from self._batches(iter_tables(self.path, self.batch_rows, include=needed), skip=yielded, exact=True)
+        tables = iter_tables(self.path, self.batch_rows, include=needed, partition=part)
+        yield from self._batches(tables, skip=yielded, exact=True)
 
     def _batches(self, tables: Iterator[TextTable], *, skip: int = 0, exact: bool = False) -> Iterator[ScoringBatch]:
         """The batches of ``tables`` after the first ``skip`` rows; problems end in one InputError (``exact``)
@@ -355,7 +362,7 @@ class ScoringInput:
                 responses,
                 None if cohorts is None else cohorts[start:],
             )
-        if n_rows == 0:
+        if n_rows == 0 and self.partition is None:
             raise InputError(self.source, ["the file has a header but no respondents"])
         import pyarrow as pa
 

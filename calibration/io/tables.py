@@ -168,19 +168,114 @@ def read_table(path: Path) -> TextTable:
     return TextTable(names, dict(zip(names, table.columns, strict=True)), table.num_rows, 1)
 
 
+@dataclass(frozen=True)
+class Partition:
+    """The slice of a response file that one task of a distributed job reads.
+
+    CSV: the bytes ``start .. stop`` of the file (whole lines after the header; the header is read
+    again for each part). Parquet: the row groups ``start .. stop``, whose first row is ``first_row``
+    of the file. ``index`` counts from 0 of ``count`` partitions.
+    """
+
+    index: int
+    count: int
+    start: int
+    stop: int
+    first_row: int = 0
+
+    def describe(self, path: Path) -> str:
+        """How messages name the partition: the file, its place, and the bytes or row groups it holds."""
+        what = (
+            f"row groups {self.start}-{self.stop - 1}"
+            if _is_parquet(path)
+            else f"bytes {self.start}-{self.stop - 1}; rows counted from the partition's start"
+        )
+        return f"{path.name}, partition {self.index + 1} of {self.count} ({what})"
+
+
+PARTITION_BYTES = 64 << 20
+"""CSV text per partition of a distributed job (about 1.5 million rows of 40 items)."""
+PARTITION_ROWS = 1_000_000
+"""Parquet rows per partition of a distributed job (whole row groups; at least one per partition)."""
+
+
+def plan_partitions(
+    path: Path, *, partition_bytes: int = PARTITION_BYTES, partition_rows: int = PARTITION_ROWS
+) -> list[Partition]:
+    """Split a response file into partitions of whole lines (CSV) or whole row groups (Parquet).
+
+    CSV boundaries are found by seeking to each multiple of ``partition_bytes`` and moving on to the
+    next line break, so a quoted cell that holds a line break must not straddle one (response files
+    have none). Only the file's metadata (Parquet) or a few bytes per boundary (CSV) are read.
+    """
+    check_file(path)
+    if _is_parquet(path):
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        try:
+            meta = pq.ParquetFile(path).metadata
+        except (pa.ArrowInvalid, OSError) as exc:
+            raise InputError(path.name, [f"cannot be read as Parquet: {exc}"]) from exc
+        sizes = [meta.row_group(g).num_rows for g in range(meta.num_row_groups)]
+        starts, rows = [0], 0
+        for g, n in enumerate(sizes):
+            rows += n
+            if rows >= partition_rows and g + 1 < len(sizes):
+                starts.append(g + 1)
+                rows = 0
+        offsets = np.cumsum([0, *sizes])
+        bounds = [*starts, len(sizes)]
+        return [
+            Partition(i, len(starts), bounds[i], bounds[i + 1], int(offsets[bounds[i]])) for i in range(len(starts))
+        ]
+    size = path.stat().st_size
+    with path.open("rb") as handle:
+        handle.readline()
+        body = handle.tell()
+        cuts = [body]
+        position = body + partition_bytes
+        while position < size:
+            handle.seek(position)
+            handle.readline()  # on to the end of the line the cut falls in
+            cut = handle.tell()
+            if cut >= size:
+                break
+            if cut > cuts[-1]:
+                cuts.append(cut)
+            position = cut + partition_bytes
+    bounds = [*cuts, size]
+    return [Partition(i, len(cuts), bounds[i], bounds[i + 1]) for i in range(len(cuts))]
+
+
+def _partition_bytes(path: Path, partition: Partition) -> bytes:
+    """The header line and the partition's lines of a CSV file."""
+    with path.open("rb") as handle:
+        header = handle.readline()
+        handle.seek(partition.start)
+        return header + handle.read(partition.stop - partition.start)
+
+
 def iter_tables(
-    path: Path, batch_rows: int, *, codes: Sequence[str] = (), include: Sequence[str] | None = None
+    path: Path,
+    batch_rows: int,
+    *,
+    codes: Sequence[str] = (),
+    include: Sequence[str] | None = None,
+    partition: Partition | None = None,
 ) -> Iterator[TextTable]:
     """Read a CSV or Parquet file in batches of about ``batch_rows`` rows (memory flat in the file's length).
 
     ``include`` limits the columns read. CSV ``codes`` columns are read as small integers; if any
     cell of them is not one, :class:`CodesNotTyped` is raised and the caller reads the file again
-    as text (which names the bad cells). Parquet columns keep their stored types.
+    as text (which names the bad cells). Parquet columns keep their stored types. With ``partition``
+    only that slice is read: a Parquet partition's rows keep their numbers in the file, a CSV
+    partition's are counted from its start (its tables have no header line to count).
     """
     check_file(path)
     import pyarrow as pa
 
-    first_row = 0
+    first_row = 0 if partition is None else partition.first_row
     if _is_parquet(path):
         import pyarrow.parquet as pq
 
@@ -188,21 +283,27 @@ def iter_tables(
             parquet = pq.ParquetFile(path)
             stored = {str(n).strip(): str(n) for n in parquet.schema_arrow.names}  # names as stored (untrimmed)
             columns = [stored[c] for c in include] if include else None
-            batches = parquet.iter_batches(batch_size=batch_rows, columns=columns)
+            groups = None if partition is None else list(range(partition.start, partition.stop))
+            batches = parquet.iter_batches(batch_size=batch_rows, columns=columns, row_groups=groups)
             for batch in batches:
                 yield _parquet_table(batch, first_row)
                 first_row += batch.num_rows
         except (pa.ArrowInvalid, OSError) as exc:
             raise InputError(path.name, [f"cannot be read as Parquet: {exc}"]) from exc
         return
+    import io
+
     import pyarrow.csv as pa_csv
 
     names, parse, convert = _csv_options(path, codes=codes, include=include)
     read = pa_csv.ReadOptions(block_size=_block_bytes(path, batch_rows))
+    source: Any = path if partition is None else io.BytesIO(_partition_bytes(path, partition))
+    header_lines = 1 if partition is None else 0
     try:
-        reader = pa_csv.open_csv(path, read_options=read, parse_options=parse, convert_options=convert)
+        reader = pa_csv.open_csv(source, read_options=read, parse_options=parse, convert_options=convert)
         for batch in reader:
-            yield TextTable(names, dict(zip(names, batch.columns, strict=True)), batch.num_rows, 1, first_row)
+            columns = dict(zip(names, batch.columns, strict=True))
+            yield TextTable(names, columns, batch.num_rows, header_lines, first_row)
             first_row += batch.num_rows
     except (pa.ArrowInvalid, UnicodeDecodeError, OSError) as exc:
         if codes:

@@ -1,0 +1,152 @@
+"""Scoring on Dask (a real dask.distributed LocalCluster of 2 worker processes) against in-process scoring.
+
+The outside reference is the in-process `equitheta score` of the same file (itself checked against
+quadrature elsewhere): the CSV output must be byte-identical, the Parquet output equal to the printed
+digits. Bad cells and repeated ids are named by file, partition and row; a worker killed mid-job leaves
+Dask to rerun its tasks and the output complete.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+distributed = pytest.importorskip("distributed")
+
+from calibration.bundle import DirectoryStore  # noqa: E402
+from calibration.cli import main  # noqa: E402
+from calibration.distributed.scoring import score_file_on_dask  # noqa: E402
+from calibration.errors import InputError  # noqa: E402
+from tests.helpers import example_bundle  # noqa: E402
+
+ITEMS = [f"T{j}" for j in range(1, 7)]
+
+
+def responses(n: int, seed: int) -> pd.DataFrame:
+    rng = np.random.default_rng(seed)
+    answers = rng.integers(0, 2, size=(n, 6)).astype(float)
+    answers[rng.random(answers.shape) < 0.1] = np.nan
+    frame = pd.DataFrame(answers, columns=ITEMS).astype("Int64")
+    frame.insert(0, "mode", np.where(rng.random(n) < 0.5, "paper", "tablet"))
+    frame.insert(0, "id", [f"r{i:06d}" for i in range(n)])
+    return frame
+
+
+@pytest.fixture(scope="module")
+def cluster() -> Iterator[str]:
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as local:
+        yield local.scheduler_address
+
+
+@pytest.fixture
+def store(tmp_path: Path) -> Path:
+    path = tmp_path / "store"
+    DirectoryStore(path).put_version(example_bundle())
+    return path
+
+
+def in_process(path: Path, store: Path, out: Path) -> pd.DataFrame:
+    args = ["score", str(path), "--bundle", "pantry-checkout", "--store", str(store), "--group-column", "mode"]
+    assert main([*args, "--out", str(out)]) == 0
+    return pd.read_csv(out, keep_default_na=False)
+
+
+def test_csv_partitions_score_byte_for_byte_as_in_process(tmp_path: Path, store: Path, cluster: str) -> None:
+    data = tmp_path / "answers.csv"
+    responses(6000, 1).to_csv(data, index=False)
+    in_process(data, store, tmp_path / "local.csv")
+    bundle = DirectoryStore(store).get("pantry-checkout", 1)
+    seen = []
+    result = score_file_on_dask(
+        data,
+        bundle,
+        tmp_path / "dask.csv",
+        scheduler=cluster,
+        partition_bytes=20_000,
+        progress=lambda done, total: seen.append((done, total)),
+        group_column="mode",
+    )
+    assert result.n_partitions >= 5 and seen[-1] == (result.n_partitions, result.n_partitions)
+    assert (tmp_path / "dask.csv").read_bytes() == (tmp_path / "local.csv").read_bytes()
+    assert result.n_rows == 6000
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no parts left behind
+
+
+def test_parquet_row_groups_score_as_in_process(tmp_path: Path, store: Path, cluster: str) -> None:
+    data = tmp_path / "answers.parquet"
+    responses(5000, 2).to_parquet(data, index=False, row_group_size=700)
+    local = in_process(data, store, tmp_path / "local.csv")
+    bundle = DirectoryStore(store).get("pantry-checkout", 1)
+    result = score_file_on_dask(
+        data, bundle, tmp_path / "scores", scheduler=cluster, partition_rows=1500, group_column="mode"
+    )
+    assert result.n_partitions == 3  # 8 row groups of 700 (the last 100) gathered to at least 1,500 rows
+    parts = sorted((tmp_path / "scores").glob("part-*.parquet"))
+    assert len(parts) == 3
+    scored = pd.concat([pd.read_parquet(p) for p in parts], ignore_index=True)
+    assert list(scored["id"]) == list(local["id"])
+    np.testing.assert_allclose(scored["theta"], local["theta"], atol=5e-7)  # the CSV prints 6 decimals
+    np.testing.assert_allclose(scored["se"], local["se"], atol=5e-7)
+    assert list(scored["excluded_items"].fillna("")) == list(local["excluded_items"])
+    assert (scored["items_answered"] == local["items_answered"]).all()
+
+
+def test_bad_cells_and_repeated_ids_are_named_by_partition_and_row(tmp_path: Path, store: Path, cluster: str) -> None:
+    frame = responses(3000, 3)
+    frame["T2"] = frame["T2"].astype(object)
+    frame.loc[2500, "T2"] = "x"
+    frame.loc[2600, "T4"] = 7
+    data = tmp_path / "bad.csv"
+    frame.to_csv(data, index=False)
+    bundle = DirectoryStore(store).get("pantry-checkout", 1)
+    out = tmp_path / "never.csv"
+    with pytest.raises(InputError) as err:
+        score_file_on_dask(data, bundle, out, scheduler=cluster, partition_bytes=15_000, group_column="mode")
+    text = str(err.value)
+    assert "bad.csv, partition" in text and "column 'T2'" in text and "column 'T4'" in text
+    assert "rows counted from the partition's start" in text
+    assert not out.exists() and not [p for p in tmp_path.iterdir() if p.name.startswith(".")]
+
+    repeated = responses(3000, 4)
+    repeated.loc[2900, "id"] = repeated.loc[10, "id"]
+    data = tmp_path / "twice.csv"
+    repeated.to_csv(data, index=False)
+    with pytest.raises(InputError, match=r"id 'r000010' appears 2 times: twice.csv, partition 1 of \d+ .*row 11"):
+        score_file_on_dask(data, bundle, out, scheduler=cluster, partition_bytes=15_000, group_column="mode")
+    assert not out.exists()
+
+
+def test_a_killed_worker_leaves_a_complete_output(tmp_path: Path, store: Path) -> None:
+    # A worker process is killed (SIGKILL) while the job runs; its nanny starts a new one and the
+    # scheduler runs the lost tasks again. Every id appears exactly once in the output.
+    data = tmp_path / "answers.csv"
+    responses(60_000, 5).to_csv(data, index=False)
+    bundle = DirectoryStore(store).get("pantry-checkout", 1)
+    killed = []
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as local:
+        pids = [nanny.process.process.pid for nanny in local.workers.values()]
+
+        def kill_one(done: int, total: int) -> None:
+            if done == 2 and not killed:
+                os.kill(pids[0], signal.SIGKILL)
+                killed.append(pids[0])
+
+        result = score_file_on_dask(
+            data,
+            bundle,
+            tmp_path / "scores",
+            scheduler=local.scheduler_address,
+            partition_bytes=40_000,
+            progress=kill_one,
+            group_column="mode",
+        )
+    assert killed and result.n_partitions > 10
+    scored = pd.concat([pd.read_parquet(p) for p in sorted((tmp_path / "scores").glob("part-*.parquet"))])
+    assert len(scored) == 60_000 and scored["id"].is_unique
+    assert set(scored["id"]) == {f"r{i:06d}" for i in range(60_000)}
