@@ -261,7 +261,7 @@ def _latent_index(latent: LatentSpec, n_item_free: int, g: int) -> IntArray:
     return np.array([mean_at, sd_at], dtype=np.int64)
 
 
-def _prior_hessian(
+def add_prior_information(
     information: FloatArray, tables: FloatArray, layout: GroupLayout, prior: SlopePrior | None, template: ItemParameters
 ) -> None:
     """Subtract the priors' second derivatives (in place, on minus the Hessian): the slope prior's at each
@@ -276,7 +276,7 @@ def _prior_hessian(
         np.add.at(information, (at, at), -GUESSING_PRIOR.second_derivative(tables[..., GUESSING_SLOT][owned]))
 
 
-def observed_information(
+def observed_information(  # noqa: PLR0913 - the fit, its data and keyword-only options
     tables: FloatArray,
     template: ItemParameters,
     groups: Sequence[GroupData],
@@ -284,8 +284,13 @@ def observed_information(
     latent: LatentSpec,
     layout: GroupLayout,
     prior: SlopePrior | None,
+    *,
+    with_priors: bool = True,
 ) -> FloatArray:
     """Minus the Hessian of the (penalised) marginal log-likelihood over the calibration's free parameters.
+
+    ``with_priors=False`` leaves out every prior (the slope prior and the 3PL asymptote prior): a sum
+    over some of the respondents, to which the caller adds the priors once.
 
     The vector's order is that of the estimator: the layout's free item slots, then the free
     latent means, then the free latent SDs. ``latent`` holds the fitted means and SDs.
@@ -300,7 +305,8 @@ def observed_information(
         local = _group_hessian(params, data, points, float(latent.mean[g]), float(latent.sd[g]))
         index = np.concatenate([layout.index[g].reshape(-1), _latent_index(latent, n_item_free, g)])
         _scatter(information, -local, index)
-    _prior_hessian(information, tables, layout, prior, template)
+    if with_priors:
+        add_prior_information(information, tables, layout, prior, template)
     return information
 
 

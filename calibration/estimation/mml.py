@@ -15,15 +15,14 @@ import numpy as np
 from calibration.estimation.estep import (
     ExpectedCounts,
     HeldLikelihood,
-    expected_counts,
     held_item_counts,
     prepare_groups,
 )
 from calibration.estimation.information import (
     HeldTerms,
+    add_prior_information,
     held_item_terms,
     information_to_covariance,
-    observed_information,
 )
 from calibration.estimation.latent import LatentSpec, latent_update
 from calibration.estimation.layout import GroupLayout, params_from_table, slot_table, valid_tables
@@ -31,6 +30,7 @@ from calibration.estimation.mstep import STEP_HALVINGS, m_step
 from calibration.estimation.optimizer import run_em
 from calibration.estimation.results import CalibrationFit, MultiGroupFit
 from calibration.estimation.settings import EMSettings
+from calibration.estimation.sources import GroupSource, LocalGroups
 from calibration.estimation.start import starting_values
 from calibration.irt.likelihood import (
     checked_responses,
@@ -57,6 +57,7 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
     latent: LatentSpec | None = None,
     progress: Callable[[int, float], None] | None = None,
     warn: bool = True,
+    source: GroupSource | None = None,
 ) -> MultiGroupFit:
     """Multiple-group marginal ML (Bock & Zimowski 1997) by EM over a fixed quadrature grid.
 
@@ -70,6 +71,8 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
     start : slot tables (n_groups, n_items, k_max); default from classical statistics
     latent : latent means/SDs and which are estimated (default: reference N(0,1), others free)
     warn : False leaves non-convergence to the caller (``converged`` in the result) instead of warning
+    source : where the sums over respondents come from (default: ``responses``, prepared in this process);
+        with a source held elsewhere ``responses`` may be an empty (0, n_items) table and ``start`` is needed
     """
     settings = settings or EMSettings()
     k = np.asarray(n_categories, dtype=np.int64)
@@ -78,7 +81,9 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
     if gi.shape != (x.shape[0],) or gi.min(initial=0) < 0 or gi.max(initial=0) >= n_groups:
         raise ValueError(f"group_index must hold one group 0..{n_groups - 1} per response row")
     models = models or tuple("2pl" if kk == 2 else "grm" for kk in k)
-    template = starting_values(x, k, models)
+    if source is not None and start is None:
+        raise ValueError("a calibration over a distributed source needs its starting tables")
+    template = starting_values(x, k, models) if start is None else _template(k, models)
     if start is None:
         tables = np.broadcast_to(slot_table(template), (n_groups,) + slot_table(template).shape).copy()
     else:
@@ -97,7 +102,8 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
             held[:, held_guessing, GUESSING_SLOT] = True
             fixed = held
     layout = GroupLayout.build(template, n_groups, group_free=group_free, fixed=fixed)
-    groups = prepare_groups(x, k, gi, n_groups, compress=settings.compress_patterns)
+    if source is None:
+        source = LocalGroups(prepare_groups(x, k, gi, n_groups, compress=settings.compress_patterns))
     points = settings.quadrature.points
     prior = settings.slope_prior
     n_item_free = layout.n_free
@@ -117,16 +123,11 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
         tabs, mean, sd = unpack(vec)
         if not valid_tables(tabs, template).all() or np.any(sd <= 0) or not np.all(np.isfinite(mean)):
             raise ValueError("invalid parameters")
-        results = [
-            expected_counts(
-                params_from_table(tabs[g], template),
-                data.design,
-                points,
-                normal_log_weights(points, mean[g], sd[g]),
-                data.weights,
-            )
-            for g, data in enumerate(groups)
-        ]
+        results = source.expected(
+            [params_from_table(tabs[g], template) for g in range(n_groups)],
+            points,
+            [normal_log_weights(points, mean[g], sd[g]) for g in range(n_groups)],
+        )
         return tabs, mean, sd, np.stack([r.counts for r in results]), results
 
     def em_map(vec: FloatArray) -> tuple[FloatArray, float]:
@@ -155,7 +156,8 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
     sd_se = np.full(n_groups, np.nan)
     if settings.standard_errors and vec.size > 0:
         fitted = LatentSpec(mean, sd, latent.free_mean, latent.free_sd)
-        information = observed_information(tabs, template, groups, points, fitted, layout, prior)
+        information = source.information(tabs, template, points, fitted, layout)
+        add_prior_information(information, tabs, layout, prior, template)
         covariance = information_to_covariance(information)
         if covariance is not None:
             se = np.sqrt(np.clip(np.diag(covariance), 0.0, None))
@@ -175,7 +177,7 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
         log_likelihood=float(group_ll.sum()),
         group_log_likelihood=group_ll,
         n_parameters=int(vec.size),
-        n_persons=int(sum(d.n_persons for d in groups)),
+        n_persons=int(source.n_persons),
         converged=converged,
         n_iter=n_iter,
         covariance=covariance,
@@ -184,6 +186,15 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
         settings=settings,
         history=history,
     )
+
+
+def _template(k: IntArray, models: tuple[str, ...]) -> ItemParameters:
+    """A placeholder test of the right shape (categories, models) for starting tables given by the caller."""
+    intercepts = np.full((k.size, int(k.max()) - 1), np.nan)
+    for j, kj in enumerate(k):
+        intercepts[j, : kj - 1] = -np.arange(kj - 1, dtype=np.float64)
+    guessing = np.array([0.2 if m == "3pl" else 0.0 for m in models])
+    return ItemParameters(np.ones(k.size), intercepts, k, models=models, guessing=guessing)
 
 
 def calibrate_single_group(

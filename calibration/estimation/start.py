@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -28,9 +29,15 @@ def starting_values(responses: FloatArray, n_categories: IntArray, models: tuple
     x = np.asarray(responses, dtype=np.float64)
     n_items = x.shape[1]
     k = np.asarray(n_categories, dtype=np.int64)
+    counts = _category_counts(x, k)
     if n_items > 1 and x.shape[0] > 2 and not np.isnan(x).any():
-        return _for_models(_complete_data_values(x, k, _cumulative(models)), x, models)
-    return _for_models(_incomplete_data_values(x, k, _cumulative(models)), x, models)
+        return _for_models(_complete_data_values(x, k, _cumulative(models)), counts, models)
+    return _for_models(_incomplete_data_values(x, k, _cumulative(models)), counts, models)
+
+
+def _category_counts(x: FloatArray, k: IntArray) -> FloatArray:
+    """(n_items, max categories): how often each category was answered (only partial-credit starts need it)."""
+    return np.array([[np.sum(x[:, j] == c) for c in range(int(k.max()))] for j in range(x.shape[1])], dtype=np.float64)
 
 
 START_GUESSING = 0.2
@@ -42,7 +49,7 @@ def _cumulative(models: tuple[str, ...]) -> tuple[str, ...]:
     return tuple(MODEL_2PL if m == MODEL_3PL else (MODEL_GRM if m in ADJACENT_MODELS else m) for m in models)
 
 
-def _for_models(start: ItemParameters, x: FloatArray, models: tuple[str, ...]) -> ItemParameters:
+def _for_models(start: ItemParameters, category_counts: FloatArray, models: tuple[str, ...]) -> ItemParameters:
     """The cumulative start turned into each item's own model.
 
     A 3PL item starts at the asymptote 0.2 with the intercept of its proportion correct above
@@ -62,9 +69,7 @@ def _for_models(start: ItemParameters, x: FloatArray, models: tuple[str, ...]) -
             guessing[j] = START_GUESSING
         elif model in ADJACENT_MODELS:
             k_j = int(start.n_categories[j])
-            column = x[:, j]
-            counts = np.array([np.sum(column == c) for c in range(k_j)], dtype=np.float64)
-            counts = np.maximum(counts, 0.5)
+            counts = np.maximum(category_counts[j, :k_j], 0.5)
             intercepts[j, : k_j - 1] = np.log(counts[1:] / counts[:-1])
     return ItemParameters(
         slopes=start.slopes, intercepts=intercepts, n_categories=start.n_categories, models=models, guessing=guessing
@@ -140,3 +145,80 @@ def _intercepts(p: FloatArray, slope: float) -> FloatArray:
     for m in range(1, c_k.size):
         c_k[m] = min(c_k[m], c_k[m - 1] - 0.05)
     return c_k
+
+
+@dataclass(frozen=True)
+class StartStatistics:
+    """The sums behind the starting values, additive over blocks of rows (the partitions of a distributed job).
+
+    Both of :func:`starting_values`' routes are sums over rows: the complete-data one needs the scaled
+    items' sums and cross-products, the one for tables with missing answers each item's sums of its
+    score and rest score (and their squares and product) over the rows where it and another item were
+    answered; both need the counts of each category. :meth:`values` applies the same formulas to the
+    merged sums (the cross-products uncentred, so the start may differ from the in-process one by
+    rounding).
+    """
+
+    n_rows: int
+    any_missing: bool
+    total: FloatArray  # (J,) sum of x / (K - 1)
+    cross: FloatArray  # (J, J) sum of their products
+    counts: FloatArray  # (J, K max) answers per category
+    pairs: FloatArray  # (6, J): n, sum item, sum rest, sum item^2, sum rest^2, sum item * rest
+
+    @classmethod
+    def of(cls, responses: FloatArray, n_categories: IntArray) -> StartStatistics:
+        """The sums of one block of rows."""
+        x = np.asarray(responses, dtype=np.float64)
+        k = np.asarray(n_categories, dtype=np.int64)
+        answered = ~np.isnan(x)
+        scaled = np.where(answered, x, 0.0) / (k - 1)
+        row_total = scaled.sum(axis=1)
+        row_count = answered.sum(axis=1)
+        ok = answered & (row_count > 1)[:, None]
+        rest = np.where(ok, (row_total[:, None] - scaled) / np.maximum(row_count - 1, 1)[:, None], 0.0)
+        item = np.where(ok, scaled, 0.0)
+        pairs = np.stack(
+            [ok.sum(axis=0), item.sum(0), rest.sum(0), (item * item).sum(0), (rest * rest).sum(0), (item * rest).sum(0)]
+        ).astype(np.float64)
+        return cls(x.shape[0], bool((~answered).any()), scaled.sum(0), scaled.T @ scaled, _category_counts(x, k), pairs)
+
+    def merge(self, other: StartStatistics) -> StartStatistics:
+        """The sums of both blocks."""
+        return StartStatistics(
+            self.n_rows + other.n_rows,
+            self.any_missing or other.any_missing,
+            self.total + other.total,
+            self.cross + other.cross,
+            self.counts + other.counts,
+            self.pairs + other.pairs,
+        )
+
+    def values(self, n_categories: IntArray, models: tuple[str, ...]) -> ItemParameters:
+        """The starting values of :func:`starting_values`, from the sums."""
+        k = np.asarray(n_categories, dtype=np.int64)
+        n_items = k.size
+        if n_items > 1 and self.n_rows > 2 and not self.any_missing:
+            means = self.total / self.n_rows
+            covariance = self.cross - self.n_rows * np.outer(means, means)
+            with_item = covariance.sum(axis=1)
+            item_var = np.diag(covariance)
+            cov_rest = with_item - item_var
+            rest_var = covariance.sum() - 2.0 * with_item + item_var
+            defined = (item_var > 0) & (rest_var > 0)
+            r = np.where(defined, cov_rest / np.sqrt(np.where(defined, item_var * rest_var, 1.0)), 0.5)
+            answered = np.full(n_items, float(self.n_rows))
+        else:
+            n, s_i, s_r, s_ii, s_rr, s_ir = self.pairs
+            var_i, var_r = n * s_ii - s_i**2, n * s_rr - s_r**2
+            defined = (n > 2) & (var_i > 1e-12 * n * n) & (var_r > 1e-12 * n * n)
+            r = np.where(defined, (n * s_ir - s_i * s_r) / np.sqrt(np.where(defined, var_i * var_r, 1.0)), 0.5)
+            answered = self.counts.sum(axis=1)
+        r = np.clip(r, 0.15, 0.9)
+        slopes = np.clip(1.7 * r / np.sqrt(1 - r * r), 0.3, 2.5)
+        intercepts = np.full((n_items, int(k.max()) - 1), np.nan)
+        for j in range(n_items):
+            at_least = self.counts[j, ::-1].cumsum()[::-1][1 : k[j]]  # answers of category >= 1 .. K - 1
+            intercepts[j, : k[j] - 1] = _intercepts(at_least / max(answered[j], 1.0), slopes[j])
+        start = ItemParameters(slopes=slopes, intercepts=intercepts, n_categories=k, models=_cumulative(models))
+        return _for_models(start, self.counts, models)
