@@ -57,6 +57,9 @@ def document_of(bundle: Bundle) -> dict[str, Any]:
             _drop_empty(cell, _LATER_POLICY_FIELDS)
     for row in (document.get("dif") or {}).get("irt", ()):
         _drop_empty(row, _LATER_IRT_DIF_FIELDS)
+    for group in document["quality"]["by_group"].values():
+        if not group.get("categories"):
+            group.pop("categories", None)  # added in schema 4; absent when the test has no polytomous item
     return document
 
 

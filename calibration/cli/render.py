@@ -7,7 +7,7 @@ of a rung with no freed cell, an alpha without complete rows) prints as a dash.
 from __future__ import annotations
 
 from calibration.bundle.compare import BundleDiff
-from calibration.bundle.schema import Bundle
+from calibration.bundle.schema import Bundle, CategoryFunctioning, ModalRange
 from calibration.bundle.store import AliasRecord
 from calibration.cli.console import dash, new_table, out_console
 from calibration.dif.effect_size import effect_interval
@@ -262,6 +262,8 @@ def print_bundle_details(bundle: Bundle) -> None:
                 f"{dash(dims.residual_pca_first_eigenvalue, '.2f')} ({dims.n_complete} complete rows)",
                 highlight=False,
             )
+        if quality.categories:
+            _print_categories(group if len(bundle.quality.by_group) > 1 else None, quality.categories)
     info = bundle.quality.test_information
     table = new_table(
         f"test information, reference group {bundle.metric.reference_group}",
@@ -274,6 +276,33 @@ def print_bundle_details(bundle: Bundle) -> None:
     console.print(table)
     console.print(f"  version {bundle.version}, created {bundle.created_at}, sha256 {bundle.hash}", highlight=False)
     console.print(f"  {CAUTION}", style="dim", highlight=False)
+
+
+def _modal_text(modal: ModalRange | None) -> str:
+    if modal is None:
+        return "never"
+    low = "" if modal.low is None else f"{modal.low:.2f}"
+    high = "" if modal.high is None else f"{modal.high:.2f}"
+    return f"below {high}" if not low else (f"above {low}" if not high else f"{low} to {high}")
+
+
+def _print_categories(group: str | None, categories: dict[str, CategoryFunctioning]) -> None:
+    """Category functioning: every polytomous item's categories (answers, mean theta, where most probable)."""
+    console = out_console()
+    table = new_table(
+        "category functioning" + ("" if group is None else f" in group {group}")
+        + " (answers, respondents' mean theta, theta range where the category is the most probable answer)",
+        ["item", "category", "answers", "mean theta", "most probable", "steps in order"],
+        right=("category", "answers", "mean theta"),
+    )  # fmt: skip
+    for item, check in categories.items():
+        for c, (n, mean, modal) in enumerate(zip(check.counts, check.mean_theta, check.modal, strict=True)):
+            ordered = ("yes" if check.steps_ordered else "NO") if c == 0 else ""
+            table.add_row(item if c == 0 else "", str(c), str(n), dash(mean, ".2f"), _modal_text(modal), ordered)
+    console.print(table)
+    for item, check in categories.items():
+        for flag in check.flags:
+            console.print(f"  {item}: {flag}", highlight=False)
 
 
 def _thresholds(values: list[float] | None) -> str:

@@ -4,7 +4,14 @@ from __future__ import annotations
 
 import numpy as np
 
-from calibration.bundle.schema import Dimensionality, GroupQuality, ItemQuality, SummedScoreRow
+from calibration.bundle.schema import (
+    CategoryFunctioning,
+    Dimensionality,
+    GroupQuality,
+    ItemQuality,
+    ModalRange,
+    SummedScoreRow,
+)
 from calibration.estimation import EMSettings, MultiGroupFit
 from calibration.estimation.settings import GUESSING_PRIOR
 from calibration.io import finite_or_none
@@ -15,6 +22,7 @@ from calibration.irt.scoring import NormalPrior, eap_scores
 from calibration.irt.summed_scores import summed_score_table
 from calibration.pipeline.policy import PolicyTable
 from calibration.pipeline.prepare import PreparedData
+from calibration.quality.categories import category_check
 from calibration.quality.classical import (
     ALPHA_GROUP_USE,
     ALPHA_INDIVIDUAL_DECISIONS,
@@ -118,6 +126,20 @@ def _group_quality(
     table = summed_score_table(params, grid=grid, prior=prior)
     fit_stats = item_fit(params, x, latent_mean=latent_mean, latent_sd=latent_sd)
     summary = dimensionality(params, x, eap.theta)
+    categories = {}
+    for j, item in enumerate(item_ids):
+        if params.n_categories[j] > 2:
+            check = category_check(params, j, x[:, j], eap.theta)
+            categories[item] = CategoryFunctioning(
+                counts=[int(c) for c in check.counts],
+                mean_theta=[finite_or_none(float(m)) for m in check.mean_theta],
+                modal=[
+                    None if np.isnan(lo) else ModalRange(low=finite_or_none(float(lo)), high=finite_or_none(float(hi)))
+                    for lo, hi in zip(check.modal_from, check.modal_to, strict=True)
+                ],
+                steps_ordered=check.steps_ordered,
+                flags=list(check.flags),
+            )
     dims = Dimensionality(
         eigenvalue_ratio=finite_or_none(summary.eigenvalue_ratio),
         residual_pca_first_eigenvalue=finite_or_none(summary.residual_pca_first_eigenvalue),
@@ -145,6 +167,7 @@ def _group_quality(
         ],
         items=items,
         dimensionality=dims,
+        categories=categories,
     )
 
 
@@ -174,6 +197,9 @@ def _quality_warnings(quality: GroupQuality, group: str | None) -> list[str]:
             out.append(
                 f"{where}item {item!r}: S-X2 = {q.s_x2:.1f} (df {q.s_x2_df}), p < {S_X2_MISFIT_P:g}: item misfit"
             )
+    for item, check in quality.categories.items():
+        for flag in check.flags:
+            out.append(f"{where}item {item!r}: {flag} (category functioning; review the rating guide first)")
     dims = quality.dimensionality
     if dims is not None and dims.eigenvalue_ratio is not None and dims.eigenvalue_ratio < EIGENVALUE_RATIO_MINIMUM:
         out.append(

@@ -132,7 +132,7 @@ def _s_x2(
         if acc_n > 0 and groups:
             n_last, e_last, o_last = groups.pop()
             groups.append((n_last + acc_n, e_last + acc_e, o_last + acc_o))
-        n_params = k_j  # slope + K - 1 intercepts
+        n_params = int(params.n_slots[j])  # slope + K - 1 intercepts (+ a 3PL item's asymptote)
         dof = len(groups) * (k_j - 1) - n_params
         if dof < 1:
             continue

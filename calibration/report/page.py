@@ -340,6 +340,38 @@ def _quality(bundle: Bundle) -> str:
     )
 
 
+def _categories(bundle: Bundle) -> str:
+    """Category functioning of every polytomous item in every group, flagged categories first in words."""
+    parts = []
+    for g, q in bundle.quality.by_group.items():
+        if not q.categories:
+            continue
+        rows = []
+        for item, check in q.categories.items():
+            for c, (n, mean, modal) in enumerate(zip(check.counts, check.mean_theta, check.modal, strict=True)):
+                where = "never" if modal is None else f"{_n(modal.low, '.2f')} to {_n(modal.high, '.2f')}"
+                ordered = ("yes" if check.steps_ordered else "no") if c == 0 else ""
+                rows.append((item if c == 0 else "", c, n, _n(mean, ".2f"), where, ordered))
+        flags = "".join(f"<li>{_e(item)}: {_e(f)}</li>" for item, check in q.categories.items() for f in check.flags)
+        parts.append(
+            f"<h3>{_e(g)}</h3>"
+            + _table(
+                ("item", "category", "answers", "mean theta", "most probable (theta)", "steps in order"),
+                rows,
+                numeric=(1, 2, 3),
+            )  # fmt: skip
+            + (f"<ul>{flags}</ul>" if flags else "<p class=muted>Every category works as intended.</p>")
+        )
+    if not parts:
+        return "<p class=muted>No item has more than two categories.</p>"
+    return (
+        "<p class=muted>Each category should be the most probable answer somewhere on the scale, and its "
+        "respondents' mean theta should rise with the category (common-practice checks; '-' ends run off the "
+        "grid at -6 or 6). A flagged category is a question for the authors of the rating guide, not an "
+        "automatic merge.</p>" + "".join(parts)
+    )
+
+
 def _summed_scores(bundle: Bundle) -> str:
     parts = []
     for g, q in bundle.quality.by_group.items():
@@ -406,6 +438,7 @@ def render_report(bundle: Bundle, *, aliases: dict[str, AliasRecord] | None = No
         ("flagged", "Flagged and non-shared cells, with all the evidence", _flagged(bundle, cells)),
         ("information", "Test information and SE by group", _information(bundle)),
         ("quality", "Reliability, dimensionality and item fit", _quality(bundle)),
+        ("categories", "Category functioning", _categories(bundle)),
         ("summed", "Summed-score conversion tables", _summed_scores(bundle)),
     ]
     if reviewed:

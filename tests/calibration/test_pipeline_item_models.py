@@ -89,6 +89,9 @@ def test_bundle_carries_the_models(mixed: dict) -> None:
         if item.model != "3pl":
             assert item.guessing is None
     assert items["RA01"].slope == items["RA02"].slope  # the Rasch family shares one slope
+    for quality in bundle.quality.by_group.values():  # category functioning of every polytomous item
+        assert set(quality.categories) == {i.id for i in bundle.items if i.n_categories > 2}
+        assert all(sum(c.counts) > 0 and len(c.modal) == len(c.counts) for c in quality.categories.values())
     assert "beta(alpha=5, beta=17)" in bundle.provenance.settings["guessing_prior"]
     assert bundle.provenance.settings["held_asymptotes"] == f"{HELD}=0.2"
     # The stored bytes are the canonical form and read back to the same bundle.
@@ -191,6 +194,7 @@ def test_service_scores_the_mixed_bundle(mixed: dict) -> None:
 def test_report_lists_the_asymptotes(mixed: dict) -> None:
     page = render_report(mixed["bundle"])
     assert "asymptote (SE)" in page and "0.200 held" in page and "gpcm" in page
+    assert "Category functioning" in page and "most probable (theta)" in page
 
 
 def test_earlier_schema_versions_refuse_the_new_models(mixed: dict) -> None:

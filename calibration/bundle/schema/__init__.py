@@ -33,6 +33,7 @@ from calibration.bundle.schema.document import (
 )
 from calibration.bundle.schema.evidence import (
     EFFECT_LEVEL_RULE,
+    CategoryFunctioning,
     DifReport,
     DifSettingsRecord,
     Dimensionality,
@@ -41,6 +42,7 @@ from calibration.bundle.schema.evidence import (
     IrtDifRow,
     ItemQuality,
     LadderRow,
+    ModalRange,
     ObservedDifRow,
     Quality,
     SummedScoreRow,
@@ -83,7 +85,9 @@ __all__ = [
     "Frozen",
     "GroupMetric",
     "GroupPolicy",
+    "CategoryFunctioning",
     "GroupQuality",
+    "ModalRange",
     "InformationTable",
     "IrtDifRow",
     "ItemEntry",

@@ -52,6 +52,23 @@ class Dimensionality(Frozen):
     n_complete: int = 0
 
 
+class ModalRange(Frozen):
+    """Where a category is the most probable answer; null ends run off the theta grid (-6 or 6)."""
+
+    low: float | None
+    high: float | None
+
+
+class CategoryFunctioning(Frozen):
+    """How one polytomous item's categories work in one group (see calibration.quality.categories)."""
+
+    counts: list[int] = Field(description="answers per category")
+    mean_theta: list[float | None] = Field(description="mean EAP of the respondents who answered each category")
+    modal: list[ModalRange | None] = Field(description="theta range where each category is most probable; null: never")
+    steps_ordered: bool = Field(description="thresholds (graded) or steps (partial credit) in increasing order")
+    flags: list[str] = Field(default_factory=list, description="categories to review, with a merge to consider")
+
+
 class GroupQuality(Frozen):
     """Quality of one group's scores: reliability, summed-score table, item statistics, dimensionality."""
 
@@ -62,6 +79,9 @@ class GroupQuality(Frozen):
     summed_score_table: list[SummedScoreRow]
     items: dict[str, ItemQuality] = Field(default_factory=dict)
     dimensionality: Dimensionality | None = None
+    categories: dict[str, CategoryFunctioning] = Field(
+        default_factory=dict, description="category functioning of every polytomous item (schema 4)"
+    )
 
 
 class Quality(Frozen):
