@@ -60,6 +60,9 @@ def document_of(bundle: Bundle) -> dict[str, Any]:
     for group in document["quality"]["by_group"].values():
         if not group.get("categories"):
             group.pop("categories", None)  # added in schema 4; absent when the test has no polytomous item
+        _drop_empty(group, ("alpha_interval", "omega"))
+    if not document["quality"].get("alpha_comparison"):
+        document["quality"].pop("alpha_comparison", None)
     return document
 
 

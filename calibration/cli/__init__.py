@@ -303,6 +303,39 @@ def _add_summarize(sub: argparse._SubParsersAction) -> None:
     summ.add_argument("--ignore-columns", default="", help="comma-separated columns that are not items")
 
 
+def _add_relate(sub: argparse._SubParsersAction) -> None:
+    relate = _subparser(
+        sub,
+        "relate",
+        "relate the scores to other measures by group: correlations with Fisher intervals, corrected for "
+        "unreliability, equal across groups, and whether they agree with what the construct leads you to expect",
+    )
+    relate.add_argument("responses", type=Path, help="CSV or Parquet: an id column, item columns, measure columns")
+    relate.add_argument("--bundle", required=True, help="NAME, NAME@VERSION or NAME@ALIAS")
+    relate.add_argument("--store", required=True, help="bundle store: a directory or a redis:// URL")
+    relate.add_argument(
+        "--measure", action="append", required=True, metavar="COLUMN", help="a numeric column to relate (repeat)"
+    )
+    relate.add_argument("--group-column", help="groups to report (for a bundle with groups: its groups)")
+    relate.add_argument(
+        "--reliability",
+        action="append",
+        default=[],
+        metavar="COLUMN=VALUE",
+        help="a measure's reliability (0..1], for the corrected correlation (repeat)",
+    )
+    relate.add_argument(
+        "--expect",
+        action="append",
+        default=[],
+        metavar="COLUMN:positive|negative|none",
+        help="the relation the construct leads you to expect (none: |r| under 0.3, discriminant evidence)",
+    )
+    relate.add_argument("--out", required=True, type=Path, help="CSV of the correlations; _groups.csv beside it")
+    relate.add_argument("--id-column", default="id", help="column holding the respondent ids")
+    relate.add_argument("--ignore-columns", default="", help="comma-separated columns that are not items")
+
+
 def _add_review(sub: argparse._SubParsersAction) -> None:
     review = _subparser(
         sub,
@@ -374,7 +407,16 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"equitheta {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)
-    commands = (_add_calibrate, _add_score, _add_summarize, _add_bundle, _add_review, _add_report, _add_drift)
+    commands = (
+        _add_calibrate,
+        _add_score,
+        _add_summarize,
+        _add_relate,
+        _add_bundle,
+        _add_review,
+        _add_report,
+        _add_drift,
+    )
     for add in (*commands, _add_serve, _add_demo):
         add(sub)
     return parser
@@ -418,6 +460,10 @@ def _run(args: argparse.Namespace) -> int:
             from calibration.cli.summarize import run_summarize
 
             return run_summarize(args)
+        if args.command == "relate":
+            from calibration.cli.relate import run_relate
+
+            return run_relate(args)
         if args.command == "review":
             from calibration.cli.review import run_review
 

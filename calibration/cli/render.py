@@ -262,8 +262,23 @@ def print_bundle_details(bundle: Bundle) -> None:
                 f"{dash(dims.residual_pca_first_eigenvalue, '.2f')} ({dims.n_complete} complete rows)",
                 highlight=False,
             )
+        where = "" if len(bundle.quality.by_group) == 1 else f" ({group})"
+        interval = "" if quality.alpha_interval is None else " [{:.3f}, {:.3f}]".format(*quality.alpha_interval)
+        if quality.alpha is not None:
+            console.print(
+                f"  reliability{where}: alpha {quality.alpha:.3f}{interval} (95%, Feldt), omega "
+                f"{dash(quality.omega)} (one-factor ML), marginal reliability {dash(quality.marginal_reliability)}",
+                highlight=False,
+            )
         if quality.categories:
             _print_categories(group if len(bundle.quality.by_group) > 1 else None, quality.categories)
+    for row in bundle.quality.alpha_comparison:
+        console.print(
+            f"  equal alpha, {row.group} vs {row.reference}: W = {row.w:.3f} on ({row.df[0]}, {row.df[1]}) df, "
+            f"p = {row.p_value:.3g} (Holm {row.p_holm:.3g}; Feldt's test; each group's alpha on the items it is "
+            "scored on)",
+            highlight=False,
+        )
     info = bundle.quality.test_information
     table = new_table(
         f"test information, reference group {bundle.metric.reference_group}",

@@ -245,6 +245,7 @@ class ScoringBatch:
     groups: list[str] | None
     responses: FloatArray
     cohorts: list[str] | None = None
+    texts: dict[str, list[str]] | None = None  # the other columns asked for, as trimmed text
 
 
 class ScoringInput:
@@ -271,6 +272,7 @@ class ScoringInput:
         batch_rows: int = SCORING_BATCH_ROWS,
         cohort_column: str | None = None,
         partition: Partition | None = None,
+        text_columns: Sequence[str] = (),
     ) -> None:
         self.path = Path(path)
         self.partition = partition
@@ -281,7 +283,11 @@ class ScoringInput:
             raise InputError(
                 self.source, [f"no cohort column {cohort_column!r}; the columns are: {', '.join(columns)}"]
             )
-        reserved = {id_column, *ignore_columns} | {c for c in (group_column, cohort_column) if c}
+        missing = [c for c in text_columns if c not in columns]
+        if missing:
+            raise InputError(self.source, [f"no column {c!r}; the columns are: {', '.join(columns)}" for c in missing])
+        self.text_columns = list(text_columns)
+        reserved = {id_column, *ignore_columns, *text_columns} | {c for c in (group_column, cohort_column) if c}
         unknown = [c for c in columns if c not in reserved and c not in item_categories]
         problems = [
             f"column {c!r} is not an item of the bundle (known items: {', '.join(list(item_categories)[:8])}"
@@ -311,7 +317,7 @@ class ScoringInput:
         names every bad cell. Rows already yielded are not yielded again.
         """
         labels = [c for c in (self.group_column, self.cohort_column) if c]
-        needed = [self.id_column, *labels, *self.present]
+        needed = [self.id_column, *labels, *self.text_columns, *self.present]
         typed = self.path.suffix.lower() not in (".parquet", ".pq")
         part = self.partition
         yielded = 0
@@ -355,12 +361,14 @@ class ScoringInput:
             start = max(0, skip - table.first_row)
             responses = np.full((table.n_rows - start, len(self.item_ids)), np.nan)
             responses[:, self.positions] = parsed[start:]
+            texts = {c: table.text(c)[start:] for c in self.text_columns} if self.text_columns else None
             yield ScoringBatch(
                 table.first_row + start,
                 ids.slice(start),
                 None if groups is None else groups[start:],
                 responses,
                 None if cohorts is None else cohorts[start:],
+                texts,
             )
         if n_rows == 0 and self.partition is None:
             raise InputError(self.source, ["the file has a header but no respondents"])

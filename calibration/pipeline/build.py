@@ -36,6 +36,7 @@ from calibration.irt.reliability import information_curve
 from calibration.pipeline.link import LinkStage
 from calibration.pipeline.policy import PolicyTable
 from calibration.pipeline.prepare import PreparedData
+from calibration.pipeline.quality import alpha_comparisons
 from calibration.pipeline.settings import PipelineSettings
 from calibration.quality.classical import classical_statistics
 
@@ -103,6 +104,7 @@ def build_bundle(run: CalibrationRun, findings: Findings) -> Bundle:
                 se=[float(s) for s in curve.se],
             ),
             warnings=findings.notes,
+            alpha_comparison=alpha_comparisons(prepared, findings.quality) if prepared.n_groups > 1 else [],
         ),
         dif=findings.dif,
         invariance=findings.ladder,

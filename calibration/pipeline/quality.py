@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from calibration.bundle.schema import (
+    AlphaComparisonRow,
     CategoryFunctioning,
     Dimensionality,
     GroupQuality,
@@ -37,6 +38,7 @@ from calibration.quality.model_fit import (
     dimensionality,
     item_fit,
 )
+from calibration.quality.reliability import alpha_interval, compare_alphas, one_factor_omega
 
 SLOPE_VERY_LARGE = 4.0
 """A reference slope above this is reported as very large (a near-Heywood case)."""
@@ -63,6 +65,38 @@ def quality_by_group(
         by_group[group] = quality
         notes.extend(_quality_warnings(quality, group if prepared.n_groups > 1 else None))
     return by_group, notes
+
+
+def alpha_comparisons(prepared: PreparedData, by_group: dict[str, GroupQuality]) -> list[AlphaComparisonRow]:
+    """Feldt's test of each focal group's alpha against the reference group's, Holm-adjusted over the groups.
+
+    Each group's alpha is on the items it is scored on (an item left out for a group is left out of its
+    alpha), so a difference may also reflect the item sets.
+    """
+    reference = prepared.group_names[0]
+    ref = by_group[reference]
+    rows = []
+    for group in prepared.group_names[1:]:
+        q = by_group[group]
+        n_ref, n_group = _complete_rows(ref), _complete_rows(q)
+        test = compare_alphas(q.alpha if q.alpha is not None else np.nan, n_group,
+                              ref.alpha if ref.alpha is not None else np.nan, n_ref)  # fmt: skip
+        if np.isfinite(test.p_value):
+            rows.append((group, test))
+    order = sorted(range(len(rows)), key=lambda i: rows[i][1].p_value)
+    adjusted, running = [0.0] * len(rows), 0.0
+    for rank, i in enumerate(order):
+        running = max(running, min(1.0, (len(rows) - rank) * rows[i][1].p_value))
+        adjusted[i] = running
+    return [
+        AlphaComparisonRow(group=g, reference=reference, w=t.w, df=[t.df_a, t.df_b], p_value=t.p_value, p_holm=p)
+        for (g, t), p in zip(rows, adjusted, strict=True)
+    ]
+
+
+def _complete_rows(quality: GroupQuality) -> int:
+    """Rows with every item of the group answered: those its alpha was computed on."""
+    return 0 if quality.dimensionality is None else quality.dimensionality.n_complete
 
 
 def fit_warnings(prepared: PreparedData, fit: MultiGroupFit, em: EMSettings) -> list[str]:
@@ -121,6 +155,8 @@ def _group_quality(
     prior = NormalPrior(0.0, 1.0)
     latent_mean, latent_sd = latent
     classical = classical_statistics(x)
+    interval = alpha_interval(classical.alpha, classical.n_complete, x.shape[1])
+    factor = one_factor_omega(x)
     eap = eap_scores(params, x, grid=grid, prior=prior)
     reliability = marginal_reliability(eap.theta, eap.se)
     table = summed_score_table(params, grid=grid, prior=prior)
@@ -168,6 +204,8 @@ def _group_quality(
         items=items,
         dimensionality=dims,
         categories=categories,
+        alpha_interval=[float(v) for v in interval] if np.all(np.isfinite(interval)) else None,
+        omega=finite_or_none(factor.omega),
     )
 
 

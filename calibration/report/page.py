@@ -305,20 +305,40 @@ def _information(bundle: Bundle) -> str:
 def _quality(bundle: Bundle) -> str:
     by_group = bundle.quality.by_group
     reliability = _table(
-        ("group", "respondents", "alpha", "marginal reliability", "eigenvalue ratio", "residual PCA eigenvalue"),
+        (
+            "group",
+            "respondents",
+            "alpha",
+            "alpha 95% interval",
+            "omega",
+            "marginal reliability",
+            "eigenvalue ratio",
+            "residual PCA eigenvalue",
+        ),
         [
             (
                 g,
                 q.n_respondents,
                 _n(q.alpha),
+                "-" if q.alpha_interval is None else f"{q.alpha_interval[0]:.3f} to {q.alpha_interval[1]:.3f}",
+                _n(q.omega),
                 _n(q.marginal_reliability),
                 _n(q.dimensionality.eigenvalue_ratio if q.dimensionality else None, ".2f"),
                 _n(q.dimensionality.residual_pca_first_eigenvalue if q.dimensionality else None, ".2f"),
             )
             for g, q in by_group.items()
         ],
-        numeric=(1, 2, 3, 4, 5),
+        numeric=(1, 2, 4, 5, 6, 7),
     )
+    comparisons = "".join(
+        f"<li>{_e(r.group)} against {_e(r.reference)}: W = {r.w:.3f} on ({r.df[0]}, {r.df[1]}) df, p = "
+        f"{r.p_value:.3g}, Holm-adjusted {r.p_holm:.3g}</li>"
+        for r in bundle.quality.alpha_comparison
+    )
+    if comparisons:
+        reliability += (
+            f"<p>Equal alpha (Feldt's test; each group's alpha on the items it is scored on):</p><ul>{comparisons}</ul>"
+        )
     groups = list(by_group)
     fit_rows = []
     for item in bundle.items:
@@ -332,7 +352,9 @@ def _quality(bundle: Bundle) -> str:
     return (
         "<h3>Reliability and dimensionality by group</h3>"
         + reliability
-        + "<p class=muted>Rules of thumb: alpha .70 for group use, .90 for individual decisions; an eigenvalue "
+        + "<p class=muted>Alpha's interval is Feldt's F-based interval; omega comes from a one-factor "
+        "maximum-likelihood model of the item correlations. "
+        "Rules of thumb: alpha .70 for group use, .90 for individual decisions; an eigenvalue "
         "ratio well above 3 and a residual PCA eigenvalue under about 2 support one dimension (common practice; "
         "no single rule is decisive).</p><h3>Item fit by group</h3>"
         + fit

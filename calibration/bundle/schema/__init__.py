@@ -33,6 +33,7 @@ from calibration.bundle.schema.document import (
 )
 from calibration.bundle.schema.evidence import (
     EFFECT_LEVEL_RULE,
+    AlphaComparisonRow,
     CategoryFunctioning,
     DifReport,
     DifSettingsRecord,
@@ -85,6 +86,7 @@ __all__ = [
     "Frozen",
     "GroupMetric",
     "GroupPolicy",
+    "AlphaComparisonRow",
     "CategoryFunctioning",
     "GroupQuality",
     "ModalRange",

@@ -82,6 +82,21 @@ class GroupQuality(Frozen):
     categories: dict[str, CategoryFunctioning] = Field(
         default_factory=dict, description="category functioning of every polytomous item (schema 4)"
     )
+    alpha_interval: list[float] | None = Field(
+        None, min_length=2, max_length=2, description="Feldt's 95% interval for alpha (schema 4)"
+    )
+    omega: float | None = Field(None, description="McDonald's omega from a one-factor ML model (schema 4)")
+
+
+class AlphaComparisonRow(Frozen):
+    """Feldt's test that a group's alpha equals the reference group's (W = (1 - alpha) / (1 - alpha_ref))."""
+
+    group: str
+    reference: str
+    w: float
+    df: list[int] = Field(min_length=2, max_length=2)
+    p_value: float
+    p_holm: float = Field(description="Holm-adjusted over the focal groups")
 
 
 class Quality(Frozen):
@@ -90,6 +105,9 @@ class Quality(Frozen):
     by_group: dict[str, GroupQuality]
     test_information: InformationTable
     warnings: list[str] = Field(default_factory=list)
+    alpha_comparison: list[AlphaComparisonRow] = Field(
+        default_factory=list, description="equal alpha in every focal group and the reference group (schema 4)"
+    )
 
 
 class ObservedDifRow(Frozen):
