@@ -61,10 +61,15 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, default=5_000_000)
     parser.add_argument("--calibration-rows", type=int, default=2_000_000)
+    parser.add_argument("--skip-scoring", action="store_true", help="only the calibration part")
     args = parser.parse_args()
     from dask.distributed import Client, LocalCluster
 
     print(f"machine: {machine()}")
+    if args.skip_scoring:
+        with tempfile.TemporaryDirectory() as tmp:
+            calibration(Path(tmp), args.calibration_rows)
+        return 0
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         store = publish_bundle(folder, 40)

@@ -241,7 +241,9 @@ def calibrate_file_on_dask(  # noqa: PLR0913 - the cluster, the file and keyword
     for more in stats[1:]:
         merged = merged.merge(more)
     start = slot_table(merged.values(k, models))
-    client.gather(prepared)  # held on the workers from here; the raw partitions can go
+    from dask.distributed import wait
+
+    wait(prepared)  # held on the workers from here (not gathered); the raw partitions can go
     del rows
     n_groups = len(group_names) if group_column else 1
     fit = calibrate_groups(

@@ -25,6 +25,7 @@ from calibration.irt.likelihood import (
     split_log_table,
 )
 from calibration.irt.models import (
+    CUMULATIVE_MODELS,
     PROBABILITY_FLOOR,
     FloatArray,
     IntArray,
@@ -270,6 +271,88 @@ def _any_model_information(params: ItemParameters, answered: np.ndarray | None, 
     return _answered_sum(information_from(prob, first).T, answered, np.ones(params.n_items))
 
 
+def _guessing_curves(
+    params: ItemParameters, codes: IntArray, answered: np.ndarray | None, theta: FloatArray
+) -> tuple[FloatArray, FloatArray]:
+    """3PL items on (n, J) arrays: with the 2PL part ``s`` and ``W = s (1 - s)``, ``P_1 = g + (1 - g) s``,
+    ``P_1' = a (1 - g) W`` and ``P_1'' = a^2 (1 - g) W (1 - 2 s)`` (category 0: the negatives); returns
+    ``sum P'_x / P_x`` and ``sum ((P'_x / P_x)^2 - P''_x / P_x)`` over the answered items."""
+    a, g = params.slopes, params.guessing
+    s = _boundary_curve(_odds_against_slope(params, theta), np.exp(-params.intercepts[:, 0]))
+    w = s - s * s
+    right = codes == 1
+    p_right = g + (1.0 - g) * s
+    p = np.maximum(np.where(right, p_right, 1.0 - p_right), PROBABILITY_FLOOR)
+    sign = np.where(right, 1.0, -1.0)
+    ratio = sign * (a * (1.0 - g)) * w / p
+    bend = sign * (a * a * (1.0 - g)) * w * (1.0 - 2.0 * s) / p
+    ones = np.ones(params.n_items)
+    return _answered_sum(ratio, answered, ones), _answered_sum(ratio * ratio - bend, answered, ones)
+
+
+def _guessing_information(params: ItemParameters, answered: np.ndarray | None, theta: FloatArray) -> FloatArray:
+    """3PL items' test information ``sum (a (1 - g) W)^2 / (P_1 (1 - P_1))`` over the answered items."""
+    a, g = params.slopes, params.guessing
+    s = _boundary_curve(_odds_against_slope(params, theta), np.exp(-params.intercepts[:, 0]))
+    p_right = g + (1.0 - g) * s
+    slope = (a * (1.0 - g)) * (s - s * s)
+    terms = slope * slope / np.maximum(p_right * (1.0 - p_right), PROBABILITY_FLOOR)
+    return _answered_sum(terms, answered, np.ones(params.n_items))
+
+
+class _ModelParts:
+    """A test's items split by model family for Newton's per-respondent terms, each family on its cheapest path:
+    2PL/1PL and graded items on (n, J) arrays, 3PL items on (n, J) arrays, partial-credit items on (J, K, n)."""
+
+    def __init__(self, params: ItemParameters, codes: IntArray) -> None:
+        kinds = np.array(
+            ["3pl" if m == "3pl" else ("other" if m not in CUMULATIVE_MODELS else "cumulative") for m in params.models]
+        )
+        self.parts = []
+        for kind in ("cumulative", "3pl", "other"):
+            columns = np.flatnonzero(kinds == kind)
+            if columns.size == 0:
+                continue
+            sub = params.subset(columns)
+            factors = None
+            if kind == "cumulative" and sub.max_categories > 2:
+                factors = _answer_factors(sub, codes[:, columns])
+            self.parts.append((kind, columns, sub, factors))
+
+    def curves(
+        self, codes: IntArray, rows: slice | IntArray, answered: np.ndarray | None, theta: FloatArray
+    ) -> tuple[FloatArray, FloatArray]:
+        """Gradient and minus the second derivative of the log-likelihood, summed over the families."""
+        gradient, curvature = np.zeros(theta.shape[0]), np.zeros(theta.shape[0])
+        for kind, columns, sub, factors in self.parts:
+            on = None if answered is None else answered[:, columns]
+            mine = codes[rows][:, columns]
+            if kind == "3pl":
+                g, c = _guessing_curves(sub, mine, on, theta)
+            elif kind == "other":
+                g, c = _any_model_curves(sub, mine, on, theta)
+            elif factors is None:
+                g, c = _right_wrong_curves(sub, mine, on, theta)
+            else:
+                g, c = _answer_curves(sub, factors[0][rows], factors[1][rows], on, theta)
+            gradient += g
+            curvature += c
+        return gradient, curvature
+
+    def information(self, answered: np.ndarray | None, theta: FloatArray) -> FloatArray:
+        """Test information summed over the families."""
+        total = np.zeros(theta.shape[0])
+        for kind, columns, sub, _ in self.parts:
+            on = None if answered is None else answered[:, columns]
+            if kind == "3pl":
+                total += _guessing_information(sub, on, theta)
+            elif kind == "other":
+                total += _any_model_information(sub, on, theta)
+            else:
+                total += _expected_information(sub, on, theta)
+        return total
+
+
 def _newton_theta(
     params: ItemParameters,
     x: FloatArray,
@@ -293,8 +376,12 @@ def _newton_theta(
     n_rows = theta.shape[0]
     active = np.ones(n_rows, dtype=bool)
     prior_curvature = 0.0 if prior is None else 1.0 / prior.sd**2
-    general = not params.cumulative_only  # 3PL or partial-credit items: the general (J, K, n) path
-    information = _any_model_information if general else _expected_information
+    general = not params.cumulative_only  # 3PL or partial-credit items: each model family on its own path
+    parts = _ModelParts(params, codes) if general else None
+
+    def information(p: ItemParameters, on: np.ndarray | None, at: FloatArray) -> FloatArray:
+        return parts.information(on, at) if parts is not None else _expected_information(p, on, at)
+
     dichotomous = params.max_categories == 2 and not general
     lower, upper = (None, None) if dichotomous or general else _answer_factors(params, codes)
     # Right/wrong items: the curvature of the last step is the expected information, so a row whose
@@ -306,8 +393,8 @@ def _newton_theta(
             break
         rows: slice | IntArray = slice(None) if idx.size == n_rows else idx  # a view while every row is active
         on = None if answered is None else answered[rows]
-        if general:
-            gradient, curvature = _any_model_curves(params, codes[rows], on, theta[rows])
+        if parts is not None:
+            gradient, curvature = parts.curves(codes, rows, on, theta[rows])
         elif lower is None or upper is None:
             gradient, curvature = _right_wrong_curves(params, codes[rows], on, theta[rows])
         else:
