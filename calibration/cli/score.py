@@ -67,10 +67,12 @@ def run_score(args: argparse.Namespace) -> int:
 def _run_on_dask(args: argparse.Namespace, bundle: Bundle, ignore: list[str]) -> int:
     """``equitheta score --engine dask``: the file's partitions scored on a cluster (see calibration.distributed)."""
     try:
+        import dask.distributed  # noqa: F401 - the extra's presence, checked before any work
+
         from calibration.distributed.scoring import score_file_on_dask
     except ImportError as exc:
         raise UsageError(
-            f"--engine dask needs Dask ({exc.name} is not installed): pip install 'equitheta[dask]'"
+            f"--engine dask needs Dask ({exc.name or 'dask'} is not installed): pip install 'equitheta[dask]'"
         ) from exc
     import time
 

@@ -190,3 +190,17 @@ def test_calibration_on_dask_equals_in_process(tmp_path: Path, cluster: str) -> 
     np.testing.assert_allclose(fit.slot_se, local.slot_se, atol=1e-6)
     assert fit.log_likelihood == pytest.approx(local.log_likelihood, abs=1e-6)
     assert fit.n_persons == n
+
+
+def test_without_the_dask_extra_the_command_says_what_to_install(
+    tmp_path: Path, store: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    import sys
+
+    data = tmp_path / "answers.csv"
+    responses(50, 6).to_csv(data, index=False)
+    monkeypatch.setitem(sys.modules, "dask.distributed", None)  # as if the extra were not installed
+    args = ["score", str(data), "--bundle", "pantry-checkout", "--store", str(store), "--group-column", "mode"]
+    assert main([*args, "--out", str(tmp_path / "s.csv"), "--engine", "dask"]) == 2
+    assert "pip install 'equitheta[dask]'" in capsys.readouterr().err
+    assert not (tmp_path / "s.csv").exists()
