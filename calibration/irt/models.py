@@ -31,6 +31,7 @@ Arrays are padded to the largest category count in the test: intercepts of shape
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
@@ -130,7 +131,7 @@ class ItemParameters:
         """Largest number of categories of any item."""
         return int(self.n_categories.max())
 
-    @property
+    @functools.cached_property
     def n_slots(self) -> IntArray:
         """Parameters (slots) per item: slope and intercepts, and a 3PL item's ``logit(g)``."""
         return np.where(self.has_guessing, 3, self.n_categories)
@@ -140,17 +141,17 @@ class ItemParameters:
         """Width of a slot table: the largest number of slots of any item."""
         return int(self.n_slots.max())
 
-    @property
+    @functools.cached_property
     def has_guessing(self) -> np.ndarray:
         """Boolean (n_items,): the 3PL items."""
         return np.array([m == MODEL_3PL for m in self.models], dtype=bool)
 
-    @property
+    @functools.cached_property
     def adjacent(self) -> np.ndarray:
         """Boolean (n_items,): the (generalized) partial credit items."""
         return np.array([m in ADJACENT_MODELS for m in self.models], dtype=bool)
 
-    @property
+    @functools.cached_property
     def cumulative_only(self) -> bool:
         """Every item is a 2PL, 1PL or graded item (the fast scoring paths apply)."""
         return all(m in CUMULATIVE_MODELS for m in self.models)
