@@ -13,6 +13,7 @@ cluster, or a shared file system).
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import os
 import shutil
@@ -213,8 +214,13 @@ def score_file_on_dask(  # noqa: PLR0913 - the file, the bundle, the output and 
     parts = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".parts", dir=out.parent))
     job = ScoreJob(path=path.resolve(), bundle_bytes=to_bytes(bundle), parts=parts.resolve(), csv=csv, **options)
     try:
-        cluster = None if scheduler else LocalCluster(n_workers=n_workers, threads_per_worker=1, dashboard_address=None)
-        with Client(scheduler or cluster) as client:
+        with contextlib.ExitStack() as stack:  # a local cluster of our own is closed however the job ends
+            cluster = None
+            if not scheduler:
+                cluster = stack.enter_context(
+                    LocalCluster(n_workers=n_workers, threads_per_worker=1, dashboard_address=None)
+                )
+            client = stack.enter_context(Client(scheduler or cluster))
             token = uuid.uuid4().hex[:8]
             futures = [
                 client.submit(score_partition, job, p, key=f"equitheta-score-{token}-{p.index}", pure=False)
@@ -224,8 +230,6 @@ def score_file_on_dask(  # noqa: PLR0913 - the file, the bundle, the output and 
                 if progress is not None:
                     progress(done, len(partitions))
             outcomes = sorted(client.gather(futures), key=lambda o: o.index)
-        if cluster is not None:
-            cluster.close()
         _raise_problems(path, partitions, outcomes)
         _finish(out, parts, len(partitions), csv=csv)
     finally:

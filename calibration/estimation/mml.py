@@ -90,7 +90,6 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
         tables = np.array(start, dtype=np.float64)
         template = params_from_table(tables[0], template)
     latent = latent or LatentSpec.reference_fixed(n_groups)
-    held_guessing = np.zeros(template.n_items, dtype=bool)
     if settings.held_guessing:  # 3PL asymptotes held at known values (the item spec)
         values = np.asarray(settings.held_guessing, dtype=np.float64)
         held_guessing = np.isfinite(values) & template.has_guessing
