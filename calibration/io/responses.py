@@ -185,13 +185,13 @@ def _duplicate_ids(trimmed: Any, id_column: str, header_lines: int) -> list[str]
     import pyarrow as pa
     import pyarrow.compute as pc
 
-    if isinstance(trimmed, pa.ChunkedArray):
-        trimmed = trimmed.combine_chunks()
-    counts = pc.value_counts(trimmed)
+    counts = pc.value_counts(trimmed)  # a chunked array is counted as it is (no combined copy of every id)
     repeated = pc.filter(counts.field("values"), pc.greater(counts.field("counts"), 1))
     repeated = pc.filter(repeated, pc.not_equal(repeated, ""))  # empty ids are reported as empty
     if len(repeated) == 0:
         return []
+    if isinstance(trimmed, pa.ChunkedArray):
+        trimmed = trimmed.combine_chunks()
     rows = pc.indices_nonzero(pc.is_in(trimmed, value_set=repeated)).to_pylist()
     values = pc.take(trimmed, pa.array(rows, type=pa.uint64())).to_pylist()
     first_row: dict[str, int] = {}
