@@ -40,6 +40,11 @@ def store_from(location: str) -> BundleStore:
     return open_store(location, prefix=os.environ.get(REDIS_PREFIX_VARIABLE) or "equitheta")
 
 
+def ignored_columns(text: str) -> list[str]:
+    """The columns an ``--ignore-columns`` value names (comma-separated, blanks dropped)."""
+    return [c.strip() for c in text.split(",") if c.strip()]
+
+
 def command_line_mover() -> str:
     """Who moves an alias from the command line, as the alias history records it."""
     import getpass

@@ -11,7 +11,7 @@ import pandas as pd
 from calibration.bundle import resolve
 from calibration.bundle.relations import EXPECTATIONS, Relations, relate_measures
 from calibration.bundle.scorer import BundleScorer, UnknownGroup
-from calibration.cli import UsageError, store_from
+from calibration.cli import UsageError, ignored_columns, store_from
 from calibration.cli.console import dash, error_console, new_table, out_console
 from calibration.errors import InputError
 from calibration.io import MAX_PROBLEMS, ScoringInput, row_label, write_csv_atomic
@@ -54,7 +54,7 @@ def run_relate(args: argparse.Namespace) -> int:
     """``equitheta relate``: score the file, correlate theta with each measure by group, write and print."""
     reliabilities, expectations = _options(args)
     scorer = BundleScorer(resolve(store_from(args.store), args.bundle))
-    ignore = [c.strip() for c in args.ignore_columns.split(",") if c.strip()]
+    ignore = ignored_columns(args.ignore_columns)
     if args.group_column is None and scorer.default_group is None:
         raise UsageError(f"bundle {scorer.bundle.label} has groups ({', '.join(scorer.plans)}): name --group-column")
     opened = ScoringInput(

@@ -10,7 +10,7 @@ import numpy as np
 
 from calibration.bundle import Bundle, resolve
 from calibration.bundle.scorer import BundleScorer, ScoredBatch, UnknownGroup
-from calibration.cli import UsageError, store_from
+from calibration.cli import UsageError, ignored_columns, store_from
 from calibration.cli.console import error_console, out_console
 from calibration.cli.render import CAUTION
 from calibration.io import MAX_PROBLEMS, ScoringInput, read_header, row_label
@@ -27,7 +27,7 @@ def run_score(args: argparse.Namespace) -> int:
     store = store_from(args.store)
     bundle = resolve(store, args.bundle)
     scorer = BundleScorer(bundle)
-    ignore = [c.strip() for c in args.ignore_columns.split(",") if c.strip()]
+    ignore = ignored_columns(args.ignore_columns)
     if args.group_column is None and scorer.default_group is None:
         raise UsageError(_missing_group_column(args.responses, bundle, scorer, args.id_column, ignore))
     if args.engine == "dask":

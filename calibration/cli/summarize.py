@@ -11,7 +11,7 @@ import pandas as pd
 from calibration.bundle import resolve
 from calibration.bundle.scorer import BundleScorer, UnknownGroup
 from calibration.bundle.summaries import GroupSummaries, summarize_groups
-from calibration.cli import UsageError, store_from
+from calibration.cli import UsageError, ignored_columns, store_from
 from calibration.cli.console import dash, error_console, new_table, out_console
 from calibration.io import ScoringInput, write_csv_atomic
 
@@ -25,7 +25,7 @@ def run_summarize(args: argparse.Namespace) -> int:
     """``equitheta summarize``: read the file, score each group on its items, summarise with plausible values."""
     store = store_from(args.store)
     scorer = BundleScorer(resolve(store, args.bundle))
-    ignore = [c.strip() for c in args.ignore_columns.split(",") if c.strip()]
+    ignore = ignored_columns(args.ignore_columns)
     opened = ScoringInput(
         args.responses,
         item_categories=scorer.item_categories,

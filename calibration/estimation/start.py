@@ -124,18 +124,24 @@ def _complete_data_values(x: FloatArray, k: IntArray, models: tuple[str, ...]) -
         covariance += centred.T @ centred
         for c in range(1, k_max):
             at_least[c - 1] += (block >= c).sum(axis=0)
-    with_item = covariance.sum(axis=1)
-    item_var = np.diag(covariance)
-    cov_rest = with_item - item_var
-    rest_var = covariance.sum() - 2.0 * with_item + item_var
-    defined = (item_var > 0) & (rest_var > 0)
-    r = np.where(defined, cov_rest / np.sqrt(np.where(defined, item_var * rest_var, 1.0)), 0.5)
-    r = np.clip(r, 0.15, 0.9)
+    r = np.clip(_rest_correlations(covariance), 0.15, 0.9)
     slopes = np.clip(1.7 * r / np.sqrt(1 - r * r), 0.3, 2.5)
     intercepts = np.full((n_items, k_max - 1), np.nan)
     for j in range(n_items):
         intercepts[j, : k[j] - 1] = _intercepts(at_least[: k[j] - 1, j] / n_rows, slopes[j])
     return ItemParameters(slopes=slopes, intercepts=intercepts, n_categories=k, models=models)
+
+
+def _rest_correlations(covariance: FloatArray) -> FloatArray:
+    """Each item's correlation with the sum of the others, from the (scaled) items' covariance (or its sums
+    of centred products): ``cov(s_j, T - s_j) = sum_l S_jl - S_jj``, ``var(T - s_j) = sum S - 2 sum_l S_jl +
+    S_jj``; 0.5 where a variance is 0."""
+    with_item = covariance.sum(axis=1)
+    item_var = np.diag(covariance)
+    cov_rest = with_item - item_var
+    rest_var = covariance.sum() - 2.0 * with_item + item_var
+    defined = (item_var > 0) & (rest_var > 0)
+    return np.where(defined, cov_rest / np.sqrt(np.where(defined, item_var * rest_var, 1.0)), 0.5)
 
 
 def _intercepts(p: FloatArray, slope: float) -> FloatArray:
@@ -200,13 +206,7 @@ class StartStatistics:
         n_items = k.size
         if n_items > 1 and self.n_rows > 2 and not self.any_missing:
             means = self.total / self.n_rows
-            covariance = self.cross - self.n_rows * np.outer(means, means)
-            with_item = covariance.sum(axis=1)
-            item_var = np.diag(covariance)
-            cov_rest = with_item - item_var
-            rest_var = covariance.sum() - 2.0 * with_item + item_var
-            defined = (item_var > 0) & (rest_var > 0)
-            r = np.where(defined, cov_rest / np.sqrt(np.where(defined, item_var * rest_var, 1.0)), 0.5)
+            r = _rest_correlations(self.cross - self.n_rows * np.outer(means, means))
             answered = np.full(n_items, float(self.n_rows))
         else:
             n, s_i, s_r, s_ii, s_rr, s_ir = self.pairs
