@@ -11,8 +11,11 @@ Calibration: a 2PL calibration (with SEs) of M respondents x 40 items (default 2
 Parquet file: in process, the table read whole and ``calibrate_groups``; on Dask,
 ``calibrate_file_on_dask`` with the file's row groups held by the workers. Each as its own process
 measured by GNU time (the Dask client's workers read with ``resource.getrusage``); estimates compared.
+Then the whole command on the same file: ``equitheta calibrate`` in process against ``equitheta calibrate
+--engine dask --scheduler`` (its checks and quality evidence on a sample of 50,000 respondents, the final
+fit on all), the published bundles' item parameters compared.
 
-    .venv/bin/python -m benchmarks.bench_dask [--rows N] [--calibration-rows M]
+    .venv/bin/python -m benchmarks.bench_dask [--rows N] [--calibration-rows M] [--skip-scoring]
 """
 
 from __future__ import annotations
@@ -152,6 +155,37 @@ def calibration(folder: Path, n_rows: int) -> None:
     local, dask = np.load(folder / "local.npy"), np.load(folder / "dask.npy")
     print(f"largest difference: estimates {np.nanmax(np.abs(local[0] - dask[0])):.1e}, SEs "
           f"{np.nanmax(np.abs(local[1] - dask[1])):.1e}")  # fmt: skip
+    calibration_command(folder, data, n_rows)
+
+
+def calibration_command(folder: Path, data: Path, n_rows: int) -> None:
+    """``equitheta calibrate`` on the whole file in process, then with ``--engine dask``: time, memory, estimates."""
+    from dask.distributed import Client, LocalCluster
+
+    from calibration.bundle import DirectoryStore
+
+    print(f"command: equitheta calibrate, {n_rows:,} x 40, one group (in process: every check on every row)")
+    base = [str(BIN / "equitheta"), "calibrate", str(data), "--name", "bench", "--republish"]
+    with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster, Client(cluster) as c:
+        for attempt in (1, 2):
+            cpu, wall, rss = child([*base, "--store", str(folder / "here")])
+            print(f"pass {attempt}: in process: {cpu:.1f} CPU s, {wall:.1f} s wall, peak RSS {rss:.0f} MB")
+            before = c.run(worker_usage)
+            on_dask = [*base, "--store", str(folder / "there"), "--engine", "dask", "--scheduler"]
+            d_cpu, d_wall, d_rss = child([*on_dask, cluster.scheduler_address])
+            after = c.run(worker_usage)
+            workers_cpu = sum(after[w][0] - before[w][0] for w in after)
+            peaks = ", ".join(f"{after[w][1]:.0f}" for w in sorted(after))
+            print(
+                f"pass {attempt}: 2-worker Dask: {d_wall:.1f} s wall ({wall / d_wall:.2f}x in-process speed); client "
+                f"{d_cpu:.1f} CPU s, peak RSS {d_rss:.0f} MB; workers {workers_cpu:.1f} CPU s, peak RSS {peaks} MB"
+            )
+    here, there = DirectoryStore(folder / "here").get("bench", 2), DirectoryStore(folder / "there").get("bench", 2)
+    gap = max(
+        max(abs(a.slope - b.slope), *(abs(u - v) for u, v in zip(a.intercepts, b.intercepts, strict=True)))
+        for a, b in zip(here.items, there.items, strict=True)
+    )
+    print(f"published bundles: largest difference of an item parameter {gap:.1e}")
 
 
 if __name__ == "__main__":

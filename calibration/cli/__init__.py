@@ -45,6 +45,16 @@ def ignored_columns(text: str) -> list[str]:
     return [c.strip() for c in text.split(",") if c.strip()]
 
 
+def require_dask() -> None:
+    """Refuse ``--engine dask`` before any work when the dask extra is not installed, saying what to install."""
+    try:
+        import dask.distributed  # noqa: F401 - the extra's presence
+    except ImportError as exc:
+        raise UsageError(
+            f"--engine dask needs Dask ({exc.name or 'dask'} is not installed): pip install 'equitheta[dask]'"
+        ) from exc
+
+
 def command_line_mover() -> str:
     """Who moves an alias from the command line, as the alias history records it."""
     import getpass
@@ -176,6 +186,21 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:
         help="hold the link items at their published parameters, or find linking constants that match the "
         "link items' test (stocking-lord) or item (haebara) characteristic curves",
     )
+    dask = _add_dask_options(
+        cal,
+        "local: the whole file in this process; dask: the file held by a Dask cluster's workers, which run the "
+        "final calibration's E-step and SEs over every respondent (the evidence: see --evidence-sample)",
+    )
+    dask.add_argument(
+        "--evidence-sample",
+        type=_positive_int,
+        default=50_000,
+        metavar="N",
+        help="with --engine dask: the checks, DIF screening and tests, the invariance ladder and the quality "
+        "evidence run here on a random sample of about N respondents per group (a group with at most N: all of "
+        "them); the final calibration uses every respondent",
+    )
+    dask.add_argument("--sample-seed", type=int, default=0, help="seed of the evidence sample (with --engine dask)")
     scale = cal.add_argument_group("reporting scale (score = mean + sd * theta, rounded and bounded)")
     scale.add_argument("--report-mean", type=float, default=500.0, help="reporting score at theta = 0")
     scale.add_argument("--report-sd", type=_positive_float, default=100.0, help="reporting points per theta unit")
@@ -217,13 +242,13 @@ def _add_score(sub: argparse._SubParsersAction) -> None:
         default="error",
         help="a group the bundle does not know: an error, or score with the reference group",
     )
-    dask = sc.add_argument_group("scale-out (the dask extra: pip install 'equitheta[dask]')")
-    dask.add_argument(
-        "--engine",
-        choices=["local", "dask"],
-        default="local",
-        help="local: this process, batch by batch; dask: partition by partition on a Dask cluster",
-    )
+    _add_dask_options(sc, "local: this process, batch by batch; dask: partition by partition on a Dask cluster")
+
+
+def _add_dask_options(parser: argparse.ArgumentParser, engines: str) -> argparse._ArgumentGroup:
+    """--engine, --scheduler and --dask-workers, shared by the commands that run on Dask."""
+    dask = parser.add_argument_group("scale-out (the dask extra: pip install 'equitheta[dask]')")
+    dask.add_argument("--engine", choices=["local", "dask"], default="local", help=engines)
     dask.add_argument(
         "--scheduler",
         metavar="ADDRESS",
@@ -231,8 +256,9 @@ def _add_score(sub: argparse._SubParsersAction) -> None:
         "(default: a local cluster started for the job)",
     )
     dask.add_argument(
-        "--dask-workers", type=int, default=2, help="worker processes of the local cluster (one thread each)"
+        "--dask-workers", type=_positive_int, default=2, help="worker processes of the local cluster (one thread each)"
     )
+    return dask
 
 
 def _add_bundle(sub: argparse._SubParsersAction) -> None:

@@ -3,16 +3,17 @@
 from __future__ import annotations
 
 import argparse
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 from calibration.bundle import Bundle, parse_reference, resolve
 from calibration.bundle.store import find_identical
-from calibration.cli import command_line_mover, store_from
+from calibration.cli import UsageError, command_line_mover, require_dask, store_from
 from calibration.cli.console import ProgressReporter, out_console
 from calibration.cli.render import print_calibration_summary
 from calibration.io import ResponseData, read_item_spec, read_policy_overrides, read_responses
 
 if TYPE_CHECKING:  # the numerical packages load only once the inputs have been read and checked
+    from calibration.distributed.calibration import DaskTable
     from calibration.pipeline import PipelineSettings, PolicyOverride
     from calibration.pipeline.link import LinkRequest
 
@@ -58,14 +59,43 @@ def run_calibrate(args: argparse.Namespace) -> int:
     """``equitheta calibrate``: check, calibrate, publish and summarise."""
     parse_reference(args.name)  # a bad name fails before the work, not after
     spec = read_item_spec(args.items) if args.items else None
-    data = read_responses(
-        args.responses,
-        id_column=args.id_column,
-        item_spec=spec,
-        dichotomous_model=args.model,
-        polytomous_model=args.polytomous_model,
-        group_column=args.group_column,
-    )
+    options = {
+        "id_column": args.id_column,
+        "item_spec": spec,
+        "dichotomous_model": args.model,
+        "polytomous_model": args.polytomous_model,
+        "group_column": args.group_column,
+    }
+    if args.engine == "dask":
+        return _run_on_dask(args, options)
+    return _check_calibrate_publish(args, read_responses(args.responses, **options))
+
+
+def _run_on_dask(args: argparse.Namespace, options: dict[str, Any]) -> int:
+    """``calibrate --engine dask``: the file held by the cluster, the evidence on a sample of it."""
+    if args.link_to:
+        raise UsageError(
+            "--link-to needs the whole file in this process: leave out --engine dask, or calibrate on Dask "
+            "and link the versions in a later cycle"
+        )
+    require_dask()
+    from calibration.distributed.calibration import DaskTable
+    from calibration.distributed.cluster import dask_client
+
+    store_from(args.store)  # an unusable store fails before the cluster starts
+    where = args.scheduler or f"a local cluster of {args.dask_workers} worker processes"
+    with dask_client(args.scheduler, args.dask_workers) as client:
+        with ProgressReporter(f"reading and checking {args.responses.name} on {where}"):
+            table = DaskTable.open(client, args.responses, **options)
+            data = table.sample(args.evidence_sample, seed=args.sample_seed)
+        try:
+            return _check_calibrate_publish(args, data, whole=table)
+        finally:
+            table.release()
+
+
+def _check_calibrate_publish(args: argparse.Namespace, data: ResponseData, whole: DaskTable | None = None) -> int:
+    """The checks that need no fit, the calibration, then the summary and the publication."""
     rows = read_policy_overrides(args.policy_overrides) if args.policy_overrides else []
     store = store_from(args.store)
     from calibration.pipeline import PolicyOverride, prepare_data
@@ -75,11 +105,13 @@ def run_calibrate(args: argparse.Namespace) -> int:
     overrides = [PolicyOverride(*row) for row in rows]
     link = LinkRequest(resolve(store, args.link_to), args.link_method) if args.link_to else None
     reference_group = link_reference_group(data, link, args.reference_group)
+    if whole is not None and reference_group is None and data.groups is not None:
+        reference_group = whole.largest_group()  # of the whole file, not of the sample
     # Every check that needs no fit (sizes, overrides, named anchors, the link) answers before any work starts.
     if link is not None:
         check_link_request(link, settings)
     prepare_data(data, settings=settings, reference_group=reference_group, overrides=overrides)
-    bundle = _run_calibration(data, args.name, settings, reference_group, overrides, link)
+    bundle = _run_calibration(data, args.name, settings, reference_group, overrides, link, whole)
     console = out_console()
     # Render first: once the store holds the version, nothing may fail any more.
     with console.capture() as captured:
@@ -116,10 +148,16 @@ def _run_calibration(  # noqa: PLR0913 - run_calibrate's checked inputs, passed 
     reference_group: str | None,
     overrides: list[PolicyOverride],
     link: LinkRequest | None,
+    whole: DaskTable | None = None,
 ) -> Bundle:
     from calibration.pipeline import calibrate_data
 
-    with ProgressReporter(f"calibrating {data.n_items} items, {data.n_persons} respondents") as progress:
+    title = f"calibrating {data.n_items} items, {data.n_persons} respondents"
+    if whole is not None:
+        title = f"calibrating {data.n_items} items, {whole.n_persons} respondents on Dask"
+        if whole.sample_record is not None:
+            title += f" (evidence on a sample of {data.n_persons})"
+    with ProgressReporter(title) as progress:
 
         def report(stage: str, step: int, value: float) -> None:
             label = STAGES.get(stage, stage)
@@ -138,5 +176,6 @@ def _run_calibration(  # noqa: PLR0913 - run_calibrate's checked inputs, passed 
             overrides=overrides,
             progress=report,
             link=link,
+            whole=whole,
         )
     return outcome.bundle

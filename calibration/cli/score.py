@@ -10,7 +10,7 @@ import numpy as np
 
 from calibration.bundle import Bundle, resolve
 from calibration.bundle.scorer import BundleScorer, ScoredBatch, UnknownGroup
-from calibration.cli import UsageError, ignored_columns, store_from
+from calibration.cli import UsageError, ignored_columns, require_dask, store_from
 from calibration.cli.console import error_console, out_console
 from calibration.cli.render import CAUTION
 from calibration.io import MAX_PROBLEMS, ScoringInput, read_header, row_label
@@ -66,15 +66,10 @@ def run_score(args: argparse.Namespace) -> int:
 
 def _run_on_dask(args: argparse.Namespace, bundle: Bundle, ignore: list[str]) -> int:
     """``equitheta score --engine dask``: the file's partitions scored on a cluster (see calibration.distributed)."""
-    try:
-        import dask.distributed  # noqa: F401 - the extra's presence, checked before any work
-
-        from calibration.distributed.scoring import score_file_on_dask
-    except ImportError as exc:
-        raise UsageError(
-            f"--engine dask needs Dask ({exc.name or 'dask'} is not installed): pip install 'equitheta[dask]'"
-        ) from exc
+    require_dask()
     import time
+
+    from calibration.distributed.scoring import score_file_on_dask
 
     console = error_console()
     start = time.perf_counter()

@@ -1,99 +1,176 @@
-"""The calibration's sums over respondents on Dask: partitions read and held by the workers.
+"""Calibration of a response file held by Dask workers: the sums over respondents added up on the client.
 
-Every worker reads its partitions of the response file once (``calibration.io`` partitions), checks
-their codes and keeps them prepared for the E-step (:class:`~calibration.estimation.estep.GroupData`
-per group, patterns compressed). The client runs the EM of
-:func:`~calibration.estimation.calibrate_groups` with a :class:`DaskGroups` source: each E-step sends
-the current item parameters to every partition and adds up their expected counts, posterior mass and
-log-likelihood; the observed information for the SEs is added up the same way (each respondent's
-terms are a sum over respondents; the priors are added once on the client). Starting values come from
-additive sums too (:class:`~calibration.estimation.start.StartStatistics`). So the client holds a few
-(items x categories x points) tables, never the response table, and the estimates equal in-process
-ones to rounding.
+Every worker reads its partitions of the file once (``calibration.io`` partitions), checks them as
+``read_responses`` checks a file (codes, ids, groups) and keeps them. The client gathers small
+results only: each partition's problems, ids (for repeats across partitions), group sizes and answers
+per item and category, from which it judges every item's categories as the in-process reader does
+(:class:`DaskTable`).
+
+A fit runs the EM of :func:`~calibration.estimation.calibrate_groups` with a :class:`DaskGroups`
+source: each E-step sends the current item parameters to every partition and adds up their expected
+counts, posterior mass and log-likelihood; the observed information for the SEs is added up the same
+way (the priors are added once on the client); starting values come from additive sums too
+(:class:`~calibration.estimation.start.StartStatistics`). The estimates equal in-process ones to
+rounding.
+
+The rest of a calibration (checks, DIF screening and tests, anchors, the invariance ladder, quality)
+runs in the client's process on a random sample of at most ``per_group`` respondents of each group
+(:meth:`DaskTable.sample`); the final calibration under the resulting policy runs on every respondent
+(:meth:`DaskTable.final_fit`, the pipeline's :class:`~calibration.pipeline.fits.WholeTable`). A sample
+that holds every respondent makes the whole calibration equal to the in-process one.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from calibration.distributed.cluster import repeated_ids
 from calibration.errors import InputError
 from calibration.estimation import EMSettings, LatentSpec, MultiGroupFit, calibrate_groups
 from calibration.estimation.estep import ExpectedCounts, GroupData, expected_counts, prepare_groups
 from calibration.estimation.information import observed_information
 from calibration.estimation.layout import GroupLayout, slot_table
 from calibration.estimation.start import StartStatistics
-from calibration.io import MAX_PROBLEMS, Partition, parse_codes, plan_partitions, read_header
-from calibration.io.tables import PARTITION_BYTES, PARTITION_ROWS, iter_tables
-from calibration.irt.models import FloatArray, IntArray, ItemParameters
+from calibration.io import MAX_PROBLEMS, ItemSpec, Partition, ResponseData, file_sha256, parse_codes, plan_partitions
+from calibration.io.responses import categories_and_models, category_counts, select_items, trimmed_ids
+from calibration.io.tables import PARTITION_BYTES, PARTITION_ROWS, check_required_columns, iter_tables, read_header
+from calibration.irt.models import MODEL_2PL, MODEL_GRM, FloatArray, IntArray, ItemParameters
+from calibration.pipeline.fits import ProgressCallback
+from calibration.pipeline.policy import PolicyTable
+from calibration.pipeline.prepare import PreparedData
+from calibration.pipeline.settings import SINGLE_GROUP
 
 READ_ROWS = 65_536
 """Rows per batch when a worker reads its partition."""
 
+SAMPLE_PER_GROUP = 50_000
+"""Respondents per group the evidence (DIF, the ladder, quality) rests on by default."""
+
 
 @dataclass(frozen=True)
 class PartitionRows:
-    """One partition's answers and group labels, as a worker holds them."""
+    """One partition's answers, group labels and ids as a worker holds them, with the problems found."""
 
     responses: FloatArray
     groups: list[str] | None
+    ids: Any  # Arrow string array, trimmed
+    problems: list[str] = field(default_factory=list)
+    total: int = 0
+
+
+@dataclass(frozen=True)
+class Census:
+    """What the client gathers of a partition: rows, problems, ids, group sizes and answers per code."""
+
+    n_rows: int
+    problems: list[str]
+    total: int
+    ids: list[Any]
+    sizes: dict[str, int]
+    counts: IntArray  # (n_items, highest code + 1)
 
 
 def read_partition(
     partition: Partition, *, path: Path, item_ids: Sequence[str], id_column: str, group_column: str | None
 ) -> PartitionRows:
-    """Read and check one partition (codes only: the categories are judged over all partitions)."""
+    """Read and check one partition: codes, ids and groups (the categories are judged over all partitions)."""
     include = [id_column, *([group_column] if group_column else []), *item_ids]
-    blocks, labels, problems, total = [], [], [], 0
+    blocks, labels, ids, problems, total = [], [], [], [], 0
     for table in iter_tables(path, READ_ROWS, include=include, partition=partition):
         codes, found, bad = parse_codes(table, list(item_ids))
         blocks.append(codes)
-        problems.extend(found[: max(0, MAX_PROBLEMS - len(problems))])
-        total += bad
+        trimmed, empty_ids = trimmed_ids(table, id_column)
+        ids.append(trimmed)
+        found = empty_ids + found
+        total += bad + len(empty_ids)
         if group_column:
             texts = table.text(group_column)
             labels.extend(texts)
-            empty = [i for i, g in enumerate(texts) if not g]
+            empty = [f"{table.label(i)}, column {group_column!r}: no group given" for i, g in enumerate(texts) if not g]
             total += len(empty)
-            problems.extend(
-                f"{table.label(i)}, column {group_column!r}: no group given"
-                for i in empty[: MAX_PROBLEMS - len(problems)]
-            )
-    if total:
-        where = partition.describe(path)
-        raise InputError(path.name, [f"{where}: {p}" for p in problems], total=total)
-    responses = np.concatenate(blocks) if blocks else np.zeros((0, len(item_ids)))
-    return PartitionRows(responses, labels if group_column else None)
+            found += empty
+        problems.extend(found[: max(0, MAX_PROBLEMS - len(problems))])
+    import pyarrow as pa
+
+    where = partition.describe(path)
+    return PartitionRows(
+        np.concatenate(blocks) if blocks else np.zeros((0, len(item_ids))),
+        labels if group_column else None,
+        pa.chunked_array(ids, type=pa.string()).combine_chunks(),
+        [f"{where}: {p}" for p in problems],
+        total,
+    )
 
 
-def partition_summary(rows: PartitionRows) -> tuple[int, FloatArray, dict[str, int]]:
-    """Rows, each item's highest code (NaN: none answered) and the count of each group."""
-    with np.errstate(all="ignore"):
-        top = np.nanmax(rows.responses, axis=0) if rows.responses.shape[0] else np.full(rows.responses.shape[1], np.nan)
-    counts: dict[str, int] = {}
+def census(rows: PartitionRows) -> Census:
+    """The partition's problems, ids, group sizes and answers per item and code."""
+    sizes: dict[str, int] = {}
     for g in rows.groups or ():
-        counts[g] = counts.get(g, 0) + 1
-    return rows.responses.shape[0], top, counts
+        sizes[g] = sizes.get(g, 0) + 1
+    counts = category_counts(rows.responses) if not rows.total else np.zeros((rows.responses.shape[1], 1), np.int64)
+    return Census(rows.responses.shape[0], rows.problems, rows.total, [rows.ids], sizes, counts)
+
+
+def draw_sample(rows: PartitionRows, *, rates: dict[str, float], seed: int, index: int) -> PartitionRows:
+    """The partition's rows kept with their group's probability (one stream per partition and seed)."""
+    if all(r >= 1.0 for r in rates.values()):
+        return rows
+    n = rows.responses.shape[0]
+    rate = (
+        np.full(n, rates.get(SINGLE_GROUP, 1.0)) if rows.groups is None else np.array([rates[g] for g in rows.groups])
+    )
+    keep = np.random.default_rng([seed, index]).random(n) < rate
+    at = np.flatnonzero(keep)
+    import pyarrow as pa
+
+    return PartitionRows(
+        rows.responses[at],
+        None if rows.groups is None else [rows.groups[i] for i in at],
+        rows.ids.take(pa.array(at, type=pa.int64())),
+    )
+
+
+@dataclass(frozen=True)
+class Recoding:
+    """How a partition becomes the rows a fit reads: items kept, categories merged, cells not administered."""
+
+    columns: IntArray  # positions of the kept items among the file's items
+    category_maps: dict[int, list[int]]  # kept position -> answer code -> merged code
+    group_names: tuple[str, ...]  # fit order (reference first); one name without a group column
+    policy: PolicyTable | None = None  # excluded cells are not administered for their group
+
+
+def recode_partition(rows: PartitionRows, *, recoding: Recoding) -> tuple[FloatArray, IntArray]:
+    """The partition's responses as the fit reads them, and each row's group position."""
+    x = rows.responses[:, recoding.columns]
+    for j, mapping in recoding.category_maps.items():
+        answered = ~np.isnan(x[:, j])
+        x[answered, j] = np.asarray(mapping, dtype=np.float64)[x[answered, j].astype(np.int64)]
+    index = np.zeros(x.shape[0], dtype=np.int64)
+    if rows.groups is not None:
+        position = {g: i for i, g in enumerate(recoding.group_names)}
+        index = np.fromiter((position[g] for g in rows.groups), dtype=np.int64, count=len(rows.groups))
+    if recoding.policy is not None:
+        x = recoding.policy.administered(x, index)
+    return x, index
 
 
 def prepare_partition(
-    rows: PartitionRows, *, n_categories: IntArray, group_names: Sequence[str], compress: bool
+    recoded: tuple[FloatArray, IntArray], *, n_categories: IntArray, n_groups: int, compress: bool
 ) -> list[GroupData]:
     """The partition's rows prepared for the E-step, one :class:`GroupData` per group (empty where none)."""
-    position = {g: i for i, g in enumerate(group_names)}
-    index = np.zeros(rows.responses.shape[0], dtype=np.int64)
-    if rows.groups is not None:
-        index = np.fromiter((position[g] for g in rows.groups), dtype=np.int64, count=len(rows.groups))
-    return prepare_groups(rows.responses, n_categories, index, len(group_names), compress=compress)
+    x, index = recoded
+    return prepare_groups(x, n_categories, index, n_groups, compress=compress)
 
 
-def partition_start(rows: PartitionRows, *, n_categories: IntArray) -> StartStatistics:
+def partition_start(recoded: tuple[FloatArray, IntArray], *, n_categories: IntArray) -> StartStatistics:
     """The partition's sums for the starting values."""
-    return StartStatistics.of(rows.responses, n_categories)
+    return StartStatistics.of(recoded[0], n_categories)
 
 
 def partition_expected(
@@ -168,6 +245,243 @@ class DaskGroups:
         return sum(self.client.gather(shares))
 
 
+class DaskTable:
+    """A response file read and checked by a cluster's workers, which keep its partitions.
+
+    :meth:`open` reads and checks it (every problem of every partition in one :class:`InputError`);
+    :meth:`sample` draws the rows the client's evidence rests on; :meth:`final_fit` (the pipeline's
+    ``WholeTable``) and :meth:`fit` calibrate on every row. Call :meth:`release` when done.
+    """
+
+    def __init__(  # noqa: PLR0913 - what open() found, kept together
+        self,
+        client: Any,
+        path: Path,
+        rows: list[Any],
+        partitions: list[Partition],
+        item_ids: tuple[str, ...],
+        data: ResponseData,
+        sizes: dict[str, int],
+    ) -> None:
+        self.client, self.path, self.rows, self.partitions = client, path, rows, partitions
+        self.item_ids, self.template, self._sizes = item_ids, data, sizes
+        self._sample_record: str | None = None
+        self.answered: dict[str, int] = {}  # answers to each item in the whole file
+
+    @classmethod
+    def open(  # noqa: PLR0913 - the cluster, the file and keyword-only options of the reader
+        cls,
+        client: Any,
+        path: Path | str,
+        *,
+        id_column: str = "id",
+        group_column: str | None = None,
+        item_spec: Sequence[ItemSpec] | None = None,
+        dichotomous_model: str = MODEL_2PL,
+        polytomous_model: str = MODEL_GRM,
+        partition_bytes: int = PARTITION_BYTES,
+        partition_rows: int = PARTITION_ROWS,
+    ) -> DaskTable:
+        """Read and check ``path`` on the cluster as ``read_responses`` reads a file in this process."""
+        path = Path(path)
+        columns = read_header(path)
+        check_required_columns(path, columns, id_column, group_column)
+        item_ids, declared, notes = select_items(columns, path.name, id_column, group_column, item_spec)
+        partitions = plan_partitions(path, partition_bytes=partition_bytes, partition_rows=partition_rows)
+        rows = client.map(
+            read_partition,
+            partitions,
+            path=path.resolve(),
+            item_ids=item_ids,
+            id_column=id_column,
+            group_column=group_column,
+            pure=False,
+        )
+        found: list[Census] = client.gather(client.map(census, rows, pure=False))
+        total = sum(c.total for c in found)
+        if total:
+            problems = [p for c in found for p in c.problems]
+            raise InputError(path.name, problems[:MAX_PROBLEMS], total=total)
+        if not any(c.n_rows for c in found):
+            raise InputError(path.name, ["the file has a header but no respondents"])
+        problems, total = repeated_ids(path, partitions, [c.ids for c in found])
+        if total:
+            raise InputError(path.name, problems, total=total)
+        width = max(c.counts.shape[1] for c in found)
+        counts = sum(np.pad(c.counts, ((0, 0), (0, width - c.counts.shape[1]))) for c in found)
+
+        def locate(j: int, codes: Sequence[int]) -> tuple[list[tuple[str, int]], int]:
+            places = [
+                (p.describe(path), next(code for code in codes if code < c.counts.shape[1] and c.counts[j, code]))
+                for p, c in zip(partitions, found, strict=True)
+                if any(code < c.counts.shape[1] and c.counts[j, code] for code in codes)
+            ]
+            return places[:3], int(sum(counts[j, code] for code in codes))
+
+        n_categories, models, category_problems = categories_and_models(
+            counts, item_ids, declared, (dichotomous_model, polytomous_model), locate
+        )
+        if category_problems:
+            raise InputError(path.name, category_problems[:MAX_PROBLEMS], total=len(category_problems))
+        sizes: dict[str, int] = {}
+        for c in found:
+            for g, n in c.sizes.items():
+                sizes[g] = sizes.get(g, 0) + n
+        template = ResponseData(
+            ids=(),
+            item_ids=tuple(item_ids),
+            responses=np.zeros((0, len(item_ids))),
+            n_categories=n_categories,
+            models=models,
+            groups=() if group_column else None,
+            source=path.name,
+            source_sha256=file_sha256(path),
+            notes=tuple(notes),
+            header_lines=0,
+            held_guessing={i: s.guessing for i, s in declared.items() if s.guessing is not None},
+        )
+        n_rows = sum(c.n_rows for c in found)
+        table = cls(client, path, rows, partitions, tuple(item_ids), template, sizes or {SINGLE_GROUP: n_rows})
+        table.answered = {item: int(n) for item, n in zip(item_ids, counts.sum(axis=1), strict=True)}
+        return table
+
+    @property
+    def n_persons(self) -> int:
+        """Respondents in the file."""
+        return sum(self._sizes.values())
+
+    @property
+    def group_sizes(self) -> dict[str, int]:
+        """Respondents per group (one group named as the pipeline names it without a group column)."""
+        return dict(self._sizes)
+
+    @property
+    def sample_record(self) -> str | None:
+        """How the last :meth:`sample` was drawn (None: it held every respondent)."""
+        return self._sample_record
+
+    def largest_group(self) -> str:
+        """The group with most respondents (ties: alphabetical), the default reference."""
+        return max(sorted(self._sizes), key=lambda g: self._sizes[g])
+
+    def sample(self, per_group: int | None, *, seed: int = 0) -> ResponseData:
+        """Every row of a group with at most ``per_group`` respondents (None: no limit), else a random
+        sample of about ``per_group`` of them (each row kept with probability ``per_group / size``), in
+        file order, as one in-memory :class:`ResponseData`."""
+        rates = {g: 1.0 if per_group is None else min(1.0, per_group / n) for g, n in self._sizes.items()}
+        parts: list[PartitionRows] = self.client.gather(
+            [
+                self.client.submit(draw_sample, rows, rates=rates, seed=seed, index=p.index, pure=False)
+                for rows, p in zip(self.rows, self.partitions, strict=True)
+            ]
+        )
+        import pyarrow as pa
+
+        ids = pa.chunked_array([p.ids for p in parts], type=pa.string())
+        data = self.template
+        sampled = any(r < 1.0 for r in rates.values())
+        self._sample_record = (
+            f"at most about {per_group:,} respondents per group, each group's rows drawn with probability "
+            f"{per_group:,} / its size, seed {seed}"
+            if sampled
+            else None
+        )
+        return ResponseData(
+            ids=tuple(ids.to_pylist()),
+            item_ids=data.item_ids,
+            responses=np.concatenate([p.responses for p in parts]),
+            n_categories=data.n_categories,
+            models=data.models,
+            groups=None if data.groups is None else tuple(g for p in parts for g in p.groups or ()),
+            source=data.source,
+            source_sha256=data.source_sha256,
+            notes=data.notes,
+            header_lines=0,
+            held_guessing=data.held_guessing,
+        )
+
+    def final_fit(  # noqa: PLR0913 - the prepared sample, the policy and the fit's options
+        self,
+        prepared: PreparedData,
+        policy: PolicyTable,
+        *,
+        settings: EMSettings,
+        group_free: np.ndarray,
+        start: np.ndarray | None,
+        progress: ProgressCallback | None,
+    ) -> MultiGroupFit:
+        """The calibration under ``policy`` on every row, recoded as ``prepared`` recoded the sample."""
+        recoding = Recoding(
+            columns=np.array([self.item_ids.index(i) for i in prepared.item_ids], dtype=np.int64),
+            category_maps=prepared.category_maps,
+            group_names=tuple(prepared.group_names),
+            policy=policy,
+        )
+        return self.fit(
+            recoding,
+            prepared.k,
+            prepared.models,
+            settings=settings,
+            group_free=group_free,
+            start=start,
+            progress=None if progress is None else (lambda it, ll: progress("final", it, ll)),
+        )
+
+    def fit(  # noqa: PLR0913 - the recoding and keyword-only options of calibrate_groups
+        self,
+        recoding: Recoding,
+        n_categories: IntArray,
+        models: Sequence[str],
+        *,
+        settings: EMSettings,
+        group_free: np.ndarray | None = None,
+        start: np.ndarray | None = None,
+        progress: Any = None,
+    ) -> MultiGroupFit:
+        """Multiple-group marginal ML of the recoded rows, the E-step and the SEs summed on the cluster."""
+        from dask.distributed import wait
+
+        client, n_groups = self.client, len(recoding.group_names)
+        recoded = client.map(recode_partition, self.rows, recoding=recoding, pure=False)
+        prepared = client.map(
+            prepare_partition,
+            recoded,
+            n_categories=n_categories,
+            n_groups=n_groups,
+            compress=settings.compress_patterns,
+            pure=False,
+        )
+        if start is None:
+            stats = client.gather(client.map(partition_start, recoded, n_categories=n_categories, pure=False))
+            merged = stats[0]
+            for more in stats[1:]:
+                merged = merged.merge(more)
+            table = slot_table(merged.values(n_categories, tuple(models)))
+            start = np.broadcast_to(table, (n_groups, *table.shape)).copy()
+        wait(prepared)  # held on the workers from here (not gathered); the recoded copies can go
+        del recoded
+        try:
+            return calibrate_groups(
+                np.zeros((0, len(n_categories))),
+                n_categories,
+                np.zeros(0, dtype=np.int64),
+                n_groups,
+                models=tuple(models),
+                settings=settings,
+                group_free=group_free,
+                start=start,
+                progress=progress,
+                warn=False,
+                source=DaskGroups(client, prepared, n_groups, self.n_persons),
+            )
+        finally:
+            del prepared
+
+    def release(self) -> None:
+        """Let the workers drop the partitions."""
+        self.rows = []
+
+
 @dataclass(frozen=True)
 class DaskCalibration:
     """A calibration fitted on Dask: the fit, the items and groups in its order, and the partitions read."""
@@ -193,67 +507,30 @@ def calibrate_file_on_dask(  # noqa: PLR0913 - the cluster, the file and keyword
 ) -> DaskCalibration:
     """Multiple-group marginal ML of every item column of ``path`` with the E-step on ``client``'s cluster.
 
-    Categories are each item's highest code + 1 over the whole file; ``models`` default to 2PL for two
-    categories and graded otherwise. Groups: the reference (default: the largest) first, then the others
-    in sorted order. With no group column, one group.
+    Items, categories and models as ``read_responses`` judges them (``models`` overrides the models).
+    Groups: the reference (default: the largest) first, then the others in sorted order. With no group
+    column, one group. No checks beyond the file's (see the pipeline for those).
     """
-    path = Path(path)
     settings = settings or EMSettings()
-    item_ids = tuple(c for c in read_header(path) if c not in (id_column, group_column))
-    partitions = plan_partitions(path, partition_bytes=partition_bytes, partition_rows=partition_rows)
-    rows = client.map(
-        read_partition,
-        partitions,
-        path=path.resolve(),
-        item_ids=item_ids,
+    table = DaskTable.open(
+        client,
+        path,
         id_column=id_column,
         group_column=group_column,
-        pure=False,
+        partition_bytes=partition_bytes,
+        partition_rows=partition_rows,
     )
-    summaries = client.gather(client.map(partition_summary, rows, pure=False), errors="raise")
-    n_persons = sum(s[0] for s in summaries)
-    with np.errstate(all="ignore"):
-        top = np.nanmax(np.stack([s[1] for s in summaries]), axis=0)
-    if np.isnan(top).any():
-        empty = [i for i, t in zip(item_ids, top, strict=True) if np.isnan(t)]
-        raise InputError(path.name, [f"item {i!r}: no respondent answered it" for i in empty])
-    k = np.maximum(top.astype(np.int64) + 1, 2)
-    sizes: dict[str, int] = {}
-    for s in summaries:
-        for g, n in s[2].items():
-            sizes[g] = sizes.get(g, 0) + n
-    names = sorted(sizes) or ["all"]
-    reference = reference_group or (max(sorted(sizes), key=lambda g: sizes[g]) if sizes else "all")
-    if reference not in names:
-        raise InputError(path.name, [f"reference group {reference!r} is not among the groups {', '.join(names)}"])
-    group_names = (reference, *(g for g in names if g != reference))
-    models = tuple(models) if models else tuple("2pl" if kk == 2 else "grm" for kk in k)
-    prepared = client.map(
-        prepare_partition,
-        rows,
-        n_categories=k,
-        group_names=group_names if group_column else ("all",),
-        compress=settings.compress_patterns,
-        pure=False,
-    )
-    stats = client.gather(client.map(partition_start, rows, n_categories=k, pure=False))
-    merged = stats[0]
-    for more in stats[1:]:
-        merged = merged.merge(more)
-    start = slot_table(merged.values(k, models))
-    from dask.distributed import wait
-
-    wait(prepared)  # held on the workers from here (not gathered); the raw partitions can go
-    del rows
-    n_groups = len(group_names) if group_column else 1
-    fit = calibrate_groups(
-        np.zeros((0, len(item_ids))),
-        k,
-        np.zeros(0, dtype=np.int64),
-        n_groups,
-        models=models,
-        settings=settings,
-        start=np.broadcast_to(start, (n_groups, *start.shape)).copy(),
-        source=DaskGroups(client, prepared, n_groups, n_persons),
-    )
-    return DaskCalibration(fit, item_ids, group_names if group_column else ("all",), k, len(partitions))
+    try:
+        names = sorted(table.group_sizes)
+        reference = reference_group or table.largest_group()
+        if reference not in names:
+            raise InputError(
+                table.path.name, [f"reference group {reference!r} is not among the groups {', '.join(names)}"]
+            )
+        group_names = (reference, *(g for g in names if g != reference))
+        k = table.template.n_categories
+        recoding = Recoding(np.arange(len(table.item_ids)), {}, group_names)
+        fit = table.fit(recoding, k, tuple(models) if models else table.template.models, settings=settings)
+    finally:
+        table.release()
+    return DaskCalibration(fit, table.item_ids, group_names, k, len(table.partitions))

@@ -13,7 +13,6 @@ cluster, or a shared file system).
 
 from __future__ import annotations
 
-import contextlib
 import functools
 import os
 import shutil
@@ -30,6 +29,7 @@ import numpy as np
 from calibration.bundle import Bundle
 from calibration.bundle.canonical import from_bytes, to_bytes
 from calibration.bundle.scorer import BundleScorer, UnknownGroup
+from calibration.distributed.cluster import dask_client, repeated_ids
 from calibration.errors import InputError
 from calibration.io import MAX_PROBLEMS, Partition, ScoringInput, plan_partitions, row_label
 from calibration.io.scores import SCORE_COLUMNS, score_rows, score_table
@@ -197,7 +197,7 @@ def score_file_on_dask(  # noqa: PLR0913 - the file, the bundle, the output and 
     columns, method, unknown groups to the reference). Raises :class:`InputError` with every problem
     of every partition (the output untouched), as the in-process command does for the whole file.
     """
-    from dask.distributed import Client, LocalCluster, as_completed
+    from dask.distributed import as_completed
 
     path, out = Path(path), Path(out)
     scorer = BundleScorer(bundle)
@@ -214,13 +214,7 @@ def score_file_on_dask(  # noqa: PLR0913 - the file, the bundle, the output and 
     parts = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".parts", dir=out.parent))
     job = ScoreJob(path=path.resolve(), bundle_bytes=to_bytes(bundle), parts=parts.resolve(), csv=csv, **options)
     try:
-        with contextlib.ExitStack() as stack:  # a local cluster of our own is closed however the job ends
-            cluster = None
-            if not scheduler:
-                cluster = stack.enter_context(
-                    LocalCluster(n_workers=n_workers, threads_per_worker=1, dashboard_address=None)
-                )
-            client = stack.enter_context(Client(scheduler or cluster))
+        with dask_client(scheduler, n_workers) as client:  # a local cluster of our own is closed however it ends
             token = uuid.uuid4().hex[:8]
             futures = [
                 client.submit(score_partition, job, p, key=f"equitheta-score-{token}-{p.index}", pure=False)
@@ -243,27 +237,9 @@ def _raise_problems(path: Path, partitions: list[Partition], outcomes: list[Part
     total = sum(o.total for o in outcomes)
     if total:
         raise InputError(path.name, problems[:MAX_PROBLEMS], total=total)
-    import pyarrow as pa
-    import pyarrow.compute as pc
-
-    chunks = [ids for o in outcomes for ids in o.ids]
-    if not chunks:
-        return
-    every = pa.chunked_array(chunks, type=pa.string())
-    counts = pc.value_counts(every)
-    repeated = counts.filter(pc.greater(counts.field("counts"), 1)).field("values")
-    if len(repeated) == 0:
-        return
-    starts = np.cumsum([0] + [sum(len(c) for c in o.ids) for o in outcomes])
-    for respondent in repeated.to_pylist()[:MAX_PROBLEMS]:
-        places = np.flatnonzero(pc.equal(every, respondent).to_numpy(zero_copy_only=False))
-        where = []
-        for at in places[:2]:
-            o = int(np.searchsorted(starts, at, side="right") - 1)
-            part = partitions[outcomes[o].index]
-            where.append(f"{part.describe(path)}, {row_label(part.first_row + int(at - starts[o]), 0)}")
-        problems.append(f"id {respondent!r} appears {len(places)} times: {' and '.join(where)}")
-    raise InputError(path.name, problems, total=len(repeated))
+    problems, total = repeated_ids(path, [partitions[o.index] for o in outcomes], [o.ids for o in outcomes])
+    if total:
+        raise InputError(path.name, problems, total=total)
 
 
 def _finish(out: Path, parts: Path, count: int, *, csv: bool) -> None:

@@ -3,18 +3,14 @@
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 
 from calibration.errors import InputError
-
-if TYPE_CHECKING:
-    pass
-
 from calibration.io.tables import (
     MAX_PROBLEMS,
     CodesNotTyped,
@@ -124,31 +120,8 @@ def read_responses(
     table = open_respondent_table(path, id_column, group_column)
     columns, header = table.columns, table.header_lines
     source = path.name
-    problems: list[str] = []
-
-    reserved = {id_column} | ({group_column} if group_column else set())
-    notes: list[str] = []
-    if item_spec is None:
-        item_ids = [c for c in columns if c not in reserved]
-        declared: dict[str, ItemSpec] = {c: ItemSpec(c) for c in item_ids}
-    else:
-        declared = {s.item: s for s in item_spec if s.include}
-        excluded = [s.item for s in item_spec if not s.include]
-        missing = [s for s in declared if s not in columns]
-        if missing:
-            problems.extend(f"item {m!r} from the item spec has no column in the file" for m in missing)
-        item_ids = [c for c in columns if c in declared]
-        ignored = [c for c in columns if c not in reserved and c not in declared]
-        if ignored:
-            notes.append(f"columns not in the item spec were ignored: {', '.join(ignored)}")
-        if excluded:
-            notes.append(f"items excluded by the item spec: {', '.join(excluded)}")
-    if not item_ids:
-        problems.append("no item columns: every column other than the id column is read as an item")
-    if problems:
-        raise InputError(source, problems)
-
-    trimmed, problems = _trimmed_ids(table, id_column)
+    item_ids, declared, notes = select_items(columns, source, id_column, group_column, item_spec)
+    trimmed, problems = trimmed_ids(table, id_column)
     ids = trimmed.to_pylist()
     duplicates = _duplicate_ids(trimmed, id_column, header)
     responses, code_problems, bad_cells = parse_codes(table, item_ids)
@@ -157,8 +130,12 @@ def read_responses(
         total = len(problems) - len(code_problems) + bad_cells
         raise InputError(source, problems[:MAX_PROBLEMS], total=total)
 
-    n_categories, models, category_problems = _categories_and_models(
-        responses, item_ids, declared, header, (dichotomous_model, polytomous_model)
+    n_categories, models, category_problems = categories_and_models(
+        category_counts(responses),
+        item_ids,
+        declared,
+        (dichotomous_model, polytomous_model),
+        _cells_of(responses, header),
     )
     if category_problems:
         raise InputError(source, category_problems[:MAX_PROBLEMS], total=len(category_problems))
@@ -179,8 +156,42 @@ def read_responses(
     )
 
 
+def select_items(
+    columns: Sequence[str],
+    source: str,
+    id_column: str,
+    group_column: str | None,
+    item_spec: Sequence[ItemSpec] | None,
+) -> tuple[list[str], dict[str, ItemSpec], list[str]]:
+    """The item columns a calibration reads (every other column, or the spec's included items), what is
+    declared about each, and notes on columns ignored or excluded; raises naming spec items with no column."""
+    reserved = {id_column} | ({group_column} if group_column else set())
+    notes: list[str] = []
+    problems: list[str] = []
+    if item_spec is None:
+        item_ids = [c for c in columns if c not in reserved]
+        declared: dict[str, ItemSpec] = {c: ItemSpec(c) for c in item_ids}
+    else:
+        declared = {s.item: s for s in item_spec if s.include}
+        excluded = [s.item for s in item_spec if not s.include]
+        missing = [s for s in declared if s not in columns]
+        if missing:
+            problems.extend(f"item {m!r} from the item spec has no column in the file" for m in missing)
+        item_ids = [c for c in columns if c in declared]
+        ignored = [c for c in columns if c not in reserved and c not in declared]
+        if ignored:
+            notes.append(f"columns not in the item spec were ignored: {', '.join(ignored)}")
+        if excluded:
+            notes.append(f"items excluded by the item spec: {', '.join(excluded)}")
+    if not item_ids:
+        problems.append("no item columns: every column other than the id column is read as an item")
+    if problems:
+        raise InputError(source, problems)
+    return item_ids, declared, notes
+
+
 def _duplicate_ids(trimmed: Any, id_column: str, header_lines: int) -> list[str]:
-    """Every repeat of an id (trimmed ids, as :func:`_trimmed_ids` gives them), naming its row and the row
+    """Every repeat of an id (trimmed ids, as :func:`trimmed_ids` gives them), naming its row and the row
     it was first seen at (Arrow finds them; few are listed)."""
     import pyarrow as pa
     import pyarrow.compute as pc
@@ -206,7 +217,7 @@ def _duplicate_ids(trimmed: Any, id_column: str, header_lines: int) -> list[str]
     return problems
 
 
-def _trimmed_ids(table: TextTable, id_column: str) -> tuple[Any, list[str]]:
+def trimmed_ids(table: TextTable, id_column: str) -> tuple[Any, list[str]]:
     """A table's ids as a trimmed Arrow string array; an empty id is a problem naming its row."""
     import pyarrow as pa
     import pyarrow.compute as pc
@@ -342,7 +353,7 @@ class ScoringInput:
         n_rows = 0
         for table in tables:
             n_rows += table.n_rows
-            ids, batch_problems = _trimmed_ids(table, self.id_column)
+            ids, batch_problems = trimmed_ids(table, self.id_column)
             id_chunks.append(ids)
             groups = None if self.group_column is None else table.text(self.group_column)
             if groups is not None and self.group_column is not None:
@@ -428,40 +439,67 @@ def read_for_scoring(
     )
 
 
-def _categories_and_models(
-    responses: FloatArray,
-    item_ids: list[str],
+CellLocator = Callable[[int, Sequence[int]], tuple[list[tuple[str, int]], int]]
+"""``(item position, codes) -> (up to 3 (place, code) pairs where the item holds one of the codes, how many
+cells hold them)``: a row of an in-memory table, or a partition of a file read on a cluster."""
+
+
+def category_counts(responses: FloatArray) -> IntArray:
+    """Answers per item and category code: (n_items, highest code + 1), zeros where nobody answered."""
+    answered = ~np.isnan(responses)
+    top = int(np.nanmax(responses)) + 1 if answered.any() else 1
+    counts = np.zeros((responses.shape[1], top), dtype=np.int64)
+    for j in range(responses.shape[1]):
+        counts[j] = np.bincount(responses[answered[:, j], j].astype(np.int64), minlength=top)
+    return counts
+
+
+def _cells_of(responses: FloatArray, header_lines: int) -> CellLocator:
+    """The rows of an in-memory table holding some codes of an item, as messages name them."""
+
+    def locate(j: int, codes: Sequence[int]) -> tuple[list[tuple[str, int]], int]:
+        column = responses[:, j]
+        rows = np.flatnonzero(np.isin(column, codes))
+        return [(row_label(int(r), header_lines), int(column[r])) for r in rows[:3]], int(rows.size)
+
+    return locate
+
+
+def categories_and_models(
+    counts: IntArray,
+    item_ids: Sequence[str],
     declared: dict[str, ItemSpec],
-    header_lines: int,
     defaults: tuple[str, str],
+    locate: CellLocator,
 ) -> tuple[IntArray, tuple[str, ...], list[str]]:
-    """Each item's categories and model (the spec's, else the default for right/wrong or polytomous items)."""
+    """Each item's categories and model (the spec's, else the default for right/wrong or polytomous items),
+    from the answers per item and code (:func:`category_counts`, or their sum over a file's partitions)."""
     problems: list[str] = []
     n_categories = np.zeros(len(item_ids), dtype=np.int64)
     models: list[str] = []
     for j, item in enumerate(item_ids):
-        column = responses[:, j]
-        answered = column[~np.isnan(column)]
+        seen = np.flatnonzero(counts[j])
         spec = declared[item]
-        if answered.size == 0:
+        if seen.size == 0:
             problems.append(f"item {item!r}: no respondent answered it")
             models.append(MODEL_2PL)
             continue
-        top = int(answered.max())
+        top = int(seen[-1])
         k = spec.n_categories if spec.n_categories is not None else max(top + 1, 2)
         if spec.n_categories is not None and top >= spec.n_categories:
-            row = int(np.flatnonzero(column >= spec.n_categories)[0])
+            places, _ = locate(j, [int(c) for c in seen if c >= spec.n_categories])
+            place, code = places[0]
             problems.append(
-                f"{row_label(row, header_lines)}, column {item!r}: category code {int(column[row])} is outside "
+                f"{place}, column {item!r}: category code {code} is outside "
                 f"the item's categories 0..{spec.n_categories - 1} (item spec)"
             )
         else:
-            counts = np.bincount(answered.astype(np.int64), minlength=k)
-            unseen = [c for c in range(k) if counts[c] == 0]
+            used = np.zeros(k, dtype=np.int64)
+            used[: top + 1] = counts[j, : top + 1]
             # An item with a single observed category has no variance: the pipeline reports and
             # leaves it out. An unobserved category inside the range cannot be estimated.
-            if unseen and np.count_nonzero(counts) > 1:
-                problems.append(_unused_categories_problem(item, column, counts, header_lines))
+            if np.count_nonzero(used) > 1 and (used == 0).any():
+                problems.append(_unused_categories_problem(item, j, used, locate))
         n_categories[j] = k
         model = spec.model or (defaults[0] if k == 2 else defaults[1])
         if model in RIGHT_WRONG_MODELS and k != 2:
@@ -484,7 +522,7 @@ def _code_ranges(codes: list[int]) -> str:
     return ", ".join(parts)
 
 
-def _unused_categories_problem(item: str, column: FloatArray, counts: IntArray, header_lines: int) -> str:
+def _unused_categories_problem(item: str, j: int, counts: IntArray, locate: CellLocator) -> str:
     """Unused categories, or a code far above the rest that looks like a missing-data code (9, 99, ...)."""
     seen = [int(c) for c in np.flatnonzero(counts)]
     unseen = [c for c in range(counts.size) if counts[c] == 0]
@@ -493,9 +531,9 @@ def _unused_categories_problem(item: str, column: FloatArray, counts: IntArray, 
         low_run += 1
     outliers = [c for c in seen if c >= low_run]
     if low_run >= 2 and len(unseen) >= MISSING_CODE_GAP:
-        rows = np.flatnonzero(np.isin(column, outliers))
-        listed = ", ".join(row_label(int(r), header_lines) for r in rows[:3])
-        more = f" and {rows.size - 3} more" if rows.size > 3 else ""
+        places, total = locate(j, outliers)
+        listed = ", ".join(place for place, _ in places)
+        more = f" and {total - len(places)} more" if total > len(places) else ""
         return (
             f"item {item!r}: code {', '.join(map(str, outliers))} ({listed}{more}) lies far above the item's "
             f"other codes 0..{low_run - 1}: it looks like a missing-data code; leave such cells empty "

@@ -33,6 +33,7 @@ from calibration.io import ResponseData, finite_or_none
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import GUESSING_SLOT, MODEL_3PL
 from calibration.irt.reliability import information_curve
+from calibration.pipeline.fits import WholeTable
 from calibration.pipeline.link import LinkStage
 from calibration.pipeline.policy import PolicyTable
 from calibration.pipeline.prepare import PreparedData
@@ -53,6 +54,14 @@ class CalibrationRun:
     name: str
     settings: PipelineSettings
     prepared: PreparedData
+    whole: WholeTable | None = None  # the whole table when ``data`` is a sample of it
+
+    @property
+    def group_sizes(self) -> np.ndarray:
+        """Respondents per group (in the prepared order) of the table the final calibration ran on."""
+        if self.whole is None:
+            return np.bincount(self.prepared.group_index, minlength=self.prepared.n_groups)
+        return np.array([self.whole.group_sizes[g] for g in self.prepared.group_names], dtype=np.int64)
 
 
 @dataclass(frozen=True)
@@ -74,7 +83,7 @@ def build_bundle(run: CalibrationRun, findings: Findings) -> Bundle:
     data, name, settings, prepared = run.data, run.name, run.settings, run.prepared
     fit = findings.fit
     group_names = prepared.group_names
-    sizes = np.bincount(prepared.group_index, minlength=prepared.n_groups)
+    sizes = run.group_sizes
     held = {} if findings.link is None else findings.link.held_entries
     curve = information_curve(fit.group_params(0))
     return Bundle(
@@ -85,13 +94,13 @@ def build_bundle(run: CalibrationRun, findings: Findings) -> Bundle:
         provenance=Provenance(
             data_sha256=data.source_sha256,
             data_source=data.source,
-            n_respondents=data.n_persons,
+            n_respondents=int(sizes.sum()),
             n_respondents_by_group={g: int(sizes[i]) for i, g in enumerate(group_names)},
-            settings=_settings_record(settings, prepared),
+            settings=_settings_record(settings, prepared, None if run.whole is None else run.whole.sample_record),
             notes=list(data.notes),
         ),
         metric=_metric(fit, group_names, sizes),
-        items=_item_entries(prepared, fit, findings.policy, held),
+        items=_item_entries(prepared, fit, findings.policy, held, {} if run.whole is None else run.whole.answered),
         excluded_items=prepared.excluded_items,
         anchors=findings.anchors,
         scoring=_scoring(settings, prepared, findings.link),
@@ -128,9 +137,14 @@ def _scoring(settings: PipelineSettings, prepared: PreparedData, link: LinkStage
 
 
 def _item_entries(
-    prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTable, held: dict[int, ItemEntry]
+    prepared: PreparedData,
+    fit: MultiGroupFit,
+    policy: PolicyTable,
+    held: dict[int, ItemEntry],
+    answered: dict[str, int],
 ) -> list[ItemEntry]:
-    """Every item's entry; an item held at its published parameters (a fixed-parameter link) keeps their SEs."""
+    """Every item's entry; an item held at its published parameters (a fixed-parameter link) keeps their SEs.
+    ``answered``: each item's answers in the whole table when the prepared data are a sample of it."""
     x, k, group_names = prepared.x, prepared.k, prepared.group_names
     reference = fit.group_params(0)
     b_se = threshold_se(reference, fit.layout.index[0], fit.covariance)
@@ -169,7 +183,7 @@ def _item_entries(
                 guessing=held[j].guessing if j in held else slot_guessing(fit.tables[0, j], prepared.models[j]),
                 guessing_se=held[j].guessing_se if j in held else _guessing_se(fit, j, prepared.models[j]),
                 category_map=prepared.category_maps.get(j),
-                n_responses=int(np.sum(~np.isnan(x[:, j]))),
+                n_responses=answered[item] if answered else int(np.sum(~np.isnan(x[:, j]))),
                 mean_score=finite_or_none(float(np.nanmean(x[:, j]))),
                 item_rest_correlation=finite_or_none(float(classical.item_rest[j])),
                 policy=by_group,
@@ -178,9 +192,14 @@ def _item_entries(
     return items
 
 
-def _settings_record(settings: PipelineSettings, prepared: PreparedData) -> dict[str, str | int | float | bool | None]:
-    """The settings as provenance records them; with 3PL items, their asymptote prior and any held asymptotes."""
+def _settings_record(
+    settings: PipelineSettings, prepared: PreparedData, sample: str | None
+) -> dict[str, str | int | float | bool | None]:
+    """The settings as provenance records them; with 3PL items, their asymptote prior and any held asymptotes;
+    the evidence sample when the evidence rests on one."""
     record = settings.describe()
+    if sample is not None:
+        record["evidence_sample"] = sample
     if MODEL_3PL in prepared.models:
         record["guessing_prior"] = GUESSING_PRIOR.describe()
         held = [f"{i}={g:g}" for i, g in zip(prepared.item_ids, prepared.held_guessing, strict=False) if g == g]

@@ -14,6 +14,9 @@ With one group: checks, single-group EM, quality. With several groups (a group c
 8. with a link to an earlier bundle: drift screening of the common items and the calibration put on that
    bundle's scale (calibration.pipeline.link);
 9. quality by group.
+
+With ``whole`` the response table is a random sample of a larger one held elsewhere (a Dask cluster,
+:mod:`calibration.distributed`): steps 1-6 and 9 run on the sample, step 7 on every respondent.
 """
 
 from __future__ import annotations
@@ -31,7 +34,7 @@ from calibration.io import ResponseData
 from calibration.irt.likelihood import with_single_threaded_blas
 from calibration.pipeline.build import CalibrationRun, Findings, build_bundle
 from calibration.pipeline.dif import SINGLE_GROUP_ANCHORS, DifStage, ProgressCallback, run_dif_stage
-from calibration.pipeline.fits import quiet_fit
+from calibration.pipeline.fits import WholeTable, quiet_fit
 from calibration.pipeline.invariance import invariance_ladder
 from calibration.pipeline.link import LinkRequest, check_link_request, link_reference_group, run_link_stage
 from calibration.pipeline.policy import PolicyTable
@@ -60,13 +63,17 @@ def calibrate_data(  # noqa: PLR0913 - the data and keyword-only options
     overrides: Sequence[PolicyOverride] = (),
     progress: ProgressCallback | None = None,
     link: LinkRequest | None = None,
+    whole: WholeTable | None = None,
 ) -> CalibrationOutcome:
     """Calibrate a response table (one or several groups) and build the unpublished bundle.
 
     With ``link`` the bundle is put on an earlier bundle's scale (its reference group defaults to the
-    parent's; see :mod:`calibration.pipeline.link`). BLAS runs single-threaded throughout.
+    parent's; see :mod:`calibration.pipeline.link`). With ``whole``, ``data`` is a sample of that table
+    and the final calibration runs on every respondent. BLAS runs single-threaded throughout.
     """
     settings = settings or PipelineSettings()
+    if whole is not None and link is not None:
+        raise CalibrationInputError("a link to an earlier version needs the whole table in this process")
     if link is not None:
         check_link_request(link, settings)
         reference_group = link_reference_group(data, link, reference_group)
@@ -84,7 +91,7 @@ def calibrate_data(  # noqa: PLR0913 - the data and keyword-only options
         ladder = invariance_ladder(prepared, settings.em, stage.scalar, policy, stage.outcome)
     # A fixed-parameter link refits with SEs on the parent's scale: the own-scale fit needs none.
     own_scale_errors = link is None or link.method != "fixed-parameter"
-    fit = _final_fit(prepared, settings, policy, stage, progress, standard_errors=own_scale_errors)
+    fit = _final_fit(prepared, settings, policy, stage, progress, standard_errors=own_scale_errors, whole=whole)
     linked = None
     if link is not None:
         linked = run_link_stage(prepared, settings, policy, link, fit, progress)
@@ -106,7 +113,14 @@ def calibrate_data(  # noqa: PLR0913 - the data and keyword-only options
         notes=notes,
         link=linked,
     )
-    bundle = _publishable(CalibrationRun(data, name, settings, prepared), findings)
+    if whole is not None and whole.sample_record is not None:
+        notes.append(
+            f"DIF screening, the invariance ladder and the quality checks rest on a random sample of "
+            f"{data.n_persons:,} of the {sum(whole.group_sizes.values()):,} respondents ({whole.sample_record}); "
+            "the final calibration used every respondent"
+        )
+    run = CalibrationRun(data, name, settings, prepared, whole)
+    bundle = _publishable(run, findings)
     return CalibrationOutcome(
         bundle=bundle, fit=fit, warnings=tuple(notes), dif=None if stage is None else stage.outcome
     )
@@ -120,19 +134,25 @@ def _final_fit(  # noqa: PLR0913 - the data, the policy, the DIF stage's start a
     progress: ProgressCallback | None,
     *,
     standard_errors: bool,
+    whole: WholeTable | None = None,
 ) -> MultiGroupFit:
     """The calibration under the policy (SEs as asked): excluded cells are not administered for that group."""
     if progress is not None:
         progress("final", 0, 0.0)
+    em = replace(settings.em, standard_errors=standard_errors and settings.em.standard_errors)
+    group_free = policy.group_free(int(prepared.k.max()))
+    start = None if stage is None else stage.outcome.anchor_fit.tables
+    if whole is not None:
+        return whole.final_fit(prepared, policy, settings=em, group_free=group_free, start=start, progress=progress)
     return quiet_fit(
         policy.administered(prepared.x, prepared.group_index),
         prepared.k,
         prepared.group_index,
         prepared.n_groups,
         models=prepared.models,
-        settings=replace(settings.em, standard_errors=standard_errors and settings.em.standard_errors),
-        group_free=policy.group_free(int(prepared.k.max())),
-        start=None if stage is None else stage.outcome.anchor_fit.tables,
+        settings=em,
+        group_free=group_free,
+        start=start,
         progress=None if progress is None else (lambda it, ll: progress("final", it, ll)),
     )
 

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -24,14 +23,12 @@ from calibration.dif.settings import DifSettings
 from calibration.estimation import MultiGroupFit
 from calibration.estimation.layout import slot_guessing
 from calibration.io import finite_or_none
-from calibration.pipeline.fits import quiet_fit
+from calibration.pipeline.fits import ProgressCallback, quiet_fit
 from calibration.pipeline.policy import PolicyTable
 from calibration.pipeline.prepare import PreparedData
 from calibration.pipeline.settings import PipelineSettings
 
 SINGLE_GROUP_ANCHORS = Anchors(items=[], method="none: single-group calibration (the scale is fixed by N(0,1))")
-
-ProgressCallback = Callable[[str, int, float], None]
 
 
 @dataclass(frozen=True)

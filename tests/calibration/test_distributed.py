@@ -9,6 +9,7 @@ Dask to rerun its tasks and the output complete.
 from __future__ import annotations
 
 import os
+import re
 import signal
 from collections.abc import Iterator
 from pathlib import Path
@@ -204,3 +205,136 @@ def test_without_the_dask_extra_the_command_says_what_to_install(
     assert main([*args, "--out", str(tmp_path / "s.csv"), "--engine", "dask"]) == 2
     assert "pip install 'equitheta[dask]'" in capsys.readouterr().err
     assert not (tmp_path / "s.csv").exists()
+
+
+def dif_file(path: Path, n: int, seed: int) -> Path:
+    """Two sites, 2PL and graded items, 5% missing; item I2 is easier for site 'north' (uniform DIF)."""
+    from tests.helpers import simulate_responses
+
+    rng = np.random.default_rng(seed)
+    a = np.array([1.2, 0.9, 1.5, 1.1, 1.3, 0.8, 1.0])
+    b = np.full((7, 2), np.nan)
+    b[:4, 0] = [-0.5, 0.2, 0.0, 0.8]
+    b[4:] = [[-0.8, 0.4], [-0.2, 0.9], [-1.0, 0.1]]
+    sites = np.where(rng.random(n) < 0.4, "north", "south")
+    x = simulate_responses(a, b, rng.normal(size=n) + 0.3 * (sites == "north"), rng)
+    easier = (sites == "north") & (rng.random(n) < 0.3)
+    x[easier, 2] = 1.0
+    x[rng.random(x.shape) < 0.05] = np.nan
+    frame = pd.DataFrame(x, columns=[f"I{j}" for j in range(7)]).astype("Int64")
+    frame.insert(0, "site", sites)
+    frame.insert(0, "id", [f"p{i:05d}" for i in range(n)])
+    frame.to_csv(path, index=False)
+    return path
+
+
+def numbers_apart(a: object, b: object, path: str = "") -> list[tuple[str, object, object]]:
+    """Every place where two bundle dumps differ (numbers by more than 1e-6), apart from the time stamp."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        keys = (set(a) | set(b)) - {"created_at"}
+        return [d for k in sorted(keys) for d in numbers_apart(a.get(k), b.get(k), f"{path}/{k}")]
+    if isinstance(a, list) and isinstance(b, list) and len(a) == len(b):
+        return [d for i, (u, v) in enumerate(zip(a, b, strict=True)) for d in numbers_apart(u, v, f"{path}[{i}]")]
+    if isinstance(a, float) and isinstance(b, float):
+        return [] if abs(a - b) <= 1e-6 else [(path, a, b)]
+    return [] if a == b else [(path, a, b)]
+
+
+def test_the_calibration_pipeline_on_dask_equals_in_process(tmp_path: Path, cluster: str) -> None:
+    # The whole calibration (checks, DIF screening and tests, anchors, ladder, policy, the final fit with
+    # SEs, quality) with the file held in 6+ partitions by 2 workers and an evidence sample that holds
+    # every respondent, against calibrate_data on the file read in this process: the same unpublished
+    # bundle (no hash yet), every number to 1e-6, apart from the time stamp.
+    from calibration.distributed.calibration import DaskTable
+    from calibration.estimation import EMSettings
+    from calibration.io import read_responses
+    from calibration.pipeline import PipelineSettings, calibrate_data
+
+    data = dif_file(tmp_path / "sites.csv", 3000, 11)
+    settings = PipelineSettings(em=EMSettings(tolerance=1e-7))
+    local = calibrate_data(read_responses(data, group_column="site"), name="sites", settings=settings)
+    with distributed.Client(cluster) as client:
+        table = DaskTable.open(client, data, group_column="site", partition_bytes=8_000)
+        assert len(table.partitions) >= 6 and table.group_sizes["south"] + table.group_sizes["north"] == 3000
+        sample = table.sample(None)
+        assert table.sample_record is None and sample.ids == tuple(f"p{i:05d}" for i in range(3000))
+        spread = calibrate_data(
+            sample, name="sites", settings=settings, reference_group=table.largest_group(), whole=table
+        )
+    assert [i.id for i in local.bundle.items if i.policy["north"].status != "invariant"] == ["I2"]  # DIF found
+    assert numbers_apart(local.bundle.model_dump(mode="json"), spread.bundle.model_dump(mode="json")) == []
+
+
+def test_evidence_on_a_sample_and_the_final_fit_on_every_respondent(tmp_path: Path, cluster: str) -> None:
+    # About 600 of each site's respondents carry the DIF stage and the quality checks; the final fit runs
+    # on all 6,000. Its estimates must equal calibrate_groups on the whole table in this process with the
+    # bundle's policy applied (excluded cells not administered), to 1e-5 (both converged to 1e-8).
+    from calibration.distributed.calibration import DaskTable
+    from calibration.estimation import EMSettings, calibrate_groups
+    from calibration.io import read_responses
+    from calibration.pipeline import PipelineSettings, calibrate_data
+
+    data = dif_file(tmp_path / "sites.csv", 6000, 12)
+    settings = PipelineSettings(em=EMSettings(tolerance=1e-8))
+    with distributed.Client(cluster) as client:
+        table = DaskTable.open(client, data, group_column="site", partition_bytes=20_000)
+        sample = table.sample(600, seed=5)
+        again = table.sample(600, seed=5)
+        outcome = calibrate_data(sample, name="sites", settings=settings, reference_group="south", whole=table)
+    assert sample.ids == again.ids and 900 < sample.n_persons < 1500
+    bundle = outcome.bundle
+    assert bundle.provenance.n_respondents == 6000
+    assert bundle.provenance.n_respondents_by_group == table.group_sizes
+    assert "600" in str(bundle.provenance.settings["evidence_sample"])
+    assert any("random sample of" in w and "every respondent" in w for w in bundle.quality.warnings)
+    whole = read_responses(data, group_column="site")
+    north = np.array([g == "north" for g in whole.groups or ()])
+    x = whole.responses.copy()
+    assert [i.n_responses for i in bundle.items] == list(np.sum(~np.isnan(whole.responses), axis=0))
+    for item in bundle.items:
+        if item.policy["north"].status == "excluded":
+            x[north, whole.item_ids.index(item.id)] = np.nan
+    fit = calibrate_groups(x, whole.n_categories, north.astype(np.int64), 2, settings=EMSettings(tolerance=1e-8))
+    np.testing.assert_allclose(outcome.fit.tables[0], fit.tables[0], atol=1e-5)
+    np.testing.assert_allclose(outcome.fit.latent_mean, fit.latent_mean, atol=1e-5)
+    np.testing.assert_allclose(outcome.fit.slot_se[0], fit.slot_se[0], rtol=1e-4)
+    assert outcome.fit.n_persons == 6000
+
+
+def test_calibrate_command_on_dask(tmp_path: Path, cluster: str, capsys: pytest.CaptureFixture[str]) -> None:
+    data = dif_file(tmp_path / "sites.csv", 2000, 13)
+    common = ["calibrate", str(data), "--name", "sites", "--group-column", "site"]
+    assert main([*common, "--store", str(tmp_path / "here")]) == 0
+    assert main([*common, "--store", str(tmp_path / "there"), "--engine", "dask", "--scheduler", cluster]) == 0
+    here = DirectoryStore(tmp_path / "here").get("sites", 1).model_dump(mode="json")
+    there = DirectoryStore(tmp_path / "there").get("sites", 1).model_dump(mode="json")
+    assert [d[0] for d in numbers_apart(here, there)] == ["/hash"]
+    capsys.readouterr()
+    link = [*common, "--store", str(tmp_path / "here"), "--engine", "dask", "--link-to", "sites@1"]
+    assert main(link) == 2
+    assert "--link-to needs the whole file in this process" in capsys.readouterr().err
+
+
+def test_a_bad_calibration_file_is_named_by_partition_and_row(tmp_path: Path, cluster: str) -> None:
+    from calibration.distributed.calibration import DaskTable
+
+    frame = pd.read_csv(dif_file(tmp_path / "sites.csv", 2000, 14), dtype=str, keep_default_na=False)
+    frame.loc[1800, "I3"] = "2.5"
+    frame.loc[1900, "site"] = " "
+    frame.loc[1950, "id"] = "p00007"
+    frame.to_csv(tmp_path / "bad.csv", index=False)
+    with distributed.Client(cluster) as client, pytest.raises(InputError) as err:
+        DaskTable.open(client, tmp_path / "bad.csv", group_column="site", partition_bytes=8_000)
+    text = str(err.value)
+    assert "bad.csv, partition" in text and "column 'I3'" in text and "column 'site': no group given" in text
+    frame.loc[1800, "I3"], frame.loc[1900, "site"] = "1", "north"
+    frame.loc[1500, "I5"] = "9"  # a missing-data code among 0..2: named with its partition
+    frame.to_csv(tmp_path / "bad.csv", index=False)
+    with distributed.Client(cluster) as client, pytest.raises(InputError) as err:
+        DaskTable.open(client, tmp_path / "bad.csv", group_column="site", partition_bytes=8_000)
+    assert re.search(r"id 'p00007' appears 2 times: bad.csv, partition 1 of \d+ .*row 8", str(err.value))
+    frame.loc[1950, "id"] = "p01950"
+    frame.to_csv(tmp_path / "bad.csv", index=False)
+    with distributed.Client(cluster) as client, pytest.raises(InputError) as err:
+        DaskTable.open(client, tmp_path / "bad.csv", group_column="site", partition_bytes=8_000)
+    assert re.search(r"item 'I5': code 9 \(bad.csv, partition \d+ of \d+ .*\) lies far above", str(err.value))

@@ -1,0 +1,56 @@
+"""What every distributed job shares: the client (a scheduler's, or a local cluster of our own) and the
+check for ids repeated across partitions."""
+
+from __future__ import annotations
+
+import contextlib
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from calibration.io import MAX_PROBLEMS, Partition, row_label
+
+
+@contextlib.contextmanager
+def dask_client(scheduler: str | None, n_workers: int) -> Iterator[Any]:
+    """A client of the scheduler at ``scheduler``, or of a local cluster of ``n_workers`` single-threaded
+    processes started here and closed however the job ends."""
+    from dask.distributed import Client, LocalCluster
+
+    with contextlib.ExitStack() as stack:
+        cluster = None
+        if not scheduler:
+            cluster = stack.enter_context(
+                LocalCluster(n_workers=n_workers, threads_per_worker=1, dashboard_address=None)
+            )
+        yield stack.enter_context(Client(scheduler or cluster))
+
+
+def repeated_ids(path: Path, partitions: Sequence[Partition], ids: Sequence[Sequence[Any]]) -> tuple[list[str], int]:
+    """Ids that occur more than once in the file, each named with two of its places (file, partition, row),
+    and how many ids repeat. ``ids[i]`` are partition ``partitions[i]``'s trimmed ids, as Arrow string
+    arrays in row order."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    chunks = [chunk for part in ids for chunk in part]
+    if not chunks:
+        return [], 0
+    every = pa.chunked_array(chunks, type=pa.string())
+    counts = pc.value_counts(every)
+    repeated = counts.filter(pc.greater(counts.field("counts"), 1)).field("values")
+    if len(repeated) == 0:
+        return [], 0
+    starts = np.cumsum([0] + [sum(len(c) for c in part) for part in ids])
+    problems = []
+    for respondent in repeated.to_pylist()[:MAX_PROBLEMS]:
+        places = np.flatnonzero(pc.equal(every, respondent).to_numpy(zero_copy_only=False))
+        where = []
+        for at in places[:2]:
+            o = int(np.searchsorted(starts, at, side="right") - 1)
+            part = partitions[o]
+            where.append(f"{part.describe(path)}, {row_label(part.first_row + int(at - starts[o]), 0)}")
+        problems.append(f"id {respondent!r} appears {len(places)} times: {' and '.join(where)}")
+    return problems, len(repeated)
