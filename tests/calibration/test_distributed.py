@@ -338,3 +338,37 @@ def test_a_bad_calibration_file_is_named_by_partition_and_row(tmp_path: Path, cl
     with distributed.Client(cluster) as client, pytest.raises(InputError) as err:
         DaskTable.open(client, tmp_path / "bad.csv", group_column="site", partition_bytes=8_000)
     assert re.search(r"item 'I5': code 9 \(bad.csv, partition \d+ of \d+ .*\) lies far above", str(err.value))
+
+
+def test_a_worker_killed_during_the_em_leaves_the_fit_complete(tmp_path: Path) -> None:
+    # A worker process holding prepared partitions is killed (SIGKILL) after the third EM iteration; its nanny
+    # starts a new one and Dask recomputes the lost partitions from the file. The fit ends with the same
+    # estimates as calibrate_groups on the whole table in this process (1e-6).
+    from calibration.distributed.calibration import DaskTable, Recoding
+    from calibration.estimation import EMSettings, calibrate_groups
+    from calibration.io import read_responses
+
+    data = dif_file(tmp_path / "sites.csv", 4000, 15)
+    settings = EMSettings(tolerance=1e-7)
+    killed: list[int] = []
+    with (
+        distributed.LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as local,
+        distributed.Client(local) as client,
+    ):
+        pids = [nanny.process.process.pid for nanny in local.workers.values()]
+
+        def kill_one(iteration: int, _: float) -> None:
+            if iteration >= 3 and not killed:
+                os.kill(pids[0], signal.SIGKILL)
+                killed.append(pids[0])
+
+        table = DaskTable.open(client, data, group_column="site", partition_bytes=8_000)
+        recoding = Recoding(np.arange(7), {}, ("south", "north"))
+        k, models = table.template.n_categories, table.template.models
+        fit = table.fit(recoding, k, models, settings=settings, progress=kill_one)
+    whole = read_responses(data, group_column="site")
+    north = np.array([g == "north" for g in whole.groups or ()], dtype=np.int64)
+    expected = calibrate_groups(whole.responses, whole.n_categories, north, 2, settings=settings)
+    assert killed
+    np.testing.assert_allclose(fit.tables, expected.tables, atol=1e-6)
+    np.testing.assert_allclose(fit.slot_se, expected.slot_se, atol=1e-6)
