@@ -54,13 +54,36 @@ SAMPLE_PER_GROUP = 50_000
 
 @dataclass(frozen=True)
 class PartitionRows:
-    """One partition's answers, group labels and ids as a worker holds them, with the problems found."""
+    """One partition's answers, group labels and ids as a worker holds them, with the problems found.
 
-    responses: FloatArray
+    The answers are held as small integers (-1: not administered), a float table made from them only
+    while a fit's rows are prepared.
+    """
+
+    codes: np.ndarray  # (rows, items), int8 or int16; -1 = not administered
     groups: list[str] | None
     ids: Any  # Arrow string array, trimmed
     problems: list[str] = field(default_factory=list)
     total: int = 0
+
+    @property
+    def n_rows(self) -> int:
+        """Rows in the partition."""
+        return int(self.codes.shape[0])
+
+    def responses(self, columns: IntArray | None = None) -> FloatArray:
+        """The answers of ``columns`` (default: all) as codes with NaN for not administered (a new array)."""
+        codes = self.codes if columns is None else self.codes[:, columns]
+        out = codes.astype(np.float64)
+        out[codes < 0] = np.nan
+        return out
+
+
+def _small_codes(responses: FloatArray) -> np.ndarray:
+    """Codes as int8 (int16, int32 when a code is larger), -1 for NaN."""
+    top = np.nanmax(responses) if responses.size and not np.isnan(responses).all() else 0
+    kind = np.int8 if top < 127 else (np.int16 if top < 32_767 else np.int32)
+    return np.where(np.isnan(responses), -1, responses).astype(kind)
 
 
 @dataclass(frozen=True)
@@ -99,7 +122,7 @@ def read_partition(
 
     where = partition.describe(path)
     return PartitionRows(
-        np.concatenate(blocks) if blocks else np.zeros((0, len(item_ids))),
+        _small_codes(np.concatenate(blocks)) if blocks else np.zeros((0, len(item_ids)), dtype=np.int8),
         labels if group_column else None,
         pa.chunked_array(ids, type=pa.string()).combine_chunks(),
         [f"{where}: {p}" for p in problems],
@@ -112,15 +135,15 @@ def census(rows: PartitionRows) -> Census:
     sizes: dict[str, int] = {}
     for g in rows.groups or ():
         sizes[g] = sizes.get(g, 0) + 1
-    counts = category_counts(rows.responses) if not rows.total else np.zeros((rows.responses.shape[1], 1), np.int64)
-    return Census(rows.responses.shape[0], rows.problems, rows.total, [rows.ids], sizes, counts)
+    counts = category_counts(rows.responses()) if not rows.total else np.zeros((rows.codes.shape[1], 1), np.int64)
+    return Census(rows.n_rows, rows.problems, rows.total, [rows.ids], sizes, counts)
 
 
 def draw_sample(rows: PartitionRows, *, rates: dict[str, float], seed: int, index: int) -> PartitionRows:
     """The partition's rows kept with their group's probability (one stream per partition and seed)."""
     if all(r >= 1.0 for r in rates.values()):
         return rows
-    n = rows.responses.shape[0]
+    n = rows.n_rows
     rate = (
         np.full(n, rates.get(SINGLE_GROUP, 1.0)) if rows.groups is None else np.array([rates[g] for g in rows.groups])
     )
@@ -129,7 +152,7 @@ def draw_sample(rows: PartitionRows, *, rates: dict[str, float], seed: int, inde
     import pyarrow as pa
 
     return PartitionRows(
-        rows.responses[at],
+        rows.codes[at],
         None if rows.groups is None else [rows.groups[i] for i in at],
         rows.ids.take(pa.array(at, type=pa.int64())),
     )
@@ -145,9 +168,9 @@ class Recoding:
     policy: PolicyTable | None = None  # excluded cells are not administered for their group
 
 
-def recode_partition(rows: PartitionRows, *, recoding: Recoding) -> tuple[FloatArray, IntArray]:
-    """The partition's responses as the fit reads them, and each row's group position."""
-    x = rows.responses[:, recoding.columns]
+def recode_partition(rows: PartitionRows, recoding: Recoding) -> tuple[FloatArray, IntArray]:
+    """The partition's responses as the fit reads them (a new float table), and each row's group position."""
+    x = rows.responses(recoding.columns)
     for j, mapping in recoding.category_maps.items():
         answered = ~np.isnan(x[:, j])
         x[answered, j] = np.asarray(mapping, dtype=np.float64)[x[answered, j].astype(np.int64)]
@@ -156,21 +179,22 @@ def recode_partition(rows: PartitionRows, *, recoding: Recoding) -> tuple[FloatA
         position = {g: i for i, g in enumerate(recoding.group_names)}
         index = np.fromiter((position[g] for g in rows.groups), dtype=np.int64, count=len(rows.groups))
     if recoding.policy is not None:
-        x = recoding.policy.administered(x, index)
+        x = recoding.policy.administered(x, index, copy=False)  # x is this call's own table
     return x, index
 
 
 def prepare_partition(
-    recoded: tuple[FloatArray, IntArray], *, n_categories: IntArray, n_groups: int, compress: bool
+    rows: PartitionRows, *, recoding: Recoding, n_categories: IntArray, compress: bool
 ) -> list[GroupData]:
-    """The partition's rows prepared for the E-step, one :class:`GroupData` per group (empty where none)."""
-    x, index = recoded
-    return prepare_groups(x, n_categories, index, n_groups, compress=compress)
+    """The partition's rows recoded and prepared for the E-step, one :class:`GroupData` per group (empty
+    where none); the float table lives only while this runs."""
+    x, index = recode_partition(rows, recoding)
+    return prepare_groups(x, n_categories, index, len(recoding.group_names), compress=compress)
 
 
-def partition_start(recoded: tuple[FloatArray, IntArray], *, n_categories: IntArray) -> StartStatistics:
-    """The partition's sums for the starting values."""
-    return StartStatistics.of(recoded[0], n_categories)
+def partition_start(rows: PartitionRows, *, recoding: Recoding, n_categories: IntArray) -> StartStatistics:
+    """The partition's recoded rows' sums for the starting values."""
+    return StartStatistics.of(recode_partition(rows, recoding)[0], n_categories)
 
 
 def partition_expected(
@@ -389,7 +413,7 @@ class DaskTable:
         return ResponseData(
             ids=tuple(ids.to_pylist()),
             item_ids=data.item_ids,
-            responses=np.concatenate([p.responses for p in parts]),
+            responses=np.concatenate([p.responses() for p in parts]),
             n_categories=data.n_categories,
             models=data.models,
             groups=None if data.groups is None else tuple(g for p in parts for g in p.groups or ()),
@@ -442,24 +466,24 @@ class DaskTable:
         from dask.distributed import wait
 
         client, n_groups = self.client, len(recoding.group_names)
-        recoded = client.map(recode_partition, self.rows, recoding=recoding, pure=False)
-        prepared = client.map(
-            prepare_partition,
-            recoded,
-            n_categories=n_categories,
-            n_groups=n_groups,
-            compress=settings.compress_patterns,
-            pure=False,
-        )
         if start is None:
-            stats = client.gather(client.map(partition_start, recoded, n_categories=n_categories, pure=False))
+            stats = client.gather(
+                client.map(partition_start, self.rows, recoding=recoding, n_categories=n_categories, pure=False)
+            )
             merged = stats[0]
             for more in stats[1:]:
                 merged = merged.merge(more)
             table = slot_table(merged.values(n_categories, tuple(models)))
             start = np.broadcast_to(table, (n_groups, *table.shape)).copy()
-        wait(prepared)  # held on the workers from here (not gathered); the recoded copies can go
-        del recoded
+        prepared = client.map(
+            prepare_partition,
+            self.rows,
+            recoding=recoding,
+            n_categories=n_categories,
+            compress=settings.compress_patterns,
+            pure=False,
+        )
+        wait(prepared)  # held on the workers from here (not gathered)
         try:
             return calibrate_groups(
                 np.zeros((0, len(n_categories))),

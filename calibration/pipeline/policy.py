@@ -66,9 +66,9 @@ class PolicyTable:
                 out[g, j, :] = True
         return out
 
-    def administered(self, x: np.ndarray, group_index: np.ndarray) -> np.ndarray:
-        """A copy of the responses with every excluded cell not administered for its group."""
-        out = x.copy()
+    def administered(self, x: np.ndarray, group_index: np.ndarray, *, copy: bool = True) -> np.ndarray:
+        """The responses (a copy, unless ``copy`` is False) with every excluded cell not administered for its group."""
+        out = x.copy() if copy else x
         for (j, g), cell in self._cells.items():
             if cell.status == "excluded":
                 out[group_index == g, j] = np.nan
