@@ -148,7 +148,7 @@ def _item_entries(
     x, k, group_names = prepared.x, prepared.k, prepared.group_names
     reference = fit.group_params(0)
     b_se = threshold_se(reference, fit.layout.index[0], fit.covariance)
-    classical = classical_statistics(x[prepared.group_index == 0])
+    classical = classical_statistics(x if prepared.n_groups == 1 else x[prepared.group_index == 0])
     items = []
     for j, item in enumerate(prepared.item_ids):
         kj = int(k[j])

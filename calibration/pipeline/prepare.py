@@ -145,7 +145,10 @@ def prepare_data(
                 )
     if len(keep) < 2:
         raise CalibrationInputError(f"{data.source}: fewer than two items with variance; nothing to calibrate")
-    x = x_all[:, keep].copy()
+    # Every item kept: a read-only view of the data's own table, copied only if a category merge changes it.
+    shared = len(keep) == x_all.shape[1]
+    x = x_all.view() if shared else x_all[:, keep]
+    x.flags.writeable = not shared
     item_ids = tuple(data.item_ids[j] for j in keep)
     k = data.n_categories[keep].copy()
     category_maps: dict[int, list[int]] = {}
@@ -153,6 +156,8 @@ def prepare_data(
         merged = collapse_sparse_categories(x[:, j], int(k[j]), group_index, group_names)
         if merged is not None:
             mapping, note = merged
+            if shared:
+                x, shared = x_all.copy(), False
             answered = ~np.isnan(x[:, j])
             x[answered, j] = np.asarray(mapping, dtype=np.float64)[x[answered, j].astype(np.int64)]
             category_maps[j] = mapping

@@ -55,8 +55,9 @@ def quality_by_group(
     notes: list[str] = []
     for g, group in enumerate(prepared.group_names):
         kept = policy.kept_items(g)
+        whole = prepared.n_groups == 1 and len(kept) == prepared.n_items  # the table itself, no copy
         quality = _group_quality(
-            prepared.x[np.ix_(prepared.group_index == g, kept)],
+            prepared.x if whole else prepared.x[np.ix_(prepared.group_index == g, kept)],
             fit.group_params(g).subset(kept),
             [prepared.item_ids[j] for j in kept],
             grid,

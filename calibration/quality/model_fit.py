@@ -41,6 +41,7 @@ from calibration.irt.models import (
     item_score_moments,
 )
 from calibration.irt.summed_scores import summed_score_likelihoods
+from calibration.quality.classical import BLOCK_ROWS, BlockMoments
 
 MIN_COMPLETE_ROWS = 100
 # Warning thresholds (rules of thumb; see REFERENCES in the docs of each): RMSD above this misses the
@@ -115,10 +116,10 @@ def _s_x2(
                 if 0 <= s - k < rest.shape[0]:
                     expected[row, k] = (prob[j, k] * rest[s - k]) @ weights
             expected[row] /= max(full[s], PROBABILITY_FLOOR)
-        n_s = np.array([(totals == s).sum() for s in scores], dtype=np.float64)
-        observed = np.array(
-            [[np.sum((totals == s) & (x[:, j] == k)) for k in range(k_j)] for s in scores], dtype=np.float64
-        )
+        # Respondents per (summed score, category of item j), counted in one pass.
+        table = np.bincount(totals * k_j + x[:, j].astype(np.int64), minlength=(max_score + 1) * k_j)
+        observed = table.reshape(max_score + 1, k_j)[scores].astype(np.float64)
+        n_s = observed.sum(axis=1)
         # Merge adjacent score groups from each end until every expected count is at least 1.
         groups: list[tuple[float, FloatArray, FloatArray]] = []
         acc_n, acc_e, acc_o = 0.0, np.zeros(k_j), np.zeros(k_j)
@@ -143,11 +144,15 @@ def _s_x2(
 
 def _rmsd(params: ItemParameters, x: FloatArray, points: FloatArray, mean: float, sd: float) -> FloatArray:
     log_prior = normal_log_weights(points, mean, sd)
-    design = build_design(x, params.n_categories)
-    post = posterior_weights(log_likelihood_grid(params, points, design, log_prior=log_prior))
-    answered = ~np.isnan(x)
-    observed_sum = np.where(answered, x, 0.0).T @ post  # (J, Q)
-    mass = answered.astype(np.float64).T @ post
+    observed_sum = np.zeros((params.n_items, points.size))
+    mass = np.zeros((params.n_items, points.size))
+    for start in range(0, x.shape[0], BLOCK_ROWS):
+        block = x[start : start + BLOCK_ROWS]
+        design = build_design(block, params.n_categories)
+        post = posterior_weights(log_likelihood_grid(params, points, design, log_prior=log_prior))
+        answered = ~np.isnan(block)
+        observed_sum += np.where(answered, block, 0.0).T @ post  # (J, Q)
+        mass += answered.astype(np.float64).T @ post
     observed = observed_sum / np.maximum(mass, 1e-12)
     model = expected_item_scores(params, points)
     w = np.exp(log_prior)
@@ -156,15 +161,24 @@ def _rmsd(params: ItemParameters, x: FloatArray, points: FloatArray, mean: float
 
 
 def dimensionality(params: ItemParameters, responses: FloatArray, theta: FloatArray) -> Dimensionality:
-    """Eigenvalue ratio of the item correlations and the first eigenvalue of the residual PCA."""
+    """Eigenvalue ratio of the item correlations and the first eigenvalue of the residual PCA (complete rows;
+    both correlation matrices summed over row blocks)."""
     complete = ~np.isnan(responses).any(axis=1)
-    x = responses[complete]
-    if x.shape[0] < MIN_COMPLETE_ROWS or x.shape[1] < 3 or np.any(x.std(axis=0) == 0):
-        return Dimensionality(None, None, int(x.shape[0]))
-    eig = np.sort(np.linalg.eigvalsh(np.corrcoef(x, rowvar=False)))[::-1]
+    n_complete = int(complete.sum())
+    if n_complete < MIN_COMPLETE_ROWS or responses.shape[1] < 3:
+        return Dimensionality(None, None, n_complete)
+    items, residuals = BlockMoments(), BlockMoments()
+    for start in range(0, responses.shape[0], BLOCK_ROWS):
+        keep = complete[start : start + BLOCK_ROWS]
+        x = responses[start : start + BLOCK_ROWS][keep]
+        if x.shape[0] == 0:
+            continue
+        items.add(x)
+        mean, var = item_score_moments(params, theta[start : start + BLOCK_ROWS][keep])  # (J, n)
+        residuals.add((x - mean.T) / np.sqrt(np.maximum(var.T, 1e-12)))
+    if items.constant():
+        return Dimensionality(None, None, n_complete)
+    eig = np.sort(np.linalg.eigvalsh(items.correlation()))[::-1]
     ratio = float(eig[0] / eig[1]) if eig[1] > 0 else None
-    t = theta[complete]
-    mean, var = item_score_moments(params, t)  # (J, n)
-    residual = (x - mean.T) / np.sqrt(np.maximum(var.T, 1e-12))
-    contrast = float(np.max(np.linalg.eigvalsh(np.corrcoef(residual, rowvar=False))))
-    return Dimensionality(eigenvalue_ratio=ratio, residual_pca_first_eigenvalue=contrast, n_complete=int(x.shape[0]))
+    contrast = float(np.max(np.linalg.eigvalsh(residuals.correlation())))
+    return Dimensionality(eigenvalue_ratio=ratio, residual_pca_first_eigenvalue=contrast, n_complete=n_complete)

@@ -19,6 +19,7 @@ import numpy as np
 from scipy import optimize, stats
 
 from calibration.irt.models import FloatArray
+from calibration.quality.classical import complete_rows_moments
 
 MIN_UNIQUENESS = 0.005
 """Uniquenesses are kept at or above this (a Heywood case stops at the bound)."""
@@ -68,12 +69,12 @@ class OneFactor:
 def one_factor_omega(responses: FloatArray) -> OneFactor:
     """McDonald's omega from a maximum-likelihood one-factor model of the complete rows' item correlations."""
     x = np.asarray(responses, dtype=np.float64)
-    complete = x[~np.isnan(x).any(axis=1)]
+    moments = complete_rows_moments(x)
     n_items = x.shape[1]
     nan = np.full(n_items, np.nan)
-    if complete.shape[0] < 3 or n_items < 3 or np.any(complete.std(axis=0) == 0):
+    if moments.n < 3 or n_items < 3 or moments.constant():
         return OneFactor(nan, nan, float("nan"), converged=False)
-    corr = np.corrcoef(complete, rowvar=False)
+    corr = moments.correlation()
 
     def criterion(psi: FloatArray) -> float:
         scale = 1.0 / np.sqrt(psi)
