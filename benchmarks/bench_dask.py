@@ -25,6 +25,7 @@ import resource
 import sys
 import tempfile
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -60,6 +61,21 @@ def worker_usage() -> tuple[float, float]:
     return usage.ru_utime + usage.ru_stime, usage.ru_maxrss / 1024
 
 
+def compare_pass(client: Any, attempt: int, local: list[str], on_dask: list[str], suffix: str = "") -> None:
+    """One pass: ``local`` in process, then ``on_dask`` against the cluster; the client and the workers measured."""
+    cpu, wall, rss = child(local)
+    print(f"pass {attempt}: in process: {cpu:.1f} CPU s, {wall:.1f} s wall, peak RSS {rss:.0f} MB")
+    before = client.run(worker_usage)
+    d_cpu, d_wall, d_rss = child(on_dask)
+    after = client.run(worker_usage)
+    workers_cpu = sum(after[w][0] - before[w][0] for w in after)
+    peaks = ", ".join(f"{after[w][1]:.0f}" for w in sorted(after))
+    print(
+        f"pass {attempt}: 2-worker Dask: {d_wall:.1f} s wall ({wall / d_wall:.2f}x in-process speed); client "
+        f"{d_cpu:.1f} CPU s, peak RSS {d_rss:.0f} MB; workers {workers_cpu:.1f} CPU s, peak RSS {peaks} MB{suffix}"
+    )
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, default=5_000_000)
@@ -82,26 +98,10 @@ def main() -> int:
         base = [str(BIN / "equitheta"), "score", str(data), "--bundle", "bench", "--store", str(store)]
         with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster, Client(cluster) as c:
             for attempt in (1, 2):
-                cpu, wall, rss = child([*base, "--out", str(folder / "local.csv")])
-                print(f"pass {attempt}: in process: {cpu:.1f} CPU s, {wall:.1f} s wall, peak RSS {rss:.0f} MB")
-                before = c.run(worker_usage)
-                cmd = [
-                    *base,
-                    "--out",
-                    str(folder / "dask"),
-                    "--engine",
-                    "dask",
-                    "--scheduler",
-                    cluster.scheduler_address,
-                ]
-                d_cpu, d_wall, d_rss = child(cmd)
-                after = c.run(worker_usage)
-                workers_cpu = sum(after[w][0] - before[w][0] for w in after)
-                peaks = ", ".join(f"{after[w][1]:.0f}" for w in sorted(after))
-                print(
-                    f"pass {attempt}: 2-worker Dask: {d_wall:.1f} s wall ({wall / d_wall:.2f}x in-process speed); "
-                    f"client {d_cpu:.1f} CPU s, peak RSS {d_rss:.0f} MB; workers {workers_cpu:.1f} CPU s, "
-                    f"peak RSS {peaks} MB (since the worker started)"
+                on_dask = [*base, "--out", str(folder / "dask"), "--engine", "dask", "--scheduler"]
+                local_run = [*base, "--out", str(folder / "local.csv")]
+                compare_pass(
+                    c, attempt, local_run, [*on_dask, cluster.scheduler_address], " (since the worker started)"
                 )
         local = pd.read_csv(folder / "local.csv", usecols=["id", "theta", "se"])
         parts = sorted((folder / "dask").glob("part-*.parquet"))
@@ -139,18 +139,12 @@ def calibration(folder: Path, n_rows: int) -> None:
     python = str(BIN / "python")
     with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster, Client(cluster) as c:
         for attempt in (1, 2):
-            cpu, wall, rss = child([python, "-c", IN_PROCESS, str(data), str(folder / "local.npy")])
-            print(f"pass {attempt}: in process: {cpu:.1f} CPU s, {wall:.1f} s wall, peak RSS {rss:.0f} MB")
-            before = c.run(worker_usage)
-            d_cpu, d_wall, d_rss = child(
-                [python, "-c", ON_DASK, str(data), str(folder / "dask.npy"), cluster.scheduler_address]
-            )
-            after = c.run(worker_usage)
-            workers_cpu = sum(after[w][0] - before[w][0] for w in after)
-            peaks = ", ".join(f"{after[w][1]:.0f}" for w in sorted(after))
-            print(
-                f"pass {attempt}: 2-worker Dask: {d_wall:.1f} s wall ({wall / d_wall:.2f}x in-process speed); client "
-                f"{d_cpu:.1f} CPU s, peak RSS {d_rss:.0f} MB; workers {workers_cpu:.1f} CPU s, peak RSS {peaks} MB"
+            local_run = [python, "-c", IN_PROCESS, str(data), str(folder / "local.npy")]
+            compare_pass(
+                c,
+                attempt,
+                local_run,
+                [python, "-c", ON_DASK, str(data), str(folder / "dask.npy"), cluster.scheduler_address],
             )
     local, dask = np.load(folder / "local.npy"), np.load(folder / "dask.npy")
     print(f"largest difference: estimates {np.nanmax(np.abs(local[0] - dask[0])):.1e}, SEs "
@@ -168,18 +162,8 @@ def calibration_command(folder: Path, data: Path, n_rows: int) -> None:
     base = [str(BIN / "equitheta"), "calibrate", str(data), "--name", "bench", "--republish"]
     with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster, Client(cluster) as c:
         for attempt in (1, 2):
-            cpu, wall, rss = child([*base, "--store", str(folder / "here")])
-            print(f"pass {attempt}: in process: {cpu:.1f} CPU s, {wall:.1f} s wall, peak RSS {rss:.0f} MB")
-            before = c.run(worker_usage)
             on_dask = [*base, "--store", str(folder / "there"), "--engine", "dask", "--scheduler"]
-            d_cpu, d_wall, d_rss = child([*on_dask, cluster.scheduler_address])
-            after = c.run(worker_usage)
-            workers_cpu = sum(after[w][0] - before[w][0] for w in after)
-            peaks = ", ".join(f"{after[w][1]:.0f}" for w in sorted(after))
-            print(
-                f"pass {attempt}: 2-worker Dask: {d_wall:.1f} s wall ({wall / d_wall:.2f}x in-process speed); client "
-                f"{d_cpu:.1f} CPU s, peak RSS {d_rss:.0f} MB; workers {workers_cpu:.1f} CPU s, peak RSS {peaks} MB"
-            )
+            compare_pass(c, attempt, [*base, "--store", str(folder / "here")], [*on_dask, cluster.scheduler_address])
     here, there = DirectoryStore(folder / "here").get("bench", 2), DirectoryStore(folder / "there").get("bench", 2)
     gap = max(
         max(abs(a.slope - b.slope), *(abs(u - v) for u, v in zip(a.intercepts, b.intercepts, strict=True)))
