@@ -91,15 +91,7 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
         template = params_from_table(tables[0], template)
     latent = latent or LatentSpec.reference_fixed(n_groups)
     if settings.held_guessing:  # 3PL asymptotes held at known values (the item spec)
-        values = np.asarray(settings.held_guessing, dtype=np.float64)
-        held_guessing = np.isfinite(values) & template.has_guessing
-        if held_guessing.any():
-            tables[:, held_guessing, GUESSING_SLOT] = np.log(values[held_guessing]) - np.log1p(-values[held_guessing])
-            template = params_from_table(tables[0], template)
-            shape = (n_groups, template.n_items, template.max_slots)
-            held = np.zeros(shape, dtype=bool) if fixed is None else np.broadcast_to(fixed, shape).copy()
-            held[:, held_guessing, GUESSING_SLOT] = True
-            fixed = held
+        template, fixed = _hold_guessing(settings.held_guessing, tables, template, fixed)
     layout = GroupLayout.build(template, n_groups, group_free=group_free, fixed=fixed)
     if source is None:
         source = LocalGroups(prepare_groups(x, k, gi, n_groups, compress=settings.compress_patterns))
@@ -143,9 +135,12 @@ def calibrate_groups(  # noqa: PLR0913 - keyword-only options of the public esti
             )
         return pack(tabs, mean, sd), float(sum(r.log_likelihood for r in results))
 
-    vec, converged, n_iter, history = run_em(
-        pack(tables, latent.mean, latent.sd), em_map, settings, progress=progress, warn=warn
-    )
+    try:
+        vec, converged, n_iter, history = run_em(
+            pack(tables, latent.mean, latent.sd), em_map, settings, progress=progress, warn=warn
+        )
+    except ValueError as exc:  # a parameter ran off: say why when the data show it
+        raise _explained(exc, x, k, layout) from exc
     tabs, mean, sd, _, results = e_step(vec)
     group_ll = np.array([r.log_likelihood for r in results])
 
@@ -194,6 +189,47 @@ def _template(k: IntArray, models: tuple[str, ...]) -> ItemParameters:
         intercepts[j, : kj - 1] = -np.arange(kj - 1, dtype=np.float64)
     guessing = np.array([0.2 if m == "3pl" else 0.0 for m in models])
     return ItemParameters(np.ones(k.size), intercepts, k, models=models, guessing=guessing)
+
+
+def _hold_guessing(
+    values: tuple[float, ...], tables: FloatArray, template: ItemParameters, fixed: np.ndarray | None
+) -> tuple[ItemParameters, np.ndarray | None]:
+    """3PL asymptotes held at known values (NaN: estimated): set in ``tables`` (in place) and fixed."""
+    given = np.asarray(values, dtype=np.float64)
+    held_guessing = np.isfinite(given) & template.has_guessing
+    if not held_guessing.any():
+        return template, fixed
+    tables[:, held_guessing, GUESSING_SLOT] = np.log(given[held_guessing]) - np.log1p(-given[held_guessing])
+    template = params_from_table(tables[0], template)
+    shape = (tables.shape[0], template.n_items, template.max_slots)
+    held = np.zeros(shape, dtype=bool) if fixed is None else np.broadcast_to(fixed, shape).copy()
+    held[:, held_guessing, GUESSING_SLOT] = True
+    return template, held
+
+
+def _explained(exc: ValueError, x: FloatArray, k: IntArray, layout: GroupLayout) -> ValueError:
+    """The error to raise when the EM failed: the categories nobody chose, when the data show some."""
+    unused = _unused_categories(x, k, (layout.index >= 0).any(axis=(0, 2))) if x.shape[0] else None
+    return ValueError(unused) if unused else exc
+
+
+def _unused_categories(x: FloatArray, k: IntArray, estimated: np.ndarray) -> str | None:
+    """Items whose parameters are estimated with a category no respondent chose, in words (None: none)."""
+    found = []
+    for j in np.flatnonzero(estimated):
+        column = x[:, j]
+        counts = np.bincount(column[~np.isnan(column)].astype(np.int64), minlength=int(k[j]))
+        empty = np.flatnonzero(counts == 0)
+        if empty.size:
+            found.append(f"item {j}: categor{'y' if empty.size == 1 else 'ies'} {', '.join(map(str, empty))}")
+    if not found:
+        return None
+    return (
+        "the estimates ran off because some categories have no responses ("
+        + "; ".join(found[:10])
+        + "): a category nobody chose cannot be estimated; merge it with a neighbouring category (or leave out an "
+        "item nobody answered in more than one category)"
+    )
 
 
 def calibrate_single_group(

@@ -222,3 +222,17 @@ def test_starting_values_from_one_covariance_equal_the_per_item_loop() -> None:
     padded = starting_values(np.column_stack([x, np.full(3000, np.nan)]), np.r_[k, 2], ())
     np.testing.assert_allclose(fast.slopes, padded.slopes[:10], rtol=1e-12)
     np.testing.assert_allclose(fast.intercepts, padded.intercepts[:10, :3], rtol=1e-12)
+
+
+def test_a_category_nobody_chose_is_named_when_the_estimates_run_off() -> None:
+    # Library callers get no reader's category check: a graded item whose middle category is empty makes its
+    # two thresholds meet and the EM stop; the error names the item and the empty category instead of
+    # only saying the parameters became invalid (the count is checked by np.bincount on the same table).
+    rng = np.random.default_rng(2)
+    b = np.sort(rng.normal(0, 1, (5, 2)), axis=1)
+    x = simulate_responses(np.array([1.2, 1.0, 1.5, 0.9, 1.1]), b, rng.normal(size=2000), rng)
+    x[x[:, 3] == 1, 3] = 2
+    assert np.bincount(x[:, 3].astype(int), minlength=3)[1] == 0
+    with warnings.catch_warnings(), pytest.raises(ValueError, match=r"no responses \(item 3: category 1\)"):
+        warnings.simplefilter("ignore", RuntimeWarning)
+        calibrate_single_group(x, np.full(5, 3))
