@@ -1,5 +1,7 @@
 """Person scoring throughput: EAP + PSD for 1,000,000 x 40 items, MAP and ML against EAP, girth as baseline.
 
+MAP and ML are measured on four tests: 2PL 40 items, graded 20 x 5, 20 3PL with 10 GPCM items, 10 GPCM items.
+
 CPU seconds count every thread of the process; each figure is measured twice in the same
 process. Baselines: girth ``ability_eap`` (no SE) on the first 200,000 rows of the same data
 (its rate is per respondent, so a subset measures it fairly in less time), and equitheta's own
@@ -17,11 +19,29 @@ from benchmarks.bench_calibration import graded_data
 from benchmarks.common import machine, measured, two_pl_data
 from calibration.irt.models import ItemParameters
 from calibration.irt.scoring import eap_scores, map_scores, ml_scores
+from calibration.irt.simulate import simulate_items
 
 
 def graded_items(seed: int = 5) -> ItemParameters:
     rng = np.random.default_rng(seed)
     return ItemParameters.from_thresholds(rng.uniform(0.8, 2.0, 20), np.sort(rng.normal(0, 1, (20, 4)), axis=1))
+
+
+def mixed_items(seed: int = 9) -> ItemParameters:
+    """20 3PL items (asymptotes 0.1-0.3) and 10 generalized partial credit items of 4 categories."""
+    rng = np.random.default_rng(seed)
+    intercepts = np.full((30, 3), np.nan)
+    intercepts[:20, 0] = rng.normal(0, 1, 20)
+    intercepts[20:] = rng.normal(0, 1, (10, 3))
+    guessing = np.full(30, np.nan)
+    guessing[:20] = rng.uniform(0.1, 0.3, 20)
+    return ItemParameters(
+        slopes=rng.uniform(0.8, 2.0, 30),
+        intercepts=intercepts,
+        n_categories=np.array([2] * 20 + [4] * 10),
+        models=("3pl",) * 20 + ("gpcm",) * 10,
+        guessing=guessing,
+    )
 
 
 def main() -> int:
@@ -32,6 +52,9 @@ def main() -> int:
     subset = x[:girth_rows].T.astype(int)
     graded = graded_items()
     xg = graded_data(200_000, 20, 5, seed=5)
+    mixed = mixed_items()
+    xm = simulate_items(mixed, np.random.default_rng(3).normal(size=100_000), np.random.default_rng(4))
+    partial = mixed.subset(list(range(20, 30)))
     print("rates in respondents per CPU second (per wall second in brackets)")
     for run in (1, 2):
         t_eap, scores = measured(lambda: eap_scores(params, x))
@@ -45,7 +68,13 @@ def main() -> int:
         print(f"  EAP / girth in CPU:                  {1e6 / t_eap.cpu / rate_girth:>12.1f}x")
         worst = float(np.max(np.abs(theirs - scores.theta[:girth_rows])))
         print(f"  largest |theta difference| vs girth: {worst:.4f} (girth integrates on its own grid)")
-        for label, items, data in (("2PL 40 items", params, x[:200_000]), ("graded 20x5", graded, xg)):
+        cases = (
+            ("2PL 40 items", params, x[:200_000]),
+            ("graded 20x5", graded, xg),
+            ("3PL 20 + GPCM 10", mixed, xm),
+            ("GPCM 10x4", partial, xm[:, 20:]),
+        )
+        for label, items, data in cases:
             t_base, _ = measured(lambda items=items, data=data: eap_scores(items, data))
             t_map, _ = measured(lambda items=items, data=data: map_scores(items, data))
             t_ml, _ = measured(lambda items=items, data=data: ml_scores(items, data))

@@ -437,6 +437,17 @@ def _adjacent_probabilities(params: ItemParameters, rows: IntArray, theta: Float
     return weights / weights.sum(axis=1, keepdims=True)
 
 
+def adjacent_moments(params: ItemParameters, theta: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Mean and variance of the category of every item at each theta, each (n_items, n_theta), for a test of
+    partial-credit items only: then ``d log P_k / d theta = a (k - mean)`` and its derivative is ``-a^2 var``."""
+    if not params.adjacent.all():
+        raise ValueError("adjacent_moments needs partial-credit items only")
+    prob = _adjacent_probabilities(params, np.arange(params.n_items), theta)
+    k = np.arange(params.max_categories, dtype=np.float64)
+    mean = np.einsum("jkn,k->jn", prob, k)
+    return mean, np.maximum(np.einsum("jkn,k->jn", prob, k * k) - mean * mean, 0.0)
+
+
 def _adjacent_design(params: ItemParameters, rows: IntArray, theta: FloatArray, n_slots: int) -> FloatArray:
     """``D[j, k, q, s] = d eta_k / d slot_s`` of the listed partial-credit items: ``k theta`` for the slope,
     1 for step ``s <= k`` (within the item's steps), 0 elsewhere."""

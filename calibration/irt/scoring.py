@@ -30,6 +30,7 @@ from calibration.irt.models import (
     FloatArray,
     IntArray,
     ItemParameters,
+    adjacent_moments,
     category_theta_derivatives,
     information_from,
 )
@@ -271,6 +272,24 @@ def _any_model_information(params: ItemParameters, answered: np.ndarray | None, 
     return _answered_sum(information_from(prob, first).T, answered, np.ones(params.n_items))
 
 
+def _partial_credit_curves(
+    params: ItemParameters, codes: IntArray, answered: np.ndarray | None, theta: FloatArray
+) -> tuple[FloatArray, FloatArray]:
+    """Partial-credit items (exponential family in theta): ``d log P_x / d theta = a (x - mean)`` and minus its
+    derivative ``a^2 var`` (the observed curvature equals the information), summed over the answered items;
+    one (J, K, n) probability table, no derivative tables."""
+    mean, var = adjacent_moments(params, theta)  # (J, n)
+    a = params.slopes
+    ones = np.ones(params.n_items)
+    return _answered_sum(a * (codes - mean.T), answered, ones), _answered_sum(var.T, answered, a * a)
+
+
+def _partial_credit_information(params: ItemParameters, answered: np.ndarray | None, theta: FloatArray) -> FloatArray:
+    """Partial-credit items' test information ``sum a^2 var`` over the answered items."""
+    _, var = adjacent_moments(params, theta)
+    return _answered_sum(var.T, answered, params.slopes**2)
+
+
 def _guessing_curves(
     params: ItemParameters, codes: IntArray, answered: np.ndarray | None, theta: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
@@ -330,7 +349,8 @@ class _ModelParts:
             if kind == "3pl":
                 g, c = _guessing_curves(sub, mine, on, theta)
             elif kind == "other":
-                g, c = _any_model_curves(sub, mine, on, theta)
+                curves = _partial_credit_curves if sub.adjacent.all() else _any_model_curves
+                g, c = curves(sub, mine, on, theta)
             elif factors is None:
                 g, c = _right_wrong_curves(sub, mine, on, theta)
             else:
@@ -347,7 +367,8 @@ class _ModelParts:
             if kind == "3pl":
                 total += _guessing_information(sub, on, theta)
             elif kind == "other":
-                total += _any_model_information(sub, on, theta)
+                information = _partial_credit_information if sub.adjacent.all() else _any_model_information
+                total += information(sub, on, theta)
             else:
                 total += _expected_information(sub, on, theta)
         return total
