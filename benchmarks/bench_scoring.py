@@ -33,7 +33,7 @@ def mixed_items(seed: int = 9) -> ItemParameters:
     intercepts = np.full((30, 3), np.nan)
     intercepts[:20, 0] = rng.normal(0, 1, 20)
     intercepts[20:] = rng.normal(0, 1, (10, 3))
-    guessing = np.full(30, np.nan)
+    guessing = np.zeros(30)
     guessing[:20] = rng.uniform(0.1, 0.3, 20)
     return ItemParameters(
         slopes=rng.uniform(0.8, 2.0, 30),
