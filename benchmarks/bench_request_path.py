@@ -26,6 +26,9 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--code", type=Path, help="another equitheta checkout to import instead of this one")
     parser.add_argument("--store", type=Path, help="a store holding bench40 (default: made in a temporary folder)")
+    parser.add_argument(
+        "--redis", metavar="URL", help="serve from this Redis (bench40 copied under a prefix of its own, then removed)"
+    )
     args = parser.parse_args()
     if args.code is not None:
         sys.path.insert(0, str(args.code.resolve()))
@@ -36,7 +39,16 @@ def main() -> int:
 
     store = args.store or Path(tempfile.mkdtemp()) / "store"
     items = make_store(store) if args.store is None else [f"I{j:02d}" for j in range(40)]
-    app = create_app(Settings(store=str(store)))
+    settings = Settings(store=str(store))
+    if args.redis:
+        import uuid
+
+        from calibration.bundle import DirectoryStore, open_store
+
+        prefix = f"bench-request-path-{uuid.uuid4().hex[:8]}"
+        open_store(args.redis, prefix=prefix).put_version(DirectoryStore(store).get("bench40", 1))
+        settings = Settings(store=args.redis, redis_prefix=prefix)
+    app = create_app(settings)
     single, batch = body(items, 1).encode(), body(items, 1000).encode()
 
     async def call(path: str, method: str = "GET", payload: bytes = b"") -> None:
@@ -96,8 +108,17 @@ def main() -> int:
                     f"target <= 2x); 1,000 vectors {many:.2f} ({1000 / many * 1000:,.0f} vectors per CPU second)"
                 )
 
-    print(f"machine: {machine()}; code: {args.code or 'this checkout'}")
-    asyncio.run(run())
+    where = f"Redis store {args.redis}" if args.redis else "directory store"
+    print(f"machine: {machine()}; code: {args.code or 'this checkout'}; {where}")
+    try:
+        asyncio.run(run())
+    finally:
+        if args.redis:
+            import redis
+
+            client = redis.Redis.from_url(args.redis)
+            for key in client.scan_iter(f"{prefix}*"):
+                client.delete(key)
     return 0
 
 
