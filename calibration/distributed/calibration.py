@@ -2,7 +2,8 @@
 
 Every worker reads its partitions of the file once (``calibration.io`` partitions), checks them as
 ``read_responses`` checks a file (codes, ids, groups) and keeps them. The client gathers small
-results only: each partition's problems, ids (for repeats across partitions), group sizes and answers
+results only: each partition's problems, a 64-bit hash of each id (the ids themselves only where hashes
+repeat: for repeats across partitions), group sizes and answers
 per item and category, from which it judges every item's categories as the in-process reader does
 (:class:`DaskTable`).
 
@@ -88,12 +89,12 @@ def _small_codes(responses: FloatArray) -> np.ndarray:
 
 @dataclass(frozen=True)
 class Census:
-    """What the client gathers of a partition: rows, problems, ids, group sizes and answers per code."""
+    """What the client gathers of a partition: rows, problems, id hashes, group sizes and answers per code."""
 
     n_rows: int
     problems: list[str]
     total: int
-    ids: list[Any]
+    id_hashes: np.ndarray  # uint64, one per row
     sizes: dict[str, int]
     counts: IntArray  # (n_items, highest code + 1)
 
@@ -131,12 +132,27 @@ def read_partition(
 
 
 def census(rows: PartitionRows) -> Census:
-    """The partition's problems, ids, group sizes and answers per item and code."""
+    """The partition's problems, id hashes, group sizes and answers per item and code."""
     sizes: dict[str, int] = {}
     for g in rows.groups or ():
         sizes[g] = sizes.get(g, 0) + 1
     counts = category_counts(rows.responses()) if not rows.total else np.zeros((rows.codes.shape[1], 1), np.int64)
-    return Census(rows.n_rows, rows.problems, rows.total, [rows.ids], sizes, counts)
+    return Census(rows.n_rows, rows.problems, rows.total, _id_hashes(rows.ids), sizes, counts)
+
+
+def _id_hashes(ids: Any) -> np.ndarray:
+    """A 64-bit hash of each id (pandas' hash of the strings)."""
+    import pandas as pd
+
+    return pd.util.hash_array(np.asarray(ids.to_numpy(zero_copy_only=False), dtype=object), categorize=False)
+
+
+def ids_with_hashes(rows: PartitionRows, *, hashes: np.ndarray) -> tuple[np.ndarray, Any]:
+    """The partition's rows (positions) whose id hashes to one of ``hashes``, and those ids."""
+    import pyarrow as pa
+
+    at = np.flatnonzero(np.isin(_id_hashes(rows.ids), hashes))
+    return at, rows.ids.take(pa.array(at, type=pa.int64()))
 
 
 def draw_sample(rows: PartitionRows, *, rates: dict[str, float], seed: int, index: int) -> PartitionRows:
@@ -269,6 +285,22 @@ class DaskGroups:
         return sum(self.client.gather(shares))
 
 
+def _raise_repeated_ids(
+    client: Any, path: Path, partitions: list[Partition], rows: list[Any], hashes: list[np.ndarray]
+) -> None:
+    """Ids that occur more than once in the file: found by their hashes, named (file, partition, row) from
+    the ids of the rows whose hash repeats, which the workers send (a hash shared by different ids is no
+    repeat)."""
+    every = np.sort(np.concatenate(hashes))
+    repeats = np.unique(every[1:][every[1:] == every[:-1]])
+    if repeats.size == 0:
+        return
+    found = client.gather(client.map(ids_with_hashes, rows, hashes=repeats, pure=False))
+    problems, total = repeated_ids(path, partitions, [[ids] for _, ids in found], [at for at, _ in found])
+    if total:
+        raise InputError(path.name, problems, total=total)
+
+
 class DaskTable:
     """A response file read and checked by a cluster's workers, which keep its partitions.
 
@@ -328,9 +360,7 @@ class DaskTable:
             raise InputError(path.name, problems[:MAX_PROBLEMS], total=total)
         if not any(c.n_rows for c in found):
             raise InputError(path.name, ["the file has a header but no respondents"])
-        problems, total = repeated_ids(path, partitions, [c.ids for c in found])
-        if total:
-            raise InputError(path.name, problems, total=total)
+        _raise_repeated_ids(client, path, partitions, rows, [c.id_hashes for c in found])
         width = max(c.counts.shape[1] for c in found)
         counts = sum(np.pad(c.counts, ((0, 0), (0, width - c.counts.shape[1]))) for c in found)
 

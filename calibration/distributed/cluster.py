@@ -28,10 +28,15 @@ def dask_client(scheduler: str | None, n_workers: int) -> Iterator[Any]:
         yield stack.enter_context(Client(scheduler or cluster))
 
 
-def repeated_ids(path: Path, partitions: Sequence[Partition], ids: Sequence[Sequence[Any]]) -> tuple[list[str], int]:
+def repeated_ids(
+    path: Path,
+    partitions: Sequence[Partition],
+    ids: Sequence[Sequence[Any]],
+    positions: Sequence[np.ndarray] | None = None,
+) -> tuple[list[str], int]:
     """Ids that occur more than once in the file, each named with two of its places (file, partition, row),
     and how many ids repeat. ``ids[i]`` are partition ``partitions[i]``'s trimmed ids, as Arrow string
-    arrays in row order."""
+    arrays in row order: all of them, or those at the rows ``positions[i]`` of the partition."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
@@ -50,7 +55,8 @@ def repeated_ids(path: Path, partitions: Sequence[Partition], ids: Sequence[Sequ
         where = []
         for at in places[:2]:
             o = int(np.searchsorted(starts, at, side="right") - 1)
-            part = partitions[o]
-            where.append(f"{part.describe(path)}, {row_label(part.first_row + int(at - starts[o]), 0)}")
+            part, offset = partitions[o], int(at - starts[o])
+            row = offset if positions is None else int(positions[o][offset])
+            where.append(f"{part.describe(path)}, {row_label(part.first_row + row, 0)}")
         problems.append(f"id {respondent!r} appears {len(places)} times: {' and '.join(where)}")
     return problems, len(repeated)
