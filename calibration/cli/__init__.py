@@ -45,6 +45,10 @@ def ignored_columns(text: str) -> list[str]:
     return [c.strip() for c in text.split(",") if c.strip()]
 
 
+EVIDENCE_SAMPLE_PER_GROUP = 50_000
+"""Respondents per group the evidence of ``calibrate --engine dask`` rests on unless --evidence-sample says."""
+
+
 def require_dask() -> None:
     """Refuse ``--engine dask`` before any work when the dask extra is not installed, saying what to install."""
     try:
@@ -194,13 +198,12 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:
     dask.add_argument(
         "--evidence-sample",
         type=_positive_int,
-        default=50_000,
         metavar="N",
         help="with --engine dask: the checks, DIF screening and tests, the invariance ladder and the quality "
         "evidence run here on a random sample of about N respondents per group (a group with at most N: all of "
-        "them); the final calibration uses every respondent",
+        f"them; default {EVIDENCE_SAMPLE_PER_GROUP:,}); the final calibration uses every respondent",
     )
-    dask.add_argument("--sample-seed", type=int, default=0, help="seed of the evidence sample (with --engine dask)")
+    dask.add_argument("--sample-seed", type=int, help="seed of the evidence sample (with --engine dask; default 0)")
     scale = cal.add_argument_group("reporting scale (score = mean + sd * theta, rounded and bounded)")
     scale.add_argument("--report-mean", type=float, default=500.0, help="reporting score at theta = 0")
     scale.add_argument("--report-sd", type=_positive_float, default=100.0, help="reporting points per theta unit")

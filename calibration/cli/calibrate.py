@@ -7,7 +7,7 @@ from typing import TYPE_CHECKING, Any
 
 from calibration.bundle import Bundle, parse_reference, resolve
 from calibration.bundle.store import find_identical
-from calibration.cli import UsageError, command_line_mover, require_dask, store_from
+from calibration.cli import EVIDENCE_SAMPLE_PER_GROUP, UsageError, command_line_mover, require_dask, store_from
 from calibration.cli.console import ProgressReporter, out_console
 from calibration.cli.render import print_calibration_summary
 from calibration.io import ResponseData, read_item_spec, read_policy_overrides, read_responses
@@ -68,6 +68,10 @@ def run_calibrate(args: argparse.Namespace) -> int:
     }
     if args.engine == "dask":
         return _run_on_dask(args, options)
+    given = [f for f, v in (("--scheduler", args.scheduler), ("--evidence-sample", args.evidence_sample),
+                            ("--sample-seed", args.sample_seed)) if v is not None]  # fmt: skip
+    if given:
+        raise UsageError(f"{', '.join(given)} appl{'ies' if len(given) == 1 else 'y'} only with --engine dask")
     return _check_calibrate_publish(args, read_responses(args.responses, **options))
 
 
@@ -87,7 +91,7 @@ def _run_on_dask(args: argparse.Namespace, options: dict[str, Any]) -> int:
     with dask_client(args.scheduler, args.dask_workers) as client:
         with ProgressReporter(f"reading and checking {args.responses.name} on {where}"):
             table = DaskTable.open(client, args.responses, **options)
-            data = table.sample(args.evidence_sample, seed=args.sample_seed)
+            data = table.sample(args.evidence_sample or EVIDENCE_SAMPLE_PER_GROUP, seed=args.sample_seed or 0)
         try:
             return _check_calibrate_publish(args, data, whole=table)
         finally:

@@ -49,9 +49,6 @@ from calibration.pipeline.settings import SINGLE_GROUP
 READ_ROWS = 65_536
 """Rows per batch when a worker reads its partition."""
 
-SAMPLE_PER_GROUP = 50_000
-"""Respondents per group the evidence (DIF, the ladder, quality) rests on by default."""
-
 
 @dataclass(frozen=True)
 class PartitionRows:

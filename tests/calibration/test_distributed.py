@@ -313,6 +313,8 @@ def test_calibrate_command_on_dask(tmp_path: Path, cluster: str, capsys: pytest.
     link = [*common, "--store", str(tmp_path / "here"), "--engine", "dask", "--link-to", "sites@1"]
     assert main(link) == 2
     assert "--link-to needs the whole file in this process" in capsys.readouterr().err
+    assert main([*common, "--store", str(tmp_path / "here"), "--evidence-sample", "500"]) == 2
+    assert "--evidence-sample applies only with --engine dask" in capsys.readouterr().err
 
 
 def test_a_bad_calibration_file_is_named_by_partition_and_row(tmp_path: Path, cluster: str) -> None:
