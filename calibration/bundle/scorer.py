@@ -18,7 +18,7 @@ import numpy as np
 from calibration.bundle.schema import Bundle, ItemEntry
 from calibration.errors import UnknownGroup
 from calibration.irt.likelihood import QuadratureGrid
-from calibration.irt.models import FloatArray, IntArray, ItemParameters
+from calibration.irt.models import FloatArray, IntArray, ItemParameters, recode_in_place
 from calibration.irt.person_fit import person_fit_lz
 from calibration.irt.scoring import METHODS, NormalPrior, score, score_tables
 
@@ -163,9 +163,7 @@ class BundleScorer:
         x = np.asarray(responses, dtype=np.float64)
         if self.recode:
             x = x.copy()
-            for j, table in self.recode.items():
-                answered = ~np.isnan(x[:, j])
-                x[answered, j] = table[x[answered, j].astype(np.int64)]
+            recode_in_place(x, self.recode)
         return x
 
     def score(

@@ -40,7 +40,7 @@ from calibration.estimation.start import StartStatistics
 from calibration.io import MAX_PROBLEMS, ItemSpec, Partition, ResponseData, file_sha256, parse_codes, plan_partitions
 from calibration.io.responses import categories_and_models, category_counts, select_items, trimmed_ids
 from calibration.io.tables import PARTITION_BYTES, PARTITION_ROWS, check_required_columns, iter_tables, read_header
-from calibration.irt.models import MODEL_2PL, MODEL_GRM, FloatArray, IntArray, ItemParameters
+from calibration.irt.models import MODEL_2PL, MODEL_GRM, FloatArray, IntArray, ItemParameters, recode_in_place
 from calibration.pipeline.fits import ProgressCallback
 from calibration.pipeline.policy import PolicyTable
 from calibration.pipeline.prepare import PreparedData
@@ -184,9 +184,7 @@ class Recoding:
 def recode_partition(rows: PartitionRows, recoding: Recoding) -> tuple[FloatArray, IntArray]:
     """The partition's responses as the fit reads them (a new float table), and each row's group position."""
     x = rows.responses(recoding.columns)
-    for j, mapping in recoding.category_maps.items():
-        answered = ~np.isnan(x[:, j])
-        x[answered, j] = np.asarray(mapping, dtype=np.float64)[x[answered, j].astype(np.int64)]
+    recode_in_place(x, recoding.category_maps)
     index = np.zeros(x.shape[0], dtype=np.int64)
     if rows.groups is not None:
         position = {g: i for i, g in enumerate(recoding.group_names)}
@@ -315,11 +313,12 @@ class DaskTable:
         item_ids: tuple[str, ...],
         data: ResponseData,
         sizes: dict[str, int],
+        answered: dict[str, int],
     ) -> None:
         self.client, self.path, self.rows, self.partitions = client, path, rows, partitions
         self.item_ids, self.template, self._sizes = item_ids, data, sizes
+        self.answered = answered  # answers to each item in the whole file
         self._sample_record: str | None = None
-        self.answered: dict[str, int] = {}  # answers to each item in the whole file
 
     @classmethod
     def open(  # noqa: PLR0913 - the cluster, the file and keyword-only options of the reader
@@ -392,9 +391,8 @@ class DaskTable:
             held_guessing={i: s.guessing for i, s in declared.items() if s.guessing is not None},
         )
         n_rows = sum(c.n_rows for c in found)
-        table = cls(client, path, rows, partitions, tuple(item_ids), template, sizes or {SINGLE_GROUP: n_rows})
-        table.answered = {item: int(n) for item, n in zip(item_ids, counts.sum(axis=1), strict=True)}
-        return table
+        answered = {item: int(n) for item, n in zip(item_ids, counts.sum(axis=1), strict=True)}
+        return cls(client, path, rows, partitions, tuple(item_ids), template, sizes or {SINGLE_GROUP: n_rows}, answered)
 
     @property
     def n_persons(self) -> int:

@@ -32,7 +32,7 @@ Arrays are padded to the largest category count in the test: intercepts of shape
 from __future__ import annotations
 
 import functools
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -435,6 +435,13 @@ def _adjacent_probabilities(params: ItemParameters, rows: IntArray, theta: Float
     eta -= eta.max(axis=1, keepdims=True)
     weights = np.exp(eta)
     return weights / weights.sum(axis=1, keepdims=True)
+
+
+def recode_in_place(x: FloatArray, maps: Mapping[int, Sequence[int] | FloatArray]) -> None:
+    """Apply answer code -> model category maps (column -> map indexed by the code) to ``x``; NaN stays NaN."""
+    for j, mapping in maps.items():
+        answered = ~np.isnan(x[:, j])
+        x[answered, j] = np.asarray(mapping, dtype=np.float64)[x[answered, j].astype(np.int64)]
 
 
 def adjacent_moments(params: ItemParameters, theta: FloatArray) -> tuple[FloatArray, FloatArray]:

@@ -11,6 +11,7 @@ import numpy as np
 from calibration.bundle.schema import ExcludedItem
 from calibration.errors import CalibrationInputError
 from calibration.io import ResponseData
+from calibration.irt.models import recode_in_place
 from calibration.pipeline.policy import check_overrides
 from calibration.pipeline.settings import (
     HARD_MIN_PER_GROUP,
@@ -158,8 +159,7 @@ def prepare_data(
             mapping, note = merged
             if shared:
                 x, shared = x_all.copy(), False
-            answered = ~np.isnan(x[:, j])
-            x[answered, j] = np.asarray(mapping, dtype=np.float64)[x[answered, j].astype(np.int64)]
+            recode_in_place(x, {j: mapping})
             category_maps[j] = mapping
             k[j] = max(mapping) + 1
             notes.append(f"item {item_ids[j]!r}: {note}; scoring applies the same recoding")
