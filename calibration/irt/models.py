@@ -444,15 +444,51 @@ def recode_in_place(x: FloatArray, maps: Mapping[int, Sequence[int] | FloatArray
         x[answered, j] = np.asarray(mapping, dtype=np.float64)[x[answered, j].astype(np.int64)]
 
 
+ADJACENT_RATIO_LIMIT = 600.0
+"""Largest ``|eta_k - eta_0|`` (in log units) for which :func:`adjacent_moments` takes the product route:
+``exp(+-600)`` is far inside double precision, so no weight overflows or vanishes."""
+
+
 def adjacent_moments(params: ItemParameters, theta: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """Mean and variance of the category of every item at each theta, each (n_items, n_theta), for a test of
-    partial-credit items only: then ``d log P_k / d theta = a (k - mean)`` and its derivative is ``-a^2 var``."""
+    """Mean and variance of the category of every item at each theta, each (n_theta, n_items), for a test of
+    partial-credit items only: then ``d log P_k / d theta = a (k - mean)`` and its derivative is ``-a^2 var``.
+
+    Each category's weight relative to category 0 is the previous one's times ``exp(a theta + c_k)``
+    (``exp(eta_k - eta_{k-1})``): one exponential per respondent and item, on (n, J) arrays. Where a
+    weight could leave double precision (``|eta_k - eta_0|`` possibly above ADJACENT_RATIO_LIMIT) the
+    row is computed from the category probabilities instead (each row's largest predictor subtracted).
+    """
     if not params.adjacent.all():
         raise ValueError("adjacent_moments needs partial-credit items only")
-    prob = _adjacent_probabilities(params, np.arange(params.n_items), theta)
-    k = np.arange(params.max_categories, dtype=np.float64)
-    mean = np.einsum("jkn,k->jn", prob, k)
-    return mean, np.maximum(np.einsum("jkn,k->jn", prob, k * k) - mean * mean, 0.0)
+    theta = np.asarray(theta, dtype=np.float64)
+    a, k_max = params.slopes, params.max_categories
+    steps = params.intercepts[:, : k_max - 1]
+    factors = np.exp(np.where(np.isnan(steps), -np.inf, steps))  # 0 for a step an item lacks: no weight beyond
+    reach = (k_max - 1) * np.max(np.abs(a)) * np.abs(theta) + np.nansum(np.abs(steps), axis=1).max(initial=0.0)
+    safe = reach <= ADJACENT_RATIO_LIMIT
+    at = theta if safe.all() else np.where(safe, theta, 0.0)
+    ratio = np.exp(np.multiply(at[:, None], a))  # exp(a theta), (n, J)
+    weight = np.ones_like(ratio)
+    total, first, second = np.ones_like(ratio), np.zeros_like(ratio), np.zeros_like(ratio)
+    scratch = np.empty_like(ratio)
+    for k in range(1, k_max):
+        weight *= ratio
+        weight *= factors[:, k - 1]
+        total += weight
+        first += np.multiply(weight, float(k), out=scratch)
+        second += np.multiply(weight, float(k * k), out=scratch)
+    first /= total  # the mean
+    second /= total
+    second -= np.multiply(first, first, out=scratch)
+    np.maximum(second, 0.0, out=second)
+    rows = np.flatnonzero(~safe)
+    if rows.size:
+        prob = _adjacent_probabilities(params, np.arange(params.n_items), theta[rows])  # (J, K, rows)
+        k = np.arange(k_max, dtype=np.float64)
+        mean = np.einsum("jkn,k->nj", prob, k)
+        first[rows] = mean
+        second[rows] = np.maximum(np.einsum("jkn,k->nj", prob, k * k) - mean * mean, 0.0)
+    return first, second
 
 
 def _adjacent_design(params: ItemParameters, rows: IntArray, theta: FloatArray, n_slots: int) -> FloatArray:

@@ -277,51 +277,67 @@ def _partial_credit_curves(
 ) -> tuple[FloatArray, FloatArray]:
     """Partial-credit items (exponential family in theta): ``d log P_x / d theta = a (x - mean)`` and minus its
     derivative ``a^2 var`` (the observed curvature equals the information), summed over the answered items;
-    one (J, K, n) probability table, no derivative tables."""
-    mean, var = adjacent_moments(params, theta)  # (J, n)
+    the category moments on (n, J) arrays (:func:`adjacent_moments`), no derivative tables."""
+    mean, var = adjacent_moments(params, theta)  # (n, J)
     a = params.slopes
-    ones = np.ones(params.n_items)
-    return _answered_sum(a * (codes - mean.T), answered, ones), _answered_sum(var.T, answered, a * a)
+    np.subtract(codes, mean, out=mean)
+    return _answered_sum(mean, answered, a), _answered_sum(var, answered, a * a)
 
 
 def _partial_credit_information(params: ItemParameters, answered: np.ndarray | None, theta: FloatArray) -> FloatArray:
     """Partial-credit items' test information ``sum a^2 var`` over the answered items."""
     _, var = adjacent_moments(params, theta)
-    return _answered_sum(var.T, answered, params.slopes**2)
+    return _answered_sum(var, answered, params.slopes**2)
+
+
+def _guessing_parts(params: ItemParameters, theta: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """The 2PL part ``s`` of 3PL items and ``r = (1 - g) s / P_1``, the share of a right answer's probability
+    that is not a guess, each (n, J): ``r = 1 / (1 + (1 + e) g / (1 - g))`` with ``e = exp(-(a theta + c))``."""
+    e = np.multiply(theta[:, None], -params.slopes)
+    e -= params.intercepts[:, 0]
+    np.clip(e, -EXPONENT_LIMIT, EXPONENT_LIMIT, out=e)  # finite: 0 * e below is 0 without an asymptote, not NaN
+    np.exp(e, out=e)
+    e += 1.0
+    s = np.reciprocal(e)
+    e *= params.guessing / (1.0 - params.guessing)
+    e += 1.0
+    return s, np.reciprocal(e, out=e)
 
 
 def _guessing_curves(
     params: ItemParameters, codes: IntArray, answered: np.ndarray | None, theta: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
-    """3PL items on (n, J) arrays: with the 2PL part ``s`` and ``W = s (1 - s)``, ``P_1 = g + (1 - g) s``,
-    ``P_1' = a (1 - g) W`` and ``P_1'' = a^2 (1 - g) W (1 - 2 s)`` (category 0: the negatives); returns
-    ``sum P'_x / P_x`` and ``sum ((P'_x / P_x)^2 - P''_x / P_x)`` over the answered items."""
-    a, g = params.slopes, params.guessing
-    s = _boundary_curve(_odds_against_slope(params, theta), np.exp(-params.intercepts[:, 0]))
-    w = s - s * s
+    """3PL items on (n, J) arrays, ``P_1 = g + (1 - g) s``: ``d log P_0 / d theta = -a s`` and
+    ``d log P_1 / d theta = a r (1 - s)`` (``r`` from :func:`_guessing_parts`), one expression
+    ``a rho (x - s)`` with ``rho = r`` for a right answer and 1 for a wrong one; minus its derivative is
+    ``a^2 rho (s (1 - s) - (1 - rho) (x - s)^2)`` (``dr / d theta = a r (1 - r)(1 - s)``). No division by a
+    probability, so nothing to floor. Summed over the answered items."""
+    s, r = _guessing_parts(params, theta)
     right = codes == 1
-    p_right = g + (1.0 - g) * s
-    p = np.maximum(np.where(right, p_right, 1.0 - p_right), PROBABILITY_FLOOR)
-    sign = np.where(right, 1.0, -1.0)
-    ratio = sign * (a * (1.0 - g)) * w / p
-    bend = sign * (a * a * (1.0 - g)) * w * (1.0 - 2.0 * s) / p
-    ones = np.ones(params.n_items)
-    return _answered_sum(ratio, answered, ones), _answered_sum(ratio * ratio - bend, answered, ones)
+    rho = np.where(right, r, 1.0)
+    residual = np.subtract(right, s, out=r)
+    spread = s - s * s
+    gradient = residual * rho
+    residual *= residual
+    residual *= np.subtract(1.0, rho, out=s)
+    spread -= residual
+    spread *= rho
+    a = params.slopes
+    return _answered_sum(gradient, answered, a), _answered_sum(spread, answered, a * a)
 
 
 def _guessing_information(params: ItemParameters, answered: np.ndarray | None, theta: FloatArray) -> FloatArray:
-    """3PL items' test information ``sum (a (1 - g) W)^2 / (P_1 (1 - P_1))`` over the answered items."""
-    a, g = params.slopes, params.guessing
-    s = _boundary_curve(_odds_against_slope(params, theta), np.exp(-params.intercepts[:, 0]))
-    p_right = g + (1.0 - g) * s
-    slope = (a * (1.0 - g)) * (s - s * s)
-    terms = slope * slope / np.maximum(p_right * (1.0 - p_right), PROBABILITY_FLOOR)
-    return _answered_sum(terms, answered, np.ones(params.n_items))
+    """3PL items' test information ``sum (a (1 - g) W)^2 / (P_1 (1 - P_1))``, which is ``sum a^2 s (1 - s) r``
+    (``W = s (1 - s)``, ``1 - P_1 = (1 - g)(1 - s)``), over the answered items."""
+    s, r = _guessing_parts(params, theta)
+    r *= s
+    r -= r * s
+    return _answered_sum(r, answered, params.slopes**2)
 
 
 class _ModelParts:
     """A test's items split by model family for Newton's per-respondent terms, each family on its cheapest path:
-    2PL/1PL and graded items on (n, J) arrays, 3PL items on (n, J) arrays, partial-credit items on (J, K, n)."""
+    every family on (n, J) arrays (partial-credit items with any other non-cumulative model: (J, K, n) tables)."""
 
     def __init__(self, params: ItemParameters, codes: IntArray) -> None:
         kinds = np.array(
@@ -333,19 +349,20 @@ class _ModelParts:
             if columns.size == 0:
                 continue
             sub = params.subset(columns)
+            mine = np.ascontiguousarray(codes[:, columns])  # once per batch, not per Newton step
             factors = None
             if kind == "cumulative" and sub.max_categories > 2:
-                factors = _answer_factors(sub, codes[:, columns])
-            self.parts.append((kind, columns, sub, factors))
+                factors = _answer_factors(sub, mine)
+            self.parts.append((kind, columns, sub, mine, factors))
 
     def curves(
-        self, codes: IntArray, rows: slice | IntArray, answered: np.ndarray | None, theta: FloatArray
+        self, rows: slice | IntArray, answered: np.ndarray | None, theta: FloatArray
     ) -> tuple[FloatArray, FloatArray]:
         """Gradient and minus the second derivative of the log-likelihood, summed over the families."""
         gradient, curvature = np.zeros(theta.shape[0]), np.zeros(theta.shape[0])
-        for kind, columns, sub, factors in self.parts:
+        for kind, columns, sub, part_codes, factors in self.parts:
             on = None if answered is None else answered[:, columns]
-            mine = codes[rows][:, columns]
+            mine = part_codes[rows]
             if kind == "3pl":
                 g, c = _guessing_curves(sub, mine, on, theta)
             elif kind == "other":
@@ -362,7 +379,7 @@ class _ModelParts:
     def information(self, answered: np.ndarray | None, theta: FloatArray) -> FloatArray:
         """Test information summed over the families."""
         total = np.zeros(theta.shape[0])
-        for kind, columns, sub, _ in self.parts:
+        for kind, columns, sub, _, _ in self.parts:
             on = None if answered is None else answered[:, columns]
             if kind == "3pl":
                 total += _guessing_information(sub, on, theta)
@@ -387,8 +404,12 @@ def _newton_theta(
     """Newton-Raphson for the mode of the (penalised) likelihood, vectorised over persons.
 
     The steps use the observed curvature (the expected information where that is not positive), so
-    convergence is quadratic: a row stops once its step is below ``tolerance`` (1e-6), which leaves
-    it within about 1e-12 of the mode. The SE is from the expected information at the mode.
+    convergence is quadratic: each step is about ``K`` times the previous one squared, and the step after
+    this one about ``K`` times this one squared. A row stops once its step is below ``tolerance`` (1e-6),
+    or once the rate seen over its last two Newton steps (``K ~ step / previous^2``) puts the next step
+    below ``PREDICTED_STEP`` (1e-9, this step at most 1e-3): the row is then within about 1e-9 of the mode,
+    one iteration earlier. A step that was clipped, hit the bound or used the expected information is no
+    Newton step and gives no rate. The SE is from the expected information at the mode.
     """
     answered_cells = ~np.isnan(x)
     answered = None if answered_cells.all() else answered_cells
@@ -408,6 +429,7 @@ def _newton_theta(
     # Right/wrong items: the curvature of the last step is the expected information, so a row whose
     # last step was below SE_REUSE_STEP keeps it for its SE (it changes by far less than 1e-6 there).
     last_info = np.full(n_rows, np.nan)
+    previous = np.full(n_rows, np.nan)  # each row's last Newton step (NaN: none, or not a Newton step)
     for _ in range(max_iter):
         idx = np.flatnonzero(active)
         if idx.size == 0:
@@ -415,7 +437,7 @@ def _newton_theta(
         rows: slice | IntArray = slice(None) if idx.size == n_rows else idx  # a view while every row is active
         on = None if answered is None else answered[rows]
         if parts is not None:
-            gradient, curvature = parts.curves(codes, rows, on, theta[rows])
+            gradient, curvature = parts.curves(rows, on, theta[rows])
         elif lower is None or upper is None:
             gradient, curvature = _right_wrong_curves(params, codes[rows], on, theta[rows])
         else:
@@ -429,13 +451,22 @@ def _newton_theta(
             curvature[bent] = (
                 information(params, None if answered is None else answered[flat], theta[flat]) + prior_curvature
             )
-        step = np.clip(gradient / np.maximum(curvature, 1e-12), -1.0, 1.0)
+        newton = gradient / np.maximum(curvature, 1e-12)
+        step = np.clip(newton, -1.0, 1.0)
         before = theta[rows]
         # Already at the bound and pushed further out: the (log-concave) likelihood's maximum within the
         # bound is the bound itself, so the row stops there (all-lowest and all-highest ML patterns).
         pinned = (np.abs(before) == bound) & (step * before > 0)
-        theta[rows] = np.clip(before + step, -bound, bound)
-        active[rows] = (np.abs(step) > tolerance) & ~pinned
+        after = before + step
+        plain = (step == newton) & (np.abs(after) <= bound)  # a whole Newton step, within the bound
+        if bent.size:
+            plain[bent] = False
+        theta[rows] = np.clip(after, -bound, bound)
+        size = np.abs(step)
+        with np.errstate(invalid="ignore"):
+            settled = (size <= PREDICTED_RATE_STEP) & (size**3 <= PREDICTED_STEP * previous[rows] ** 2)
+        active[rows] = (size > tolerance) & ~pinned & ~settled
+        previous[rows] = np.where(plain, size, np.nan)
         if dichotomous:
             last_info[rows] = np.where(np.abs(step) < SE_REUSE_STEP, curvature, np.nan)
     info = last_info
@@ -447,6 +478,12 @@ def _newton_theta(
         se = np.where(info > 0, 1.0 / np.sqrt(info), np.inf)
     return theta, se
 
+
+PREDICTED_STEP = 1e-9
+"""Newton stops a row once the quadratic rate of its last two steps puts the next step below this."""
+
+PREDICTED_RATE_STEP = 1e-3
+"""... and only once its step is below this (within the quadratic regime)."""
 
 SE_REUSE_STEP = 1e-7
 """A right/wrong Newton step below this lets the row keep that step's information for its SE."""

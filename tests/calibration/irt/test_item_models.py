@@ -8,18 +8,20 @@ import math
 
 import numpy as np
 import pytest
-from scipy import integrate
+from scipy import integrate, optimize, special
 
 from calibration.estimation.layout import params_from_table, slot_table
 from calibration.irt.likelihood import QuadratureGrid, marginal_log_likelihood
 from calibration.irt.models import (
     ItemParameters,
+    adjacent_moments,
     category_parameter_derivatives,
     category_probabilities,
     category_theta_derivatives,
     item_information,
     log_category_probabilities,
 )
+from calibration.irt.scoring import NormalPrior, map_scores, ml_scores
 from calibration.irt.summed_scores import summed_score_likelihoods
 
 THETA = np.linspace(-3.0, 3.0, 13)
@@ -163,3 +165,68 @@ def test_invalid_parameters_are_refused() -> None:
         ItemParameters(np.array([1.0]), np.array([[0.0, -1.0]]), np.array([3]), models=("3pl",))
     with pytest.raises(ValueError, match=r"\[0, 1\)"):
         ItemParameters(np.array([1.0]), np.array([[0.0]]), np.array([2]), models=("3pl",), guessing=np.array([1.0]))
+
+
+def _written_out_log_likelihood(params: ItemParameters, pattern: np.ndarray, theta: float) -> float:
+    probs = written_out(params, theta)
+    return sum(math.log(probs[j][int(x)]) for j, x in enumerate(pattern) if not np.isnan(x))
+
+
+def test_map_and_ml_of_mixed_models_equal_scipy_on_the_written_out_likelihood(mixed: ItemParameters) -> None:
+    # Independent route: scipy.optimize.minimize_scalar (bounded, xatol 1e-10) on the log likelihood (ML) or
+    # log posterior (MAP, normal prior) written out from the models' formulas; SEs from the expected
+    # information written out as sum_k P_k (d log P_k / d theta)^2 by central differences (1e-5).
+    patterns = np.array(
+        [[1, 3, 2, 3, 1], [0, 0, 0, 1, 0], [1, 1, 2, 0, np.nan], [0, 2, 1, 2, 1], [1, 0, 1, 3, 0], [0, 3, 2, 3, 1]]
+    )
+    prior = NormalPrior(0.3, 1.2)
+    map_ = map_scores(mixed, patterns, prior=prior)
+    ml = ml_scores(mixed, patterns, bound=4.0)
+    for i, pattern in enumerate(patterns):
+        posterior = optimize.minimize_scalar(
+            lambda t, p=pattern: -_written_out_log_likelihood(mixed, p, t) + 0.5 * ((t - 0.3) / 1.2) ** 2,
+            bounds=(-8.0, 8.0),
+            method="bounded",
+            options={"xatol": 1e-10},
+        )
+        assert map_.theta[i] == pytest.approx(posterior.x, abs=1e-7)
+        likelihood = optimize.minimize_scalar(
+            lambda t, p=pattern: -_written_out_log_likelihood(mixed, p, t),
+            bounds=(-4.0, 4.0),
+            method="bounded",
+            options={"xatol": 1e-10},
+        )
+        if i == 0:  # every item in its top category: no ML estimate, the bound by the documented rule
+            assert ml.theta[i] == 4.0 and ml.extreme[i]
+        else:
+            assert ml.theta[i] == pytest.approx(likelihood.x, abs=1e-7)
+        for scores, extra in ((map_, 1 / 1.2**2), (ml, 0.0)):
+            t, h = scores.theta[i], 1e-5
+            info = 0.0
+            for j, x in enumerate(pattern):
+                if np.isnan(x):
+                    continue
+                up, mid, down = written_out(mixed, t + h)[j], written_out(mixed, t)[j], written_out(mixed, t - h)[j]
+                info += sum(
+                    m * ((math.log(u) - math.log(d)) / (2 * h)) ** 2 for u, m, d in zip(up, mid, down, strict=True)
+                )
+            assert scores.se[i] == pytest.approx((info + extra) ** -0.5, rel=1e-7)
+
+
+def test_partial_credit_moments_far_out_equal_a_softmax() -> None:
+    # Source: scipy.special.softmax of eta_k = k a theta + c_1 + ... + c_k (Muraki 1992). Slopes of 20 and
+    # steps of 150 take |eta| past 600 within |theta| <= 60, where the moments come from a second route.
+    steep = ItemParameters(
+        slopes=np.array([20.0, 15.0, 1.0, 3.0]),
+        intercepts=np.array([[1.0, 2.0, -1.0], [0.0, 5.0, 3.0], [-150.0, 100.0, 40.0], [0.5, np.nan, np.nan]]),
+        n_categories=np.array([4, 4, 4, 2]),
+        models=("gpcm",) * 4,
+    )
+    theta = np.linspace(-60.0, 60.0, 2001)
+    mean, var = adjacent_moments(steep, theta)
+    for j in range(steep.n_items):
+        k = np.arange(steep.n_categories[j])
+        offsets = np.concatenate([[0.0], np.cumsum(steep.intercepts[j, : k.size - 1])])
+        prob = special.softmax(k[None, :] * steep.slopes[j] * theta[:, None] + offsets[None, :], axis=1)
+        np.testing.assert_allclose(mean[:, j], prob @ k, atol=1e-12)
+        np.testing.assert_allclose(var[:, j], prob @ (k * k) - (prob @ k) ** 2, atol=1e-12)
