@@ -3,8 +3,10 @@
 Figures: requests/s and p50/p99 latency for /healthz and for a single-vector 40-item score
 (target: scoring at least half the /healthz rate), and vectors scored per second with
 1,000 vectors per request (target: at least 100,000), for the directory store and (when a Redis
-answers on 127.0.0.1:6379) the Redis store, each twice. Bounded: each run lasts a few seconds.
-The load generator shares the 2 cores with the server, so the figures are lower bounds and noisy.
+answers on 127.0.0.1:6379) the Redis store, each twice; beside each figure the CPU seconds each
+worker spent (an uneven split means wrk's connections went mostly to one worker). Bounded: each
+run lasts a few seconds. The load generator shares the 2 cores with the server, so the figures
+are lower bounds and noisy.
 """
 
 from __future__ import annotations
@@ -28,6 +30,12 @@ from calibration.io import ResponseData
 from calibration.pipeline import calibrate_data
 
 DURATION = 8
+CONNECTIONS = 64
+"""wrk connections for /healthz and one vector. With 16, the two workers often split them unevenly (one
+worker near 55% CPU in 5 of 10 runs on 2026-12-03), and /healthz swung 1,150-3,830 req/s with it; with
+64 both workers were busy in every run. Each figure prints the CPU seconds each worker spent."""
+BATCH_CONNECTIONS = 16
+"""wrk connections for 1,000-vector batches (with 4, all four sometimes went to one worker: half the rate)."""
 
 
 def make_store(root: Path) -> list[str]:
@@ -100,6 +108,21 @@ def python_load(url: str, payload: str | None, seconds: float = DURATION) -> dic
     }
 
 
+def worker_cpu(server: subprocess.Popen[bytes]) -> list[float]:
+    """CPU seconds (user + system) of each uvicorn worker, the server's child processes (Linux /proc)."""
+    ticks = os.sysconf("SC_CLK_TCK")
+    out = []
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+            cmdline = (stat.parent / "cmdline").read_bytes()
+        except OSError:
+            continue
+        if int(fields[1]) == server.pid and b"resource_tracker" not in cmdline:
+            out.append((int(fields[11]) + int(fields[12])) / ticks)
+    return out
+
+
 def serve(store: str, port: int, env: dict[str, str]) -> subprocess.Popen[bytes]:
     """uvicorn with 2 workers on ``store``, ready to answer."""
     server = subprocess.Popen(
@@ -149,19 +172,21 @@ def main() -> int:
             check = httpx.post(score_url, content=batch, headers={"Content-Type": "application/json"}, timeout=30)
             assert check.status_code == 200 and len(check.json()["results"]) == 1000
             for run in (1, 2):
-                health = load(f"{base}/healthz", None, 16)
-                one = load(score_url, single, 16)
-                many = load(score_url, batch, 4)
                 print(f"{label}, pass {run}")
-                for name, r in (
-                    ("/healthz", health),
-                    ("score, 1 vector x 40 items", one),
-                    ("score, 1,000 vectors", many),
+                figures = {}
+                for name, url, payload, connections in (
+                    ("/healthz", f"{base}/healthz", None, CONNECTIONS),
+                    ("score, 1 vector x 40 items", score_url, single, CONNECTIONS),
+                    ("score, 1,000 vectors", score_url, batch, BATCH_CONNECTIONS),
                 ):
+                    before = worker_cpu(server)
+                    r = figures[name] = load(url, payload, connections)
+                    spent = " / ".join(f"{b - a:.1f}" for a, b in zip(before, worker_cpu(server), strict=False))
                     print(
                         f"  {name:<28} {r['rps']:>9,.0f} req/s  p50 {r['p50_ms']:7.2f} ms  p99 {r['p99_ms']:7.2f} ms"
-                        f"  non-2xx {int(r['errors'])}"
+                        f"  non-2xx {int(r['errors'])}  worker CPU s {spent}"
                     )
+                health, one, many = figures.values()
                 print(f"  single-vector score rate / healthz rate: {one['rps'] / health['rps']:.2f} (target >= 0.5)")
                 print(f"  batch: {many['rps'] * 1000:,.0f} vectors scored per second (target >= 100,000)")
         finally:

@@ -99,6 +99,8 @@ class BundleRegistry:
         self._feed_since: float | None = None  # monotonic time the change feed last (re)subscribed
         self._viewed: dict[str, float] = {}  # monotonic time each name's view was last read from the store
         self._tokens: dict[str, Any] = {}  # each name's change token when its view was read
+        self._reading: dict[str, threading.Lock] = {}  # one store read of a name's view at a time
+        self._read_outcome: dict[str, tuple[float, StoreUnavailable | None]] = {}  # when the last read ended, its error
         self.reseeded: list[str] = []  # name@version written back to a store that had lost them
 
     # -- state --------------------------------------------------------------------------------------
@@ -221,12 +223,26 @@ class BundleRegistry:
         return self._load(name, version)
 
     def _refresh_or_remembered(self, name: str) -> None:
-        """Re-read a name's versions and aliases; when the store is down keep what was seen before."""
-        try:
-            self._store(self._refresh_view, name)
-        except StoreUnavailable:
-            if name not in self._view.versions:
-                raise
+        """Re-read a name's versions and aliases; when the store is down keep what was seen before.
+
+        One read per name at a time: callers that waited while another read the view take that read's
+        result (a view now current, or the read's failure) instead of reading again; when a stale view
+        met many requests at once, each of them used to read the store and open its own connection.
+        """
+        entered = time.monotonic()
+        with self._lock:
+            reading = self._reading.setdefault(name, threading.Lock())
+        with reading:
+            ended, error = self._read_outcome.get(name, (float("-inf"), None))
+            if ended < entered and not self._view_current(name):
+                error = None
+                try:
+                    self._store(self._refresh_view, name)
+                except StoreUnavailable as exc:
+                    error = exc
+                self._read_outcome[name] = (time.monotonic(), error)
+        if error is not None and name not in self._view.versions:
+            raise error
 
     def default_held(self, name: str) -> LoadedBundle | None:
         """The default version from memory alone, when the view is known to be current; else None.
@@ -236,20 +252,22 @@ class BundleRegistry:
         since the view was read. Either way an unpinned request then needs no store read, and the view
         is still re-read at least every ``FEED_TRUST`` seconds.
         """
-        if self.degraded_reason is not None:
+        if not self._view_current(name):
             return None
-        seen = self._viewed.get(name)
-        if seen is None or time.monotonic() - seen > FEED_TRUST:
-            return None
-        if self._feed_since is not None:
-            if seen < self._feed_since:
-                return None
-        else:
-            token = self._token(name)
-            if token is None or token != self._tokens.get(name):
-                return None
         version = self._default_version(name)
         return None if version is None else self.held(name, version)
+
+    def _view_current(self, name: str) -> bool:
+        """Whether the held view of ``name`` is known to be current (see :meth:`default_held`)."""
+        if self.degraded_reason is not None:
+            return False
+        seen = self._viewed.get(name)
+        if seen is None or time.monotonic() - seen > FEED_TRUST:
+            return False
+        if self._feed_since is not None:
+            return seen >= self._feed_since
+        token = self._token(name)
+        return token is not None and token == self._tokens.get(name)
 
     def _default_version(self, name: str) -> int | None:
         aliases = self._view.aliases.get(name, {})

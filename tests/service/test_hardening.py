@@ -26,6 +26,7 @@ from calibration.bundle.directory_store import STALE_TEMP_SECONDS
 from calibration.bundle.redis_store import RedisStore
 from calibration.bundle.schema import Bundle
 from service.main import create_app
+from service.registry import BundleRegistry
 from service.settings import Settings
 from tests.helpers import (
     auth,
@@ -358,3 +359,33 @@ def test_the_container_starts_through_equitheta_serve() -> None:
 def test_bundle_documents_round_trip_the_strict_schema() -> None:
     # The stricter schema (no infinities, ranges) still reads every bundle the examples hold.
     Bundle.model_validate_json((Path(__file__).parents[2] / "openapi_examples" / "bundle.json").read_text())
+
+
+def test_a_stale_view_met_by_many_requests_is_read_once(example_store: Path) -> None:
+    # A publish makes the held view stale (the directory store's change token moves); eight requests
+    # that meet it at once used to read the store eight times, each on its own connection. One reads;
+    # the others wait for it and score with what it read.
+    store = DirectoryStore(example_store)
+    registry = BundleRegistry(store)
+    registry.preload()
+    assert registry.default("pantry-checkout").bundle.version == 1
+    document = json.loads(example_bundle().model_dump_json())
+    document["provenance"]["notes"] = ["second calibration"]
+    store.publish(Bundle.model_validate(document))
+    reads: list[str] = []
+    original = store.versions
+    store.versions = lambda name: reads.append(name) or original(name)  # type: ignore[method-assign]
+    barrier = threading.Barrier(8)
+    versions: list[int] = []
+
+    def request() -> None:
+        barrier.wait()
+        versions.append(registry.default("pantry-checkout").bundle.version)
+
+    threads = [threading.Thread(target=request) for _ in range(8)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert versions == [2] * 8
+    assert reads == ["pantry-checkout"]
