@@ -259,9 +259,32 @@ def _add_dask_options(parser: argparse.ArgumentParser, engines: str) -> argparse
         "(default: a local cluster started for the job)",
     )
     dask.add_argument(
-        "--dask-workers", type=_positive_int, default=2, help="worker processes of the local cluster (one thread each)"
+        "--dask-workers",
+        type=_positive_int,
+        help=f"worker processes of the local cluster, one thread each (default {DASK_WORKERS})",
     )
     return dask
+
+
+DASK_WORKERS = 2
+"""Worker processes of the local cluster that ``--engine dask`` starts when no ``--scheduler`` is given."""
+
+
+def dask_workers(args: argparse.Namespace, *only_on_dask: tuple[str, object]) -> int:
+    """The local cluster's size; options for Dask given without ``--engine dask`` (or ``--dask-workers`` beside
+    ``--scheduler``, whose own workers run the job) are refused by name rather than ignored."""
+    if args.engine == "dask":
+        if args.scheduler is not None and args.dask_workers is not None:
+            raise UsageError(
+                "--dask-workers sizes the local cluster started for the job; with --scheduler the scheduler's own "
+                "workers run it: leave one of them out"
+            )
+        return int(args.dask_workers or DASK_WORKERS)
+    flags = (("--scheduler", args.scheduler), ("--dask-workers", args.dask_workers), *only_on_dask)
+    given = [flag for flag, value in flags if value is not None]
+    if given:
+        raise UsageError(f"{', '.join(given)} appl{'ies' if len(given) == 1 else 'y'} only with --engine dask")
+    return 0
 
 
 def _add_bundle(sub: argparse._SubParsersAction) -> None:

@@ -7,7 +7,14 @@ from typing import TYPE_CHECKING, Any
 
 from calibration.bundle import Bundle, parse_reference, resolve
 from calibration.bundle.store import find_identical
-from calibration.cli import EVIDENCE_SAMPLE_PER_GROUP, UsageError, command_line_mover, require_dask, store_from
+from calibration.cli import (
+    EVIDENCE_SAMPLE_PER_GROUP,
+    UsageError,
+    command_line_mover,
+    dask_workers,
+    require_dask,
+    store_from,
+)
 from calibration.cli.console import ProgressReporter, out_console
 from calibration.cli.render import print_calibration_summary
 from calibration.io import ResponseData, read_item_spec, read_policy_overrides, read_responses
@@ -66,16 +73,13 @@ def run_calibrate(args: argparse.Namespace) -> int:
         "polytomous_model": args.polytomous_model,
         "group_column": args.group_column,
     }
+    workers = dask_workers(args, ("--evidence-sample", args.evidence_sample), ("--sample-seed", args.sample_seed))
     if args.engine == "dask":
-        return _run_on_dask(args, options)
-    given = [f for f, v in (("--scheduler", args.scheduler), ("--evidence-sample", args.evidence_sample),
-                            ("--sample-seed", args.sample_seed)) if v is not None]  # fmt: skip
-    if given:
-        raise UsageError(f"{', '.join(given)} appl{'ies' if len(given) == 1 else 'y'} only with --engine dask")
+        return _run_on_dask(args, options, workers)
     return _check_calibrate_publish(args, read_responses(args.responses, **options))
 
 
-def _run_on_dask(args: argparse.Namespace, options: dict[str, Any]) -> int:
+def _run_on_dask(args: argparse.Namespace, options: dict[str, Any], workers: int) -> int:
     """``calibrate --engine dask``: the file held by the cluster, the evidence on a sample of it."""
     if args.link_to:
         raise UsageError(
@@ -87,8 +91,8 @@ def _run_on_dask(args: argparse.Namespace, options: dict[str, Any]) -> int:
     from calibration.distributed.cluster import dask_client
 
     store_from(args.store)  # an unusable store fails before the cluster starts
-    where = args.scheduler or f"a local cluster of {args.dask_workers} worker processes"
-    with dask_client(args.scheduler, args.dask_workers) as client:
+    where = args.scheduler or f"a local cluster of {workers} worker processes"
+    with dask_client(args.scheduler, workers) as client:
         with ProgressReporter(f"reading and checking {args.responses.name} on {where}"):
             table = DaskTable.open(client, args.responses, **options)
             data = table.sample(args.evidence_sample or EVIDENCE_SAMPLE_PER_GROUP, seed=args.sample_seed or 0)

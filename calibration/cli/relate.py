@@ -13,6 +13,7 @@ from calibration.bundle.relations import EXPECTATIONS, Relations, relate_measure
 from calibration.bundle.scorer import BundleScorer, UnknownGroup
 from calibration.cli import UsageError, ignored_columns, store_from
 from calibration.cli.console import dash, error_console, new_table, out_console
+from calibration.cli.score import missing_group_column
 from calibration.errors import InputError
 from calibration.io import MAX_PROBLEMS, ScoringInput, row_label, write_csv_atomic
 
@@ -56,7 +57,7 @@ def run_relate(args: argparse.Namespace) -> int:
     scorer = BundleScorer(resolve(store_from(args.store), args.bundle))
     ignore = ignored_columns(args.ignore_columns)
     if args.group_column is None and scorer.default_group is None:
-        raise UsageError(f"bundle {scorer.bundle.label} has groups ({', '.join(scorer.plans)}): name --group-column")
+        raise UsageError(missing_group_column(args.responses, scorer, args.id_column, [*ignore, *args.measure]))
     opened = ScoringInput(
         args.responses,
         item_categories=scorer.item_categories,

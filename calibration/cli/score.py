@@ -10,7 +10,7 @@ import numpy as np
 
 from calibration.bundle import Bundle, resolve
 from calibration.bundle.scorer import BundleScorer, ScoredBatch, UnknownGroup
-from calibration.cli import UsageError, ignored_columns, require_dask, store_from
+from calibration.cli import UsageError, dask_workers, ignored_columns, require_dask, store_from
 from calibration.cli.console import error_console, out_console
 from calibration.cli.render import CAUTION
 from calibration.io import MAX_PROBLEMS, ScoringInput, read_header, row_label
@@ -29,9 +29,10 @@ def run_score(args: argparse.Namespace) -> int:
     scorer = BundleScorer(bundle)
     ignore = ignored_columns(args.ignore_columns)
     if args.group_column is None and scorer.default_group is None:
-        raise UsageError(_missing_group_column(args.responses, bundle, scorer, args.id_column, ignore))
+        raise UsageError(missing_group_column(args.responses, scorer, args.id_column, ignore))
+    workers = dask_workers(args)
     if args.engine == "dask":
-        return _run_on_dask(args, bundle, ignore)
+        return _run_on_dask(args, bundle, ignore, workers)
     opened = ScoringInput(
         args.responses,
         item_categories=scorer.item_categories,
@@ -64,7 +65,7 @@ def run_score(args: argparse.Namespace) -> int:
     return 0
 
 
-def _run_on_dask(args: argparse.Namespace, bundle: Bundle, ignore: list[str]) -> int:
+def _run_on_dask(args: argparse.Namespace, bundle: Bundle, ignore: list[str], workers: int) -> int:
     """``equitheta score --engine dask``: the file's partitions scored on a cluster (see calibration.distributed)."""
     require_dask()
     import time
@@ -77,14 +78,14 @@ def _run_on_dask(args: argparse.Namespace, bundle: Bundle, ignore: list[str]) ->
     def progress(done: int, total: int) -> None:
         console.print(f"[{time.perf_counter() - start:8.1f} s] partition {done} of {total} scored", highlight=False)
 
-    where = args.scheduler or f"a local cluster of {args.dask_workers} worker processes"
+    where = args.scheduler or f"a local cluster of {workers} worker processes"
     console.print(f"scoring {args.responses.name} on {where}", highlight=False)
     result = score_file_on_dask(
         args.responses,
         bundle,
         args.out,
         scheduler=args.scheduler,
-        n_workers=args.dask_workers,
+        n_workers=workers,
         progress=progress,
         id_column=args.id_column,
         group_column=args.group_column,
@@ -101,7 +102,9 @@ def _run_on_dask(args: argparse.Namespace, bundle: Bundle, ignore: list[str]) ->
     return 0
 
 
-def _missing_group_column(path: Path, bundle: Bundle, scorer: BundleScorer, id_column: str, ignore: list[str]) -> str:
+def missing_group_column(path: Path, scorer: BundleScorer, id_column: str, ignore: list[str]) -> str:
+    """A bundle with groups met a file without ``--group-column``: the message, with the columns that could be it."""
+    bundle = scorer.bundle
     columns = read_header(path)
     others = [c for c in columns if c != id_column and c not in scorer.item_categories and c not in ignore]
     hint = ""

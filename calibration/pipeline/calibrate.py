@@ -77,7 +77,13 @@ def calibrate_data(  # noqa: PLR0913 - the data and keyword-only options
     if link is not None:
         check_link_request(link, settings)
         reference_group = link_reference_group(data, link, reference_group)
-    prepared = prepare_data(data, settings=settings, reference_group=reference_group, overrides=overrides)
+    prepared = prepare_data(
+        data,
+        settings=settings,
+        reference_group=reference_group,
+        overrides=overrides,
+        whole_sizes=None if whole is None else whole.group_sizes,
+    )
     if prepared.held_guessing:  # every fit holds the asymptotes the item spec gives
         settings = replace(settings, em=replace(settings.em, held_guessing=prepared.held_guessing))
     notes = list(prepared.notes)

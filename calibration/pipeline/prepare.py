@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from functools import cached_property
 
@@ -89,8 +89,12 @@ def prepare_data(
     settings: PipelineSettings,
     reference_group: str | None = None,
     overrides: Sequence[PolicyOverride] = (),
+    whole_sizes: Mapping[str, int] | None = None,
 ) -> PreparedData:
     """Every check that needs no model fit: sizes, variance, sparse categories, overrides, anchors.
+
+    ``whole_sizes``: respondents per group in the whole table when ``data`` is a random sample of it
+    (the notes on small groups then say which evidence rests on the sample and which on everyone).
 
     Raises :class:`CalibrationInputError` naming what is wrong; cheap enough to run before a
     progress display starts (the command line does).
@@ -118,7 +122,7 @@ def prepare_data(
                 f"{data.source}: groups with fewer than {settings.min_group_size} respondents cannot be calibrated "
                 f"or screened for DIF: {', '.join(small)}; merge or drop them"
             )
-    notes.extend(small_group_notes(group_names, sizes, multiple=n_groups > 1))
+    notes.extend(small_group_notes(group_names, sizes, multiple=n_groups > 1, whole_sizes=whole_sizes))
 
     # Items without variance: out of the calibration if so in the reference group, else out for that group.
     x_all = data.responses
@@ -184,10 +188,27 @@ def prepare_data(
     )
 
 
-def small_group_notes(group_names: list[str], sizes: np.ndarray, *, multiple: bool) -> list[str]:
-    """What a group below the recommended size means for its evidence, in words."""
+def small_group_notes(
+    group_names: list[str], sizes: np.ndarray, *, multiple: bool, whole_sizes: Mapping[str, int] | None = None
+) -> list[str]:
+    """What a group below the recommended size means for its evidence, in words.
+
+    ``whole_sizes``: each group's respondents in the whole table when ``sizes`` count a random sample of it.
+    """
     out = []
     for name, n in zip(group_names, sizes, strict=True):
+        everyone = int(n) if whole_sizes is None else int(whole_sizes[name])
+        if n < RECOMMENDED_MIN_RESPONDENTS <= everyone:
+            out.append(
+                f"group {name!r}: the evidence sample holds {int(n):,} of its {everyone:,} respondents, below the "
+                f"common floor of about {RECOMMENDED_MIN_RESPONDENTS}: the item fit (S-X2), the residual PCA"
+                + (", the DIF tests and Mantel-Haenszel strata and the effect sizes" if multiple else "")
+                + f" rest on those {int(n):,} and are imprecise; the item parameters, their SEs"
+                + (" and the group's latent mean and SD" if multiple else "")
+                + f" use all {everyone:,}; a larger evidence sample strengthens the evidence"
+            )
+            continue
+        n = everyone
         if n >= RECOMMENDED_MIN_RESPONDENTS:
             continue
         what = "item-parameter SEs are wide; the S-X2 item fit and the residual PCA rest on sparse cells"

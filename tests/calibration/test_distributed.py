@@ -315,6 +315,15 @@ def test_calibrate_command_on_dask(tmp_path: Path, cluster: str, capsys: pytest.
     assert "--link-to needs the whole file in this process" in capsys.readouterr().err
     assert main([*common, "--store", str(tmp_path / "here"), "--evidence-sample", "500"]) == 2
     assert "--evidence-sample applies only with --engine dask" in capsys.readouterr().err
+    assert main([*common, "--store", str(tmp_path / "here"), "--dask-workers", "3"]) == 2  # was ignored
+    assert "--dask-workers applies only with --engine dask" in capsys.readouterr().err
+    both = ["--engine", "dask", "--scheduler", cluster, "--dask-workers", "3"]
+    assert main([*common, "--store", str(tmp_path / "here"), *both]) == 2
+    assert "with --scheduler the scheduler's own workers run it" in capsys.readouterr().err
+    score = ["score", str(data), "--bundle", "sites", "--store", str(tmp_path / "here"), "--group-column", "site"]
+    assert main([*score, "--out", str(tmp_path / "s.csv"), "--scheduler", cluster]) == 2
+    assert "--scheduler applies only with --engine dask" in capsys.readouterr().err
+    assert not (tmp_path / "s.csv").exists()
 
 
 def test_a_bad_calibration_file_is_named_by_partition_and_row(tmp_path: Path, cluster: str) -> None:

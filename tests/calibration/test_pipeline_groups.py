@@ -14,7 +14,13 @@ from calibration.cli import main
 from calibration.demo import make_demo_responses
 from calibration.io import read_responses
 from calibration.irt.scoring import NormalPrior, eap_scores
-from calibration.pipeline import CalibrationInputError, PipelineSettings, PolicyOverride, calibrate_data
+from calibration.pipeline import (
+    CalibrationInputError,
+    PipelineSettings,
+    PolicyOverride,
+    calibrate_data,
+    small_group_notes,
+)
 
 
 @pytest.fixture(scope="module")
@@ -231,3 +237,20 @@ def test_sparse_graded_category_is_merged_and_scoring_recodes(tmp_path: Path) ->
     answers[0, j], answers[1, j] = 3, 2
     theta = scorer.score(answers, ["port-ellery", "port-ellery"]).theta
     assert theta[0] == theta[1]  # 3 and 2 are one category now
+
+
+def test_small_group_notes_on_a_sample_name_the_sample_and_the_whole_group() -> None:
+    # On a random sample (calibrate --engine dask), a group of 1,881 respondents of which the sample holds
+    # 494 was noted as a group of 494 with wide item SEs, though the item parameters use all 1,881. The
+    # note now says which evidence rests on the sample; a group small in the whole file keeps its note.
+    notes = small_group_notes(
+        ["male", "female", "other"], np.array([900, 494, 120]), multiple=True,
+        whole_sizes={"male": 3100, "female": 1881, "other": 120},
+    )  # fmt: skip
+    assert len(notes) == 2
+    assert "the evidence sample holds 494 of its 1,881 respondents" in notes[0]
+    assert "DIF tests" in notes[0] and "use all 1,881" in notes[0]
+    assert notes[1].startswith("group 'other': 120 respondents is below the common floor")
+    assert small_group_notes(["all"], np.array([494]), multiple=False) == [
+        small_group_notes(["all"], np.array([494]), multiple=False, whole_sizes={"all": 494})[0]
+    ]

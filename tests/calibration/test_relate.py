@@ -79,7 +79,7 @@ def test_correlations_intervals_and_evidence(related: dict) -> None:
         assert row["p_value"] == pytest.approx(stats.chi2.sf(q, 1), abs=5e-7)
 
 
-def test_bad_measure_cells_and_options_are_named(related: dict) -> None:
+def test_bad_measure_cells_and_options_are_named(related: dict, capsys: pytest.CaptureFixture[str]) -> None:
     frame = related["frame"].copy()
     frame["criterion"] = frame["criterion"].astype(object)
     frame.loc[7, "criterion"] = "n/a"
@@ -93,6 +93,9 @@ def test_bad_measure_cells_and_options_are_named(related: dict) -> None:
         from calibration.cli.relate import run_relate
 
         run_relate(build_parser().parse_args(base[:]))
+    no_groups = [a for a in base if a not in ("--group-column", "mode")]
+    assert main(no_groups) == 2  # the bundle has groups: the message names the one column that could hold them
+    assert "(perhaps --group-column mode)" in capsys.readouterr().err
     assert main([*base, "--expect", "criterion:sideways"]) == 2
     assert main([*base, "--reliability", "criterion=1.5"]) == 2
     assert not (related["root"] / "x.csv").exists()
