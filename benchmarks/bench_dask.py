@@ -15,7 +15,7 @@ Then the whole command on the same file: ``equitheta calibrate`` in process agai
 --engine dask --scheduler`` (its checks and quality evidence on a sample of 50,000 respondents, the final
 fit on all), the published bundles' item parameters compared.
 
-    .venv/bin/python -m benchmarks.bench_dask [--rows N] [--calibration-rows M] [--skip-scoring]
+    .venv/bin/python -m benchmarks.bench_dask [--rows N] [--calibration-rows M] [--skip-scoring | --skip-calibration]
 """
 
 from __future__ import annotations
@@ -81,6 +81,7 @@ def main() -> int:
     parser.add_argument("--rows", type=int, default=5_000_000)
     parser.add_argument("--calibration-rows", type=int, default=2_000_000)
     parser.add_argument("--skip-scoring", action="store_true", help="only the calibration part")
+    parser.add_argument("--skip-calibration", action="store_true", help="only the scoring part")
     args = parser.parse_args()
     from dask.distributed import Client, LocalCluster
 
@@ -109,7 +110,8 @@ def main() -> int:
         same = (local["id"] == dask["id"]).all()
         gap = float(np.max(np.abs(local["theta"] - dask["theta"])))
         print(f"outputs: ids in the same order {same}; largest theta difference {gap:.1e} (the CSV prints 6 decimals)")
-        calibration(folder, args.calibration_rows)
+        if not args.skip_calibration:
+            calibration(folder, args.calibration_rows)
     return 0
 
 

@@ -30,7 +30,7 @@ from typing import Any
 
 import numpy as np
 
-from calibration.distributed.cluster import repeated_ids
+from calibration.distributed.cluster import id_hashes, repeated_hashes, repeated_ids
 from calibration.errors import InputError
 from calibration.estimation import EMSettings, LatentSpec, MultiGroupFit, calibrate_groups
 from calibration.estimation.estep import ExpectedCounts, GroupData, expected_counts, prepare_groups
@@ -134,21 +134,14 @@ def census(rows: PartitionRows) -> Census:
     for g in rows.groups or ():
         sizes[g] = sizes.get(g, 0) + 1
     counts = category_counts(rows.responses()) if not rows.total else np.zeros((rows.codes.shape[1], 1), np.int64)
-    return Census(rows.n_rows, rows.problems, rows.total, _id_hashes(rows.ids), sizes, counts)
-
-
-def _id_hashes(ids: Any) -> np.ndarray:
-    """A 64-bit hash of each id (pandas' hash of the strings)."""
-    import pandas as pd
-
-    return pd.util.hash_array(np.asarray(ids.to_numpy(zero_copy_only=False), dtype=object), categorize=False)
+    return Census(rows.n_rows, rows.problems, rows.total, id_hashes(rows.ids), sizes, counts)
 
 
 def ids_with_hashes(rows: PartitionRows, *, hashes: np.ndarray) -> tuple[np.ndarray, Any]:
     """The partition's rows (positions) whose id hashes to one of ``hashes``, and those ids."""
     import pyarrow as pa
 
-    at = np.flatnonzero(np.isin(_id_hashes(rows.ids), hashes))
+    at = np.flatnonzero(np.isin(id_hashes(rows.ids), hashes))
     return at, rows.ids.take(pa.array(at, type=pa.int64()))
 
 
@@ -286,8 +279,7 @@ def _raise_repeated_ids(
     """Ids that occur more than once in the file: found by their hashes, named (file, partition, row) from
     the ids of the rows whose hash repeats, which the workers send (a hash shared by different ids is no
     repeat)."""
-    every = np.sort(np.concatenate(hashes))
-    repeats = np.unique(every[1:][every[1:] == every[:-1]])
+    repeats = repeated_hashes(hashes)
     if repeats.size == 0:
         return
     found = client.gather(client.map(ids_with_hashes, rows, hashes=repeats, pure=False))

@@ -5,10 +5,11 @@ row groups of a Parquet file), validates it as ``equitheta score`` validates a f
 the bundle and writes its part under a temporary directory next to the output, by a temporary name
 renamed into place (a task that Dask runs again after a worker died writes the same part again: no
 row twice, none missing). The client gathers small outcomes: the problems found (named by file,
-partition and row), the ids (for duplicates across partitions) and the figures of the closing
-summary. Only when every partition is clean does the output appear: a directory of Parquet parts, or
-one CSV file assembled in partition order. The workers must see the input and output paths (a local
-cluster, or a shared file system).
+partition and row), a 64-bit hash of each id (for ids repeated across partitions; only the partitions
+holding a repeated hash are read again for the ids themselves) and the figures of the closing summary.
+Only when every partition is clean does the output appear: a directory of Parquet parts, or one CSV file
+assembled in partition order. The workers must see the input and output paths (a local cluster, or a
+shared file system).
 """
 
 from __future__ import annotations
@@ -29,7 +30,7 @@ import numpy as np
 from calibration.bundle import Bundle
 from calibration.bundle.canonical import from_bytes, to_bytes
 from calibration.bundle.scorer import BundleScorer, UnknownGroup
-from calibration.distributed.cluster import dask_client, repeated_ids
+from calibration.distributed.cluster import dask_client, id_hashes, repeated_hashes, repeated_ids
 from calibration.errors import InputError
 from calibration.io import MAX_PROBLEMS, Partition, ScoringInput, plan_partitions, row_label
 from calibration.io.scores import SCORE_COLUMNS, score_rows, score_table
@@ -61,7 +62,7 @@ class PartOutcome:
     problems: list[str] = field(default_factory=list)
     total: int = 0
     notes: list[str] = field(default_factory=list)
-    ids: list[Any] = field(default_factory=list)  # Arrow string arrays, one per batch (compact to send back)
+    id_hashes: list[np.ndarray] = field(default_factory=list)  # a 64-bit hash per id, one array per batch
     theta: Any = None
     se: Any = None
     scale: Any = None
@@ -109,7 +110,7 @@ def score_partition(job: ScoreJob, partition: Partition) -> PartOutcome:
                 if job.csv
                 else score_table(scorer, batch.ids, groups, result)
             )
-            outcome.ids.append(batch.ids)
+            outcome.id_hashes.append(id_hashes(batch.ids))
             ok = np.isfinite(result.theta)
             outcome.theta = _append(outcome.theta, result.theta[ok])
             outcome.se = _append(outcome.se, result.se[ok])
@@ -128,6 +129,28 @@ def score_partition(job: ScoreJob, partition: Partition) -> PartOutcome:
         return outcome
     _write_part(job, partition, pieces)
     return outcome
+
+
+def ids_with_hashes(job: ScoreJob, partition: Partition, *, hashes: np.ndarray) -> tuple[np.ndarray, Any]:
+    """The partition's rows (positions in it) whose id hashes to one of ``hashes``, and those ids: the
+    partition read again, only when some hash repeats (the ids themselves never travel otherwise)."""
+    import pyarrow as pa
+
+    scorer = _scorer(job.bundle_bytes)
+    opened = ScoringInput(
+        job.path,
+        item_categories=scorer.item_categories,
+        id_column=job.id_column,
+        group_column=job.group_column,
+        ignore_columns=job.ignore_columns,
+        partition=partition,
+    )
+    positions, ids = [], []
+    for batch in opened.batches():
+        at = np.flatnonzero(np.isin(id_hashes(batch.ids), hashes))
+        positions.append(at + (batch.first_row - partition.first_row))
+        ids.append(batch.ids.take(pa.array(at, type=pa.int64())))
+    return np.concatenate(positions) if positions else np.zeros(0, dtype=np.int64), pa.concat_arrays(ids)
 
 
 def _append(current: Any, values: np.ndarray) -> np.ndarray:
@@ -224,20 +247,29 @@ def score_file_on_dask(  # noqa: PLR0913 - the file, the bundle, the output and 
                 if progress is not None:
                     progress(done, len(partitions))
             outcomes = sorted(client.gather(futures), key=lambda o: o.index)
-        _raise_problems(path, partitions, outcomes)
+            _raise_problems(client, job, partitions, outcomes)
         _finish(out, parts, len(partitions), csv=csv)
     finally:
         shutil.rmtree(parts, ignore_errors=True)
     return _result(out, outcomes)
 
 
-def _raise_problems(path: Path, partitions: list[Partition], outcomes: list[PartOutcome]) -> None:
-    """Every partition's problems; once they are clean, ids that repeat across partitions."""
+def _raise_problems(client: Any, job: ScoreJob, partitions: list[Partition], outcomes: list[PartOutcome]) -> None:
+    """Every partition's problems; once they are clean, ids that repeat across partitions: found by their
+    hashes, named from the ids of the rows whose hash repeats (a hash shared by different ids is no repeat)."""
+    path = job.path
     problems = [p for o in outcomes for p in o.problems]
     total = sum(o.total for o in outcomes)
     if total:
         raise InputError(path.name, problems[:MAX_PROBLEMS], total=total)
-    problems, total = repeated_ids(path, [partitions[o.index] for o in outcomes], [o.ids for o in outcomes])
+    repeats = repeated_hashes([h for o in outcomes for h in o.id_hashes])
+    if repeats.size == 0:
+        return
+    holding = [
+        partitions[o.index] for o in outcomes if any(np.isin(h, repeats).any() for h in o.id_hashes)
+    ]  # fmt: skip
+    found = client.gather(client.map(ids_with_hashes, [job] * len(holding), holding, hashes=repeats, pure=False))
+    problems, total = repeated_ids(path, holding, [[ids] for _, ids in found], [at for at, _ in found])
     if total:
         raise InputError(path.name, problems, total=total)
 

@@ -118,9 +118,14 @@ def test_bad_cells_and_repeated_ids_are_named_by_partition_and_row(tmp_path: Pat
     repeated.loc[2900, "id"] = repeated.loc[10, "id"]
     data = tmp_path / "twice.csv"
     repeated.to_csv(data, index=False)
-    with pytest.raises(InputError, match=r"id 'r000010' appears 2 times: twice.csv, partition 1 of \d+ .*row 11"):
+    with pytest.raises(
+        InputError, match=r"id 'r000010' appears 2 times: twice.csv, partition 1 of \d+ .*row 11"
+    ) as err:
         score_file_on_dask(data, bundle, out, scheduler=cluster, partition_bytes=15_000, group_column="mode")
     assert not out.exists()
+    # The workers send a hash per id; only the partitions holding a repeated hash are read again, for the ids.
+    second = re.search(r" and twice.csv, partition (\d+) of \d+.*?row (\d+)", str(err.value))
+    assert second is not None and int(second.group(1)) > 1
 
 
 def test_a_killed_worker_leaves_a_complete_output(tmp_path: Path, store: Path) -> None:
