@@ -30,7 +30,7 @@ from typing import Any
 
 import numpy as np
 
-from calibration.distributed.cluster import id_hashes, repeated_hashes, repeated_ids
+from calibration.distributed.cluster import repeated_ids
 from calibration.errors import InputError
 from calibration.estimation import EMSettings, LatentSpec, MultiGroupFit, calibrate_groups
 from calibration.estimation.estep import ExpectedCounts, GroupData, expected_counts, prepare_groups
@@ -38,7 +38,14 @@ from calibration.estimation.information import observed_information
 from calibration.estimation.layout import GroupLayout, slot_table
 from calibration.estimation.start import StartStatistics
 from calibration.io import MAX_PROBLEMS, ItemSpec, Partition, ResponseData, file_sha256, parse_codes, plan_partitions
-from calibration.io.responses import categories_and_models, category_counts, select_items, trimmed_ids
+from calibration.io.responses import (
+    categories_and_models,
+    category_counts,
+    id_hashes,
+    repeated_hashes,
+    select_items,
+    trimmed_ids,
+)
 from calibration.io.tables import PARTITION_BYTES, PARTITION_ROWS, check_required_columns, iter_tables, read_header
 from calibration.irt.models import MODEL_2PL, MODEL_GRM, FloatArray, IntArray, ItemParameters, recode_in_place
 from calibration.pipeline.fits import ProgressCallback

@@ -28,19 +28,6 @@ def dask_client(scheduler: str | None, n_workers: int) -> Iterator[Any]:
         yield stack.enter_context(Client(scheduler or cluster))
 
 
-def id_hashes(ids: Any) -> np.ndarray:
-    """A 64-bit hash of each id (pandas' hash of the strings): what workers send the client to find repeats."""
-    import pandas as pd
-
-    return pd.util.hash_array(np.asarray(ids.to_numpy(zero_copy_only=False), dtype=object), categorize=False)
-
-
-def repeated_hashes(hashes: Sequence[np.ndarray]) -> np.ndarray:
-    """The hashes that occur more than once over all partitions (their ids may still differ)."""
-    every = np.sort(np.concatenate(hashes)) if hashes else np.zeros(0, dtype=np.uint64)
-    return np.unique(every[1:][every[1:] == every[:-1]])
-
-
 def repeated_ids(
     path: Path,
     partitions: Sequence[Partition],

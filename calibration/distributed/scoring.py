@@ -30,9 +30,10 @@ import numpy as np
 from calibration.bundle import Bundle
 from calibration.bundle.canonical import from_bytes, to_bytes
 from calibration.bundle.scorer import BundleScorer, UnknownGroup
-from calibration.distributed.cluster import dask_client, id_hashes, repeated_hashes, repeated_ids
+from calibration.distributed.cluster import dask_client, repeated_ids
 from calibration.errors import InputError
 from calibration.io import MAX_PROBLEMS, Partition, ScoringInput, plan_partitions, row_label
+from calibration.io.responses import id_hashes, repeated_hashes
 from calibration.io.scores import SCORE_COLUMNS, score_rows, score_table
 from calibration.io.tables import PARTITION_BYTES, PARTITION_ROWS
 from calibration.io.write import atomic_output, csv_line

@@ -190,6 +190,19 @@ def select_items(
     return item_ids, declared, notes
 
 
+def id_hashes(ids: Any) -> np.ndarray:
+    """A 64-bit hash of each id (pandas' hash of the strings): kept instead of the ids to find repeats."""
+    import pandas as pd
+
+    return pd.util.hash_array(np.asarray(ids.to_numpy(zero_copy_only=False), dtype=object), categorize=False)
+
+
+def repeated_hashes(hashes: Sequence[np.ndarray]) -> np.ndarray:
+    """The hashes that occur more than once over all the arrays (their ids may still differ)."""
+    every = np.sort(np.concatenate(hashes)) if hashes else np.zeros(0, dtype=np.uint64)
+    return np.unique(every[1:][every[1:] == every[:-1]])
+
+
 def _duplicate_ids(trimmed: Any, id_column: str, header_lines: int) -> list[str]:
     """Every repeat of an id (trimmed ids, as :func:`trimmed_ids` gives them), naming its row and the row
     it was first seen at (Arrow finds them; few are listed)."""
@@ -349,12 +362,13 @@ class ScoringInput:
         or in :class:`CodesNotTyped` (a typed read, whose bad cells the text read names)."""
         problems: list[str] = []
         total = 0
-        id_chunks = []
+        id_chunks, hashes = [], []
         n_rows = 0
         for table in tables:
             n_rows += table.n_rows
             ids, batch_problems = trimmed_ids(table, self.id_column)
             id_chunks.append(ids)
+            hashes.append(id_hashes(ids))
             groups = None if self.group_column is None else table.text(self.group_column)
             if groups is not None and self.group_column is not None:
                 batch_problems += _group_problems(groups, table, self.group_column)
@@ -385,7 +399,10 @@ class ScoringInput:
             raise InputError(self.source, ["the file has a header but no respondents"])
         import pyarrow as pa
 
-        duplicates = _duplicate_ids(pa.chunked_array(id_chunks), self.id_column, self.header_lines)
+        # Repeats are looked for by a 64-bit hash per id (counting every id by value held a table of all of
+        # them: most of the peak memory of a large file); only a repeated hash has its ids compared.
+        repeats = repeated_hashes(hashes).size > 0
+        duplicates = _duplicate_ids(pa.chunked_array(id_chunks), self.id_column, self.header_lines) if repeats else []
         total += len(duplicates)
         problems.extend(duplicates[: max(0, MAX_PROBLEMS - len(problems))])
         if total:
