@@ -82,19 +82,24 @@ def part_name(index: int, *, csv: bool) -> str:
     return f"part-{index:05d}.{'csv' if csv else 'parquet'}"
 
 
+def _opened(job: ScoreJob, scorer: BundleScorer, partition: Partition) -> ScoringInput:
+    """The partition's rows, read and checked as ``equitheta score`` reads a file."""
+    return ScoringInput(
+        job.path,
+        item_categories=scorer.item_categories,
+        id_column=job.id_column,
+        group_column=job.group_column,
+        ignore_columns=job.ignore_columns,
+        partition=partition,
+    )
+
+
 def score_partition(job: ScoreJob, partition: Partition) -> PartOutcome:
     """Validate and score one partition, write its part; problems come back as data, not as an exception."""
     scorer = _scorer(job.bundle_bytes)
     outcome = PartOutcome(partition.index)
     try:
-        opened = ScoringInput(
-            job.path,
-            item_categories=scorer.item_categories,
-            id_column=job.id_column,
-            group_column=job.group_column,
-            ignore_columns=job.ignore_columns,
-            partition=partition,
-        )
+        opened = _opened(job, scorer, partition)
         outcome.notes = list(opened.notes)
         pieces, unknown = [], []
         for batch in opened.batches():
@@ -138,14 +143,7 @@ def ids_with_hashes(job: ScoreJob, partition: Partition, *, hashes: np.ndarray) 
     import pyarrow as pa
 
     scorer = _scorer(job.bundle_bytes)
-    opened = ScoringInput(
-        job.path,
-        item_categories=scorer.item_categories,
-        id_column=job.id_column,
-        group_column=job.group_column,
-        ignore_columns=job.ignore_columns,
-        partition=partition,
-    )
+    opened = _opened(job, scorer, partition)
     positions, ids = [], []
     for batch in opened.batches():
         at = np.flatnonzero(np.isin(id_hashes(batch.ids), hashes))
