@@ -30,7 +30,7 @@ from typing import Any
 
 import numpy as np
 
-from calibration.distributed.cluster import repeated_ids
+from calibration.distributed.cluster import raise_repeated_ids
 from calibration.errors import InputError
 from calibration.estimation import EMSettings, LatentSpec, MultiGroupFit, calibrate_groups
 from calibration.estimation.estep import ExpectedCounts, GroupData, expected_counts, prepare_groups
@@ -42,7 +42,6 @@ from calibration.io.responses import (
     categories_and_models,
     category_counts,
     id_hashes,
-    repeated_hashes,
     select_items,
     trimmed_ids,
 )
@@ -280,21 +279,6 @@ class DaskGroups:
         return sum(self.client.gather(shares))
 
 
-def _raise_repeated_ids(
-    client: Any, path: Path, partitions: list[Partition], rows: list[Any], hashes: list[np.ndarray]
-) -> None:
-    """Ids that occur more than once in the file: found by their hashes, named (file, partition, row) from
-    the ids of the rows whose hash repeats, which the workers send (a hash shared by different ids is no
-    repeat)."""
-    repeats = repeated_hashes(hashes)
-    if repeats.size == 0:
-        return
-    found = client.gather(client.map(ids_with_hashes, rows, hashes=repeats, pure=False))
-    problems, total = repeated_ids(path, partitions, [[ids] for _, ids in found], [at for at, _ in found])
-    if total:
-        raise InputError(path.name, problems, total=total)
-
-
 class DaskTable:
     """A response file read and checked by a cluster's workers, which keep its partitions.
 
@@ -355,7 +339,7 @@ class DaskTable:
             raise InputError(path.name, problems[:MAX_PROBLEMS], total=total)
         if not any(c.n_rows for c in found):
             raise InputError(path.name, ["the file has a header but no respondents"])
-        _raise_repeated_ids(client, path, partitions, rows, [c.id_hashes for c in found])
+        raise_repeated_ids(client, path, partitions, [c.id_hashes for c in found], ids_with_hashes, rows)
         width = max(c.counts.shape[1] for c in found)
         counts = sum(np.pad(c.counts, ((0, 0), (0, width - c.counts.shape[1]))) for c in found)
 

@@ -4,13 +4,15 @@ check for ids repeated across partitions."""
 from __future__ import annotations
 
 import contextlib
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from calibration.errors import InputError
 from calibration.io import MAX_PROBLEMS, Partition, row_label
+from calibration.io.responses import repeated_hashes
 
 
 @contextlib.contextmanager
@@ -60,3 +62,30 @@ def repeated_ids(
             where.append(f"{part.describe(path)}, {row_label(part.first_row + row, 0)}")
         problems.append(f"id {respondent!r} appears {len(places)} times: {' and '.join(where)}")
     return problems, len(repeated)
+
+
+def raise_repeated_ids(  # noqa: PLR0913 - the cluster, the file and what each partition sent and holds
+    client: Any,
+    path: Path,
+    partitions: Sequence[Partition],
+    hashes: Sequence[np.ndarray],
+    find: Callable[..., tuple[np.ndarray, Any]],
+    targets: Sequence[Any],
+) -> None:
+    """Raise :class:`InputError` naming the ids that occur more than once in the file.
+
+    ``hashes[i]`` holds a 64-bit hash of each id of partition ``partitions[i]`` (what its worker sent). Only
+    for a partition holding a repeated hash does ``find(targets[i], hashes=repeats)`` run on the cluster,
+    returning the positions (in the partition) and ids of its rows with those hashes; the ids then decide
+    (a hash shared by different ids is no repeat) and name the rows.
+    """
+    repeats = repeated_hashes(hashes)
+    if repeats.size == 0:
+        return
+    holding = [i for i, h in enumerate(hashes) if np.isin(h, repeats).any()]
+    found = client.gather(client.map(find, [targets[i] for i in holding], hashes=repeats, pure=False))
+    problems, total = repeated_ids(
+        path, [partitions[i] for i in holding], [[ids] for _, ids in found], [at for at, _ in found]
+    )
+    if total:
+        raise InputError(path.name, problems, total=total)

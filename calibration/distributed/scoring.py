@@ -30,10 +30,10 @@ import numpy as np
 from calibration.bundle import Bundle
 from calibration.bundle.canonical import from_bytes, to_bytes
 from calibration.bundle.scorer import BundleScorer, UnknownGroup
-from calibration.distributed.cluster import dask_client, repeated_ids
+from calibration.distributed.cluster import dask_client, raise_repeated_ids
 from calibration.errors import InputError
 from calibration.io import MAX_PROBLEMS, Partition, ScoringInput, plan_partitions, row_label
-from calibration.io.responses import id_hashes, repeated_hashes
+from calibration.io.responses import id_hashes
 from calibration.io.scores import SCORE_COLUMNS, score_rows, score_table
 from calibration.io.tables import PARTITION_BYTES, PARTITION_ROWS
 from calibration.io.write import atomic_output, csv_line
@@ -261,16 +261,9 @@ def _raise_problems(client: Any, job: ScoreJob, partitions: list[Partition], out
     total = sum(o.total for o in outcomes)
     if total:
         raise InputError(path.name, problems[:MAX_PROBLEMS], total=total)
-    repeats = repeated_hashes([h for o in outcomes for h in o.id_hashes])
-    if repeats.size == 0:
-        return
-    holding = [
-        partitions[o.index] for o in outcomes if any(np.isin(h, repeats).any() for h in o.id_hashes)
-    ]  # fmt: skip
-    found = client.gather(client.map(ids_with_hashes, [job] * len(holding), holding, hashes=repeats, pure=False))
-    problems, total = repeated_ids(path, holding, [[ids] for _, ids in found], [at for at, _ in found])
-    if total:
-        raise InputError(path.name, problems, total=total)
+    scored = [partitions[o.index] for o in outcomes]
+    hashes = [np.concatenate(o.id_hashes) if o.id_hashes else np.zeros(0, dtype=np.uint64) for o in outcomes]
+    raise_repeated_ids(client, path, scored, hashes, functools.partial(ids_with_hashes, job), scored)
 
 
 def _finish(out: Path, parts: Path, count: int, *, csv: bool) -> None:
