@@ -19,7 +19,7 @@ from calibration.bundle.schema import Bundle, ItemEntry
 from calibration.errors import UnknownGroup
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import FloatArray, IntArray, ItemParameters, recode_in_place
-from calibration.irt.person_fit import person_fit_lz
+from calibration.irt.person_fit import checked_person_fit_lz
 from calibration.irt.scoring import METHODS, NormalPrior, score, score_tables
 
 FLAG_NO_ANSWERS = "no_answers"
@@ -190,11 +190,16 @@ class BundleScorer:
         person_fit = np.full(n, np.nan)
         summed = np.full(n, np.nan)
         names, which = group_codes(groups)
+        fit_prior = None if method == "ml" else self.prior  # l_z*'s estimating equation: ML has no prior term
         for g, name in enumerate(names):
             plan = self.plans[name]
-            rows = np.flatnonzero(which == g) if len(names) > 1 else np.arange(n)
-            whole = len(names) == 1 and plan.columns.size == x.shape[1]
-            sub = x if whole else x[np.ix_(rows, plan.columns)]
+            rows: slice | np.ndarray
+            if len(names) == 1:  # every row: slices, no index arrays (a single vector's request is mostly overhead)
+                rows = slice(None)
+                sub = x if plan.columns.size == x.shape[1] else x[:, plan.columns]
+            else:
+                rows = np.flatnonzero(which == g)
+                sub = x[np.ix_(rows, plan.columns)]
             result = score(
                 plan.params,
                 sub,
@@ -207,17 +212,19 @@ class BundleScorer:
             theta[rows], se[rows] = result.theta, result.se
             minimum[rows] = min(self.bundle.scoring.min_items_answered, plan.columns.size)
             n_answered[rows], extreme[rows] = result.n_answered, result.extreme
-            finite = np.isfinite(theta[rows])
-            # l_z* with the estimating equation of the method: ML has no prior term, MAP and EAP the prior's.
-            person_fit[rows[finite]] = person_fit_lz(
-                plan.params,
-                sub[finite],
-                theta[rows][finite],
-                corrected=True,
-                prior=None if method == "ml" else self.prior,
-            )
-            complete = ~np.isnan(sub).any(axis=1)
-            summed[rows[complete]] = sub[complete].sum(axis=1)
+            # sub has passed the scoring call's checks, so the person fit takes it as it is.
+            finite = np.isfinite(result.theta)
+            if finite.all():
+                person_fit[rows] = checked_person_fit_lz(
+                    plan.params, sub, result.theta, corrected=True, prior=fit_prior
+                )
+            else:
+                fit = np.full(finite.size, np.nan)
+                fit[finite] = checked_person_fit_lz(
+                    plan.params, sub[finite], result.theta[finite], corrected=True, prior=fit_prior
+                )
+                person_fit[rows] = fit
+            summed[rows] = sub.sum(axis=1)  # NaN where an answer is missing
         scale_score, scale_se = self.reporting_scale.transform(theta, se)
         marks = (
             (n_answered == 0, FLAG_NO_ANSWERS),

@@ -292,6 +292,72 @@ def test_corrected_person_fit_equals_snijders_binary_formula() -> None:
     np.testing.assert_allclose(got, numerator / denominator, rtol=1e-9)
 
 
+def test_corrected_person_fit_keeps_its_precision_far_from_an_items_difficulty() -> None:
+    # Independent route: Snijders' formula written out with scipy's expit on both sides of each item
+    # (1 - P = expit(-z), not 1 minus a rounded P), with items whose logit reaches 30-50, where
+    # 1 - P rounds to 0 in double precision. A wrong answer there weighs its logit, not a floor's log.
+    from scipy.special import expit
+
+    from calibration.irt.person_fit import person_fit_lz
+
+    rng = np.random.default_rng(17)
+    a = np.r_[rng.uniform(0.8, 2.0, 6), np.full(6, 3.5)]
+    b = np.r_[rng.normal(0, 1, 6), np.full(6, -11.0)]
+    theta = rng.uniform(-1.0, 3.0, 50)
+    z = a * (theta[:, None] - b)
+    assert z[:, 6:].min() > 35.0  # 1 - P below double precision's spacing near 1
+    x = (rng.random(z.shape) < expit(z)).astype(float)
+    x[::5, 6] = 0.0  # a wrong answer to an item far below the respondent's level
+    prior = NormalPrior(0.0, 1.0)
+    got = person_fit_lz(ItemParameters.from_thresholds(a, b), x, theta, corrected=True, prior=prior)
+    p, q = expit(z), expit(-z)
+    d = p * q
+    c = (d * a * z).sum(1) / (d * a * a).sum(1)
+    numerator = ((x - p) * z).sum(1) + c * (-theta)
+    denominator = np.sqrt(((z - c[:, None] * a) ** 2 * d).sum(1))
+    np.testing.assert_allclose(got, numerator / denominator, rtol=1e-9)
+
+
+def test_graded_person_fit_keeps_its_precision_far_from_an_items_categories() -> None:
+    # Independent route: l_z (Drasgow et al. 1985) written out with each category's log probability from
+    # scipy's log_expit, using expit(u) - expit(v) = expit(u) expit(-v) (1 - exp(v - u)) for the boundary
+    # logits u > v of a category; two graded items sit 10-13 logits below the respondents, where P_0 and
+    # P_1 round to 0 as differences of probabilities.
+    from scipy.special import expit, log_expit
+
+    from calibration.irt.person_fit import person_fit_lz
+
+    rng = np.random.default_rng(23)
+    a = np.array([1.2, 0.9, 1.6, 3.0, 3.0])
+    thresholds = np.array([[-1.0, 0.5], [-0.5, 1.0], [0.0, 0.8], [-13.0, -12.0], [-12.5, -11.0]])
+    theta = rng.uniform(0.0, 2.0, 40)
+    x = rng.integers(0, 3, (40, 5)).astype(float)
+    x[:, 3:] = 2.0
+    x[::4, 3] = 0.0  # the lowest category of an item far below the respondent
+    x[1::4, 4] = 1.0
+    params = ItemParameters.from_thresholds(a, thresholds)
+    lz = person_fit_lz(params, x, theta)
+    z = a[None, :, None] * (theta[:, None, None] - thresholds[None])  # (n, J, 2) boundary logits
+    u = np.concatenate([np.full((40, 5, 1), np.inf), z], axis=2)  # category k lies between u_k and v_k
+    v = np.concatenate([z, np.full((40, 5, 1), -np.inf)], axis=2)
+    log_p = log_expit(u) + log_expit(-v) + np.log1p(-np.exp(v - u))  # (n, J, 3)
+    p = np.exp(log_p)
+    l0 = np.take_along_axis(log_p, x.astype(int)[:, :, None], axis=2)[:, :, 0].sum(1)
+    mean = (p * log_p).sum(axis=(1, 2))
+    var = ((p * log_p**2).sum(2) - (p * log_p).sum(2) ** 2).sum(1)
+    np.testing.assert_allclose(lz, (l0 - mean) / np.sqrt(var), rtol=1e-9)
+    # l_z* (Snijders 2001, category form): r_k = d log P_k / d theta = a (1 - expit(u) - expit(v)) for the
+    # graded model, c = sum P r log P / sum P r^2, numerator sum (x - P) log P + c r_0 (prior N(0, 1)).
+    r = a[None, :, None] * (1.0 - expit(u) - expit(v))
+    c = (p * r * log_p).sum(axis=(1, 2)) / (p * r * r).sum(axis=(1, 2))
+    observed = (x.astype(int)[:, :, None] == np.arange(3)).astype(float)
+    numerator = ((observed - p) * log_p).sum(axis=(1, 2)) - c * theta
+    w = log_p - c[:, None, None] * r
+    var_star = ((p * w**2).sum(2) - (p * w).sum(2) ** 2).sum(1)
+    star = person_fit_lz(params, x, theta, corrected=True, prior=NormalPrior(0.0, 1.0))
+    np.testing.assert_allclose(star, numerator / np.sqrt(var_star), rtol=1e-9)
+
+
 @pytest.mark.parametrize("corrected", [False, True])
 def test_person_fit_right_wrong_path_equals_the_category_path(corrected: bool) -> None:
     # Two routes in the library: right/wrong tests take (n, J) arrays, others the (n, J, K) category
