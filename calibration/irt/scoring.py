@@ -66,10 +66,28 @@ class ThetaScores:
     method: str
 
 
-def _extreme_low_high(design: ResponseDesign) -> tuple[np.ndarray, np.ndarray]:
-    """All answered items in the lowest category / all in the highest (some answer given)."""
+def _extreme_low_high(params: ItemParameters, design: ResponseDesign) -> tuple[np.ndarray, np.ndarray]:
+    """Every answered item at the end of its scale that low theta makes most likely / that high theta does
+    (some answer given): there the likelihood keeps rising towards -inf / +inf and has no maximum.
+
+    That end is the lowest category for an item with a positive slope and the highest for one with a
+    negative slope (a reverse-keyed item left unreversed), so the sums count a negative-slope item's codes
+    from its top down.
+    """
     some = design.n_answered > 0
-    return some & (design.summed_score == 0), some & (design.summed_score == design.max_score)
+    summed = design.summed_score
+    reversed_items = params.slopes < 0
+    if reversed_items.any():
+        top = (params.n_categories - 1).astype(np.float64)
+        flipped = np.where(reversed_items[design.column_item], design.column_category, 0).astype(np.float64)
+        reversed_sum = design.indicators @ flipped  # the codes given to negative-slope items
+        reversed_top = (
+            np.full(summed.shape, top[reversed_items].sum())
+            if design.administered is None
+            else design.administered @ np.where(reversed_items, top, 0.0)
+        )
+        summed = summed - 2.0 * reversed_sum + reversed_top
+    return some & (summed == 0), some & (summed == design.max_score)
 
 
 def eap_scores(
@@ -104,7 +122,7 @@ def eap_scores(
 
     def block(rows: slice) -> None:
         design = build_design(x[rows], params.n_categories)
-        low, high = _extreme_low_high(design)
+        low, high = _extreme_low_high(params, design)
         n_answered[rows], extreme[rows] = design.n_answered, low | high
         joint, _ = exp_by_rows(log_likelihood_grid(params, points, design, tables=tables, log_prior=log_prior))
         s0, s1, s2 = (joint @ moments).T
@@ -537,7 +555,7 @@ def _mode_scores(  # noqa: PLR0913 - the test, the data and the mode's options
     def block(rows: slice) -> None:
         design = build_design(x[rows], params.n_categories)  # per block, as EAP: no full-size indicators
         out.n_answered[rows] = design.n_answered
-        out.lowest[rows], out.highest[rows] = _extreme_low_high(design)
+        out.lowest[rows], out.highest[rows] = _extreme_low_high(params, design)
         log_values = log_likelihood_grid(params, scoped.points, design, tables=tables, log_prior=log_prior)
         start = _grid_mode(log_values, scoped.points)
         out.theta[rows], out.se[rows] = _newton_theta(params, x[rows], start, prior=prior, bound=bound)
@@ -580,8 +598,8 @@ def ml_scores(
     """Maximum likelihood theta with ``SE = I(theta)^(-1/2)``.
 
     Rule for extreme patterns (all answered items in the lowest category, or all in
-    the highest): the ML estimate does not exist (the likelihood rises without
-    limit), so theta is set to ``-bound`` / ``+bound`` (default +-4) with the SE
+    the highest; for an item with a negative slope the ends swap): the ML estimate does not
+    exist (the likelihood rises without limit), so theta is set to ``-bound`` / ``+bound`` (default +-4) with the SE
     from the information at that point, and ``extreme`` is True. Every other
     estimate is also kept within ``[-bound, bound]``. A respondent with no answers
     gets NaN. Started from the likelihood's maximum on a grid within the bound.

@@ -292,6 +292,41 @@ def test_corrected_person_fit_equals_snijders_binary_formula() -> None:
     np.testing.assert_allclose(got, numerator / denominator, rtol=1e-9)
 
 
+def test_an_extreme_pattern_counts_a_negative_slope_items_ends_the_other_way() -> None:
+    # Independent route: scipy's bounded scalar minimiser on the 2PL log-likelihood written out. With a
+    # reverse-keyed item left unreversed (negative slope), every answer at its high-theta end (that item
+    # wrong, the others right) has no maximum inside the bound, and the all-right pattern has one.
+    from scipy.optimize import minimize_scalar
+    from scipy.special import log_expit
+
+    from calibration.irt.scoring import eap_scores, ml_scores
+
+    a = np.array([1.2, 0.8, 1.5, -0.9, 1.0, 0.7])
+    b = np.array([-0.5, 0.0, 0.4, 0.2, 1.0, -1.0])
+    params = ItemParameters.from_thresholds(a, b)
+    keyed_high = np.array([1.0, 1.0, 1.0, 0.0, 1.0, 1.0])
+    keyed_low = 1.0 - keyed_high
+    all_right = np.ones(6)
+    x = np.vstack([keyed_high, keyed_low, all_right])
+
+    def minus_log_lik(t: float, pattern: np.ndarray) -> float:
+        z = a * (t - b)
+        return -float(np.sum(pattern * log_expit(z) + (1 - pattern) * log_expit(-z)))
+
+    ml = ml_scores(params, x, bound=4.0)
+    np.testing.assert_array_equal(ml.extreme, [True, True, False])
+    np.testing.assert_array_equal(ml.theta[:2], [4.0, -4.0])
+    for pattern, end in ((keyed_high, 4.0), (keyed_low, -4.0)):
+        wide = minimize_scalar(minus_log_lik, bounds=(-30.0, 30.0), args=(pattern,), method="bounded")
+        assert abs(wide.x) > 25.0 and np.sign(wide.x) == np.sign(end)  # no interior maximum
+    inner = minimize_scalar(
+        minus_log_lik, bounds=(-4.0, 4.0), args=(all_right,), method="bounded", options={"xatol": 1e-10}
+    )
+    assert -4.0 < inner.x < 4.0
+    assert ml.theta[2] == pytest.approx(inner.x, abs=1e-6)
+    np.testing.assert_array_equal(eap_scores(params, x).extreme, [True, True, False])
+
+
 def test_corrected_person_fit_keeps_its_precision_far_from_an_items_difficulty() -> None:
     # Independent route: Snijders' formula written out with scipy's expit on both sides of each item
     # (1 - P = expit(-z), not 1 minus a rounded P), with items whose logit reaches 30-50, where
