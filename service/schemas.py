@@ -201,7 +201,7 @@ class ScoreResult(_Strict):
     scale_se: float | None
     items_answered: int
     excluded_items: list[ExcludedItemOut]
-    flags: list[str] = Field(description="no_answers, few_items, extreme_pattern, person_misfit")
+    flags: list[str] = Field(description="no_answers, few_items, extreme_pattern, person_misfit, theta_at_bound")
     person_fit_lz_star: float | None = Field(
         description="person fit l_z* (Snijders' correction for the estimated theta); below -1.645 flags person_misfit"
     )

@@ -20,12 +20,15 @@ from calibration.errors import UnknownGroup
 from calibration.irt.likelihood import QuadratureGrid
 from calibration.irt.models import FloatArray, IntArray, ItemParameters, recode_in_place
 from calibration.irt.person_fit import checked_person_fit_lz
-from calibration.irt.scoring import METHODS, NormalPrior, score, score_tables
+from calibration.irt.scoring import MAP_BOUND, METHOD_MAP, METHOD_ML, METHODS, NormalPrior, score, score_tables
 
 FLAG_NO_ANSWERS = "no_answers"
 FLAG_FEW_ITEMS = "few_items"
 FLAG_EXTREME = "extreme_pattern"
 FLAG_MISFIT = "person_misfit"
+FLAG_AT_BOUND = "theta_at_bound"
+"""An ML (or MAP) theta held at the bound although the pattern is not extreme: the likelihood's maximum lies at or
+beyond it, so the reported theta is a limit, not an estimate."""
 # l_z* below the one-sided 5% normal point flags a pattern as unlikely (common practice).
 PERSON_FIT_CUTOFF = -1.645
 
@@ -231,6 +234,7 @@ class BundleScorer:
             ((n_answered > 0) & (n_answered < minimum), FLAG_FEW_ITEMS),
             (extreme, FLAG_EXTREME),
             (person_fit < PERSON_FIT_CUTOFF, FLAG_MISFIT),  # NaN (no fit) compares False
+            (~extreme & (np.abs(theta) >= self._bound(method)), FLAG_AT_BOUND),  # NaN compares False
         )
         # One code per row (a bit per flag), each distinct code spelt out once.
         code = sum(mask.astype(np.int64) << bit for bit, (mask, _) in enumerate(marks)).tolist()
@@ -248,6 +252,10 @@ class BundleScorer:
             person_fit=person_fit,
             summed_score=summed,
         )
+
+    def _bound(self, method: str) -> float:
+        """The bound a method keeps theta within (EAP has none: a posterior mean never reaches the grid's end)."""
+        return {METHOD_ML: self.bundle.scoring.ml_bound, METHOD_MAP: MAP_BOUND}.get(method, np.inf)
 
     def excluded_for(self, group: str) -> tuple[tuple[str, str], ...]:
         """Items left out of ``group``'s score, with the reason for each."""

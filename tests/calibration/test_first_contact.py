@@ -195,6 +195,43 @@ def test_few_items_is_judged_against_the_items_open_to_the_group(tmp_path: Path)
     assert "few_items" in scorer.score(x[:1], ["east"]).flags[0]
 
 
+def test_an_ml_theta_held_at_the_bound_is_flagged_unless_the_pattern_is_extreme(tmp_path: Path) -> None:
+    # Independent route: scipy's bounded minimiser on the 2PL likelihood written out with the bundle's item
+    # parameters, over [-30, 30]: every one of the 32 patterns whose maximum lies beyond the bound (1.5 here)
+    # and that is not all-wrong or all-right carries theta_at_bound, and no other pattern does.
+    from scipy.optimize import minimize_scalar
+    from scipy.special import log_expit
+
+    rng = np.random.default_rng(5)
+    theta = rng.normal(size=800)
+    p = 1 / (1 + np.exp(-(theta[:, None] - np.linspace(-1, 1, 5))))
+    frame = pd.DataFrame((rng.random(p.shape) < p).astype(int), columns=[f"Q{j + 1}" for j in range(5)])
+    frame.insert(0, "id", [f"P{i}" for i in range(800)])
+    path = tmp_path / "five.csv"
+    frame.to_csv(path, index=False)
+    bundle = calibrate_data(read_responses(path), name="five").bundle
+    narrow = bundle.model_copy(update={"scoring": bundle.scoring.model_copy(update={"ml_bound": 1.5})})
+    scorer = BundleScorer(narrow)
+    patterns = ((np.arange(32)[:, None] >> np.arange(5)) & 1).astype(float)
+    group = next(iter(scorer.plans))
+    result = scorer.score(patterns, [group] * 32, method="ml")
+    params = scorer.plans[group].params
+    a, c = params.slopes, params.intercepts[:, 0]
+
+    def minus_log_lik(t: float, pattern: np.ndarray) -> float:
+        z = a * t + c
+        return -float(np.sum(pattern * log_expit(z) + (1 - pattern) * log_expit(-z)))
+
+    for pattern, flags, estimate in zip(patterns, result.flags, result.theta, strict=True):
+        extreme = pattern.sum() in (0, 5)
+        beyond = abs(minimize_scalar(minus_log_lik, bounds=(-30, 30), args=(pattern,), method="bounded").x) > 1.5
+        assert ("theta_at_bound" in flags) == (beyond and not extreme)
+        assert ("extreme_pattern" in flags) == extreme
+        assert abs(estimate) <= 1.5
+    assert sum("theta_at_bound" in f for f in result.flags) > 0  # the bound is reached by some patterns
+    assert not any("theta_at_bound" in f for f in scorer.score(patterns, [group] * 32, method="eap").flags)
+
+
 def test_headline_figures_say_whose_they_are(dif_free: Path, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     assert (
         main(
