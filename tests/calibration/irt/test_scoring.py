@@ -394,6 +394,43 @@ def test_graded_person_fit_keeps_its_precision_far_from_an_items_categories() ->
 
 
 @pytest.mark.parametrize("corrected", [False, True])
+def test_3pl_person_fit_keeps_its_precision_far_above_an_item(corrected: bool) -> None:
+    # Independent route: l_z and l_z* written out for 3PL items with scipy's log_expit: log P_0 = log(1 - g) +
+    # log expit(-z), log P_1 = logaddexp(log g, log(1 - g) + log expit(z)), r_0 = -a s and r_1 = a (1 - s)
+    # (1 - g) s / P_1; three items sit 33-47 logits below the respondents, where 1 - s rounds to 0.
+    from scipy.special import expit, log_expit
+
+    from calibration.irt.person_fit import person_fit_lz
+
+    rng = np.random.default_rng(3)
+    a = np.r_[rng.uniform(0.8, 2.0, 5), np.full(3, 3.5)]
+    c = np.r_[rng.normal(0, 1, 5), np.full(3, 40.0)]
+    g = np.r_[rng.uniform(0.1, 0.25, 4), 0.0, np.full(3, 0.2)]
+    params = ItemParameters(
+        slopes=a, intercepts=c[:, None], n_categories=np.full(8, 2), models=("3pl",) * 8, guessing=g
+    )
+    theta = rng.uniform(-2, 2, 30)
+    z = a * theta[:, None] + c
+    s = expit(z)
+    x = (rng.random(z.shape) < g + (1 - g) * s).astype(float)
+    x[::3, 6] = 0.0  # a wrong answer to an item far below the respondent
+    with np.errstate(divide="ignore"):
+        log_p = np.stack([np.log1p(-g) + log_expit(-z), np.logaddexp(np.log(g), np.log1p(-g) + log_expit(z))], 2)
+    p = np.exp(log_p)
+    r = np.stack([-a * s, a * expit(-z) * (1 - g) * s / p[:, :, 1]], 2)
+    observed = np.stack([1 - x, x], 2)
+    numerator = ((observed - p) * log_p).sum(axis=(1, 2))
+    w = log_p
+    if corrected:
+        cc = (p * r * log_p).sum(axis=(1, 2)) / (p * r * r).sum(axis=(1, 2))
+        numerator = numerator - cc * theta  # the N(0, 1) prior's term of the estimating equation
+        w = log_p - cc[:, None, None] * r
+    var = ((p * w**2).sum(2) - (p * w).sum(2) ** 2).sum(1)
+    got = person_fit_lz(params, x, theta, corrected=corrected, prior=NormalPrior(0.0, 1.0))
+    np.testing.assert_allclose(got, numerator / np.sqrt(var), rtol=1e-9)
+
+
+@pytest.mark.parametrize("corrected", [False, True])
 def test_person_fit_right_wrong_path_equals_the_category_path(corrected: bool) -> None:
     # Two routes in the library: right/wrong tests take (n, J) arrays, others the (n, J, K) category
     # form. A graded item nobody answered adds nothing, so appending one sends the same answers
