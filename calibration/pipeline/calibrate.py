@@ -39,7 +39,7 @@ from calibration.pipeline.invariance import invariance_ladder
 from calibration.pipeline.link import LinkRequest, check_link_request, link_reference_group, run_link_stage
 from calibration.pipeline.policy import PolicyTable
 from calibration.pipeline.prepare import PreparedData, prepare_data
-from calibration.pipeline.quality import fit_warnings, quality_by_group, review_warnings
+from calibration.pipeline.quality import fit_warnings, quality_by_group, reversed_item_warnings, review_warnings
 from calibration.pipeline.settings import PipelineSettings, PolicyOverride
 
 
@@ -109,6 +109,7 @@ def calibrate_data(  # noqa: PLR0913 - the data and keyword-only options
     quality, quality_notes = quality_by_group(prepared, fit, policy, settings.scoring_quadrature)
     notes.extend(quality_notes)
     notes.extend(review_warnings(prepared, fit, policy))
+    notes[:0] = reversed_item_warnings(prepared, fit)  # first: every other check reads such an item backwards
     findings = Findings(
         fit=fit,
         policy=policy,

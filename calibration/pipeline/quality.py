@@ -116,8 +116,23 @@ def fit_warnings(prepared: PreparedData, fit: MultiGroupFit, em: EMSettings) -> 
     return notes
 
 
+def reversed_item_warnings(prepared: PreparedData, fit: MultiGroupFit) -> list[str]:
+    """Reference slopes that are not positive: the item reads the scale backwards (reverse-keyed or miskeyed).
+
+    Shown first: the item-rest correlations, alpha and the other items' checks read such an item backwards too.
+    """
+    slopes = fit.group_params(0).slopes
+    return [
+        f"item {item!r}: slope {slopes[j]:.3f} is not positive: the item runs against the others (reverse-keyed "
+        "or miskeyed?); if it is reverse-keyed, recode it in the file (its top code minus each code) and calibrate "
+        "again: until then alpha and the item-rest correlations read it backwards"
+        for j, item in enumerate(prepared.item_ids)
+        if slopes[j] <= 0
+    ]
+
+
 def review_warnings(prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTable) -> list[str]:
-    """Cells with a policy other than invariant, and reference slopes that look miskeyed or near-Heywood."""
+    """Cells with a policy other than invariant, and reference slopes that look near-Heywood."""
     notes = []
     reviewed = policy.reviewed_cells()
     if reviewed:
@@ -127,9 +142,7 @@ def review_warnings(prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTa
         )
     slopes = fit.group_params(0).slopes
     for j, item in enumerate(prepared.item_ids):
-        if slopes[j] <= 0:
-            notes.append(f"item {item!r}: slope {slopes[j]:.3f} is not positive (miskeyed?)")
-        elif slopes[j] > SLOPE_VERY_LARGE:
+        if slopes[j] > SLOPE_VERY_LARGE:
             notes.append(f"item {item!r}: slope {slopes[j]:.2f} is very large (near-Heywood?)")
     weak = []
     for j in np.flatnonzero(fit.template.has_guessing):

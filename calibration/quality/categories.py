@@ -6,6 +6,8 @@ Four checks, all on the group's respondents and the item's parameters in that gr
 - the mean theta (EAP) of the respondents who answered each category, which should rise with the
   category (a category whose respondents stand no higher than the one below it does not order people);
 - whether the thresholds (graded items) or steps (partial-credit items) are in order;
+- for an item with a negative slope (reverse-keyed and left unreversed) "rise" and "in order" are read
+  the other way along theta;
 - the theta range where each category is the most probable answer, on a fine grid: a category that is
   never the most probable (its steps reversed, or a graded category squeezed between close thresholds) is
   one respondents hardly use as a distinct level.
@@ -57,19 +59,25 @@ def category_check(params: ItemParameters, item: int, answers: FloatArray, theta
         if where.size:
             low[c] = -np.inf if where[0] == 0 else MODAL_GRID[where[0]]
             high[c] = np.inf if where[-1] == MODAL_GRID.size - 1 else MODAL_GRID[where[-1]]
+    # A negative slope (a reverse-keyed item left unreversed) orders the categories the other way along theta:
+    # its locations fall and its respondents' mean theta should fall with the category.
+    direction = 1.0 if one.slopes[0] >= 0 else -1.0
     locations = one.thresholds()[0, : k - 1]
-    ordered = bool(np.all(np.diff(locations) > 0))
+    ordered = bool(np.all(direction * np.diff(locations) > 0))
     flags = []
     for c in range(k):
         never = np.isnan(low[c])
-        falls = c > 0 and np.isfinite(mean[c]) and np.isfinite(mean[c - 1]) and mean[c] <= mean[c - 1]
+        falls = c > 0 and np.isfinite(mean[c]) and np.isfinite(mean[c - 1]) and direction * (mean[c] - mean[c - 1]) <= 0
         if not (never or falls):
             continue
         why = []
         if never:
             why.append("never the most probable answer" + ("" if ordered else " (its steps are out of order)"))
         if falls:
-            why.append(f"its respondents' mean theta {mean[c]:.2f} is not above category {c - 1}'s {mean[c - 1]:.2f}")
+            side = "above" if direction > 0 else "below"
+            why.append(f"its respondents' mean theta {mean[c]:.2f} is not {side} category {c - 1}'s {mean[c - 1]:.2f}")
+            if direction < 0:
+                why[-1] += " (the slope is negative: the categories run down the scale)"
         flags.append(f"category {c} ({counts[c]} answers): {'; '.join(why)}; consider merging it with category "
                      f"{_closest_neighbour(mean, c, k)}")  # fmt: skip
     return CategoryCheck(counts, mean, low, high, ordered, tuple(flags))
