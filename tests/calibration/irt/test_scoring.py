@@ -353,11 +353,27 @@ def test_corrected_person_fit_keeps_its_precision_far_from_an_items_difficulty()
     np.testing.assert_allclose(got, numerator / denominator, rtol=1e-9)
 
 
-def test_graded_person_fit_keeps_its_precision_far_from_an_items_categories() -> None:
-    # Independent route: l_z (Drasgow et al. 1985) written out with each category's log probability from
-    # scipy's log_expit, using expit(u) - expit(v) = expit(u) expit(-v) (1 - exp(v - u)) for the boundary
-    # logits u > v of a category; two graded items sit 10-13 logits below the respondents, where P_0 and
-    # P_1 round to 0 as differences of probabilities.
+def _lz_written_out(log_p: np.ndarray, r: np.ndarray, observed: np.ndarray, theta: np.ndarray, *, corrected: bool):
+    """l_z (Drasgow et al. 1985) or l_z* (Snijders 2001, category form, prior N(0, 1)) from each respondent's
+    category logs, weights r = d log P / d theta and one-hot answers, all (n, J, K): numerator
+    sum (x - P) log P (+ c r_0), c = sum P r log P / sum P r^2, weights log P - c r in the variance."""
+    p = np.exp(log_p)
+    numerator = ((observed - p) * log_p).sum(axis=(1, 2))
+    w = log_p
+    if corrected:
+        c = (p * r * log_p).sum(axis=(1, 2)) / (p * r * r).sum(axis=(1, 2))
+        numerator = numerator - c * theta  # r_0 = -theta under N(0, 1)
+        w = log_p - c[:, None, None] * r
+    var = ((p * w**2).sum(2) - (p * w).sum(2) ** 2).sum(1)
+    return numerator / np.sqrt(var)
+
+
+@pytest.mark.parametrize("corrected", [False, True])
+def test_graded_person_fit_keeps_its_precision_far_from_an_items_categories(corrected: bool) -> None:
+    # Independent route: l_z and l_z* written out with each category's log probability from scipy's log_expit,
+    # using expit(u) - expit(v) = expit(u) expit(-v) (1 - exp(v - u)) for the boundary logits u > v of a
+    # category, and r_k = a (1 - expit(u) - expit(v)); two graded items sit 10-13 logits below the
+    # respondents, where P_0 and P_1 round to 0 as differences of probabilities.
     from scipy.special import expit, log_expit
 
     from calibration.irt.person_fit import person_fit_lz
@@ -370,27 +386,16 @@ def test_graded_person_fit_keeps_its_precision_far_from_an_items_categories() ->
     x[:, 3:] = 2.0
     x[::4, 3] = 0.0  # the lowest category of an item far below the respondent
     x[1::4, 4] = 1.0
-    params = ItemParameters.from_thresholds(a, thresholds)
-    lz = person_fit_lz(params, x, theta)
     z = a[None, :, None] * (theta[:, None, None] - thresholds[None])  # (n, J, 2) boundary logits
     u = np.concatenate([np.full((40, 5, 1), np.inf), z], axis=2)  # category k lies between u_k and v_k
     v = np.concatenate([z, np.full((40, 5, 1), -np.inf)], axis=2)
     log_p = log_expit(u) + log_expit(-v) + np.log1p(-np.exp(v - u))  # (n, J, 3)
-    p = np.exp(log_p)
-    l0 = np.take_along_axis(log_p, x.astype(int)[:, :, None], axis=2)[:, :, 0].sum(1)
-    mean = (p * log_p).sum(axis=(1, 2))
-    var = ((p * log_p**2).sum(2) - (p * log_p).sum(2) ** 2).sum(1)
-    np.testing.assert_allclose(lz, (l0 - mean) / np.sqrt(var), rtol=1e-9)
-    # l_z* (Snijders 2001, category form): r_k = d log P_k / d theta = a (1 - expit(u) - expit(v)) for the
-    # graded model, c = sum P r log P / sum P r^2, numerator sum (x - P) log P + c r_0 (prior N(0, 1)).
     r = a[None, :, None] * (1.0 - expit(u) - expit(v))
-    c = (p * r * log_p).sum(axis=(1, 2)) / (p * r * r).sum(axis=(1, 2))
     observed = (x.astype(int)[:, :, None] == np.arange(3)).astype(float)
-    numerator = ((observed - p) * log_p).sum(axis=(1, 2)) - c * theta
-    w = log_p - c[:, None, None] * r
-    var_star = ((p * w**2).sum(2) - (p * w).sum(2) ** 2).sum(1)
-    star = person_fit_lz(params, x, theta, corrected=True, prior=NormalPrior(0.0, 1.0))
-    np.testing.assert_allclose(star, numerator / np.sqrt(var_star), rtol=1e-9)
+    got = person_fit_lz(
+        ItemParameters.from_thresholds(a, thresholds), x, theta, corrected=corrected, prior=NormalPrior(0.0, 1.0)
+    )
+    np.testing.assert_allclose(got, _lz_written_out(log_p, r, observed, theta, corrected=corrected), rtol=1e-9)
 
 
 @pytest.mark.parametrize("corrected", [False, True])
@@ -416,18 +421,10 @@ def test_3pl_person_fit_keeps_its_precision_far_above_an_item(corrected: bool) -
     x[::3, 6] = 0.0  # a wrong answer to an item far below the respondent
     with np.errstate(divide="ignore"):
         log_p = np.stack([np.log1p(-g) + log_expit(-z), np.logaddexp(np.log(g), np.log1p(-g) + log_expit(z))], 2)
-    p = np.exp(log_p)
-    r = np.stack([-a * s, a * expit(-z) * (1 - g) * s / p[:, :, 1]], 2)
+    r = np.stack([-a * s, a * expit(-z) * (1 - g) * s / np.exp(log_p[:, :, 1])], 2)
     observed = np.stack([1 - x, x], 2)
-    numerator = ((observed - p) * log_p).sum(axis=(1, 2))
-    w = log_p
-    if corrected:
-        cc = (p * r * log_p).sum(axis=(1, 2)) / (p * r * r).sum(axis=(1, 2))
-        numerator = numerator - cc * theta  # the N(0, 1) prior's term of the estimating equation
-        w = log_p - cc[:, None, None] * r
-    var = ((p * w**2).sum(2) - (p * w).sum(2) ** 2).sum(1)
     got = person_fit_lz(params, x, theta, corrected=corrected, prior=NormalPrior(0.0, 1.0))
-    np.testing.assert_allclose(got, numerator / np.sqrt(var), rtol=1e-9)
+    np.testing.assert_allclose(got, _lz_written_out(log_p, r, observed, theta, corrected=corrected), rtol=1e-9)
 
 
 @pytest.mark.parametrize("corrected", [False, True])
