@@ -12,13 +12,16 @@ from collections.abc import Sequence
 class InputError(ValueError):
     """A data or spec file cannot be used; ``problems`` lists each finding."""
 
-    def __init__(self, source: str, problems: Sequence[str], *, total: int | None = None) -> None:
+    def __init__(
+        self, source: str, problems: Sequence[str], *, total: int | None = None, advice: Sequence[str] = ()
+    ) -> None:
         self.source = source
         self.problems = list(problems)
         self.total = total if total is not None else len(self.problems)
         more = f"\n  ... and {self.total - len(self.problems)} more" if self.total > len(self.problems) else ""
         listing = "\n".join(f"  - {p}" for p in self.problems)
-        super().__init__(f"{source}: {self.total} problem(s)\n{listing}{more}")
+        hints = "".join(f"\n  {a}" for a in advice)  # what to do about the problems as a whole
+        super().__init__(f"{source}: {self.total} problem(s)\n{listing}{more}{hints}")
 
 
 class CalibrationInputError(ValueError):

@@ -246,13 +246,26 @@ def _group_problems(groups: list[str], table: TextTable, group_column: str, what
     return [f"{table.label(i)}, column {group_column!r}: empty {what}" for i, g in enumerate(groups) if not g]
 
 
+def _empty_group_advice(count: int, column: str, what: str = "group") -> list[str]:
+    """What to do about rows without a group (or cohort): said once, after the rows are listed."""
+    if count == 0:
+        return []
+    rows = "1 row has" if count == 1 else f"{count:,} rows have"
+    why = "it decides which item parameters score them" if what == "group" else "cohorts go with every row or none"
+    return [
+        f"{rows} no {what} in column {column!r}: every respondent needs one ({why}); fill in the empty cells, or "
+        "leave those rows out of the file"
+    ]
+
+
 def _group_labels(table: TextTable, group_column: str | None, source: str) -> tuple[str, ...] | None:
     if group_column is None:
         return None
     groups = table.text(group_column)
     problems = _group_problems(groups, table, group_column)
     if problems:
-        raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems))
+        advice = _empty_group_advice(len(problems), group_column)
+        raise InputError(source, problems[:MAX_PROBLEMS], total=len(problems), advice=advice)
     return tuple(groups)
 
 
@@ -361,7 +374,7 @@ class ScoringInput:
         """The batches of ``tables`` after the first ``skip`` rows; problems end in one InputError (``exact``)
         or in :class:`CodesNotTyped` (a typed read, whose bad cells the text read names)."""
         problems: list[str] = []
-        total = 0
+        total = empty_groups = empty_cohorts = 0
         id_chunks, hashes = [], []
         n_rows = 0
         for table in tables:
@@ -371,10 +384,14 @@ class ScoringInput:
             hashes.append(id_hashes(ids))
             groups = None if self.group_column is None else table.text(self.group_column)
             if groups is not None and self.group_column is not None:
-                batch_problems += _group_problems(groups, table, self.group_column)
+                empty = _group_problems(groups, table, self.group_column)
+                empty_groups += len(empty)
+                batch_problems += empty
             cohorts = None if self.cohort_column is None else table.text(self.cohort_column)
             if cohorts is not None and self.cohort_column is not None:
-                batch_problems += _group_problems(cohorts, table, self.cohort_column, "cohort")
+                empty = _group_problems(cohorts, table, self.cohort_column, "cohort")
+                empty_cohorts += len(empty)
+                batch_problems += empty
             parsed, code_problems, bad_cells = parse_codes(table, self.present)
             range_problems, out_of_range = self._range_problems(parsed, table)
             total += len(batch_problems) + bad_cells + out_of_range
@@ -406,7 +423,11 @@ class ScoringInput:
         total += len(duplicates)
         problems.extend(duplicates[: max(0, MAX_PROBLEMS - len(problems))])
         if total:
-            raise InputError(self.source, problems, total=total)
+            advice = [
+                *_empty_group_advice(empty_groups, str(self.group_column)),
+                *_empty_group_advice(empty_cohorts, str(self.cohort_column), "cohort"),
+            ]
+            raise InputError(self.source, problems, total=total, advice=advice)
 
     def _range_problems(self, parsed: FloatArray, table: TextTable) -> tuple[list[str], int]:
         limits = self.n_categories[self.positions]

@@ -200,3 +200,14 @@ def test_parquet_with_untrimmed_column_names_reads_for_scoring(tmp_path: Path) -
     data = read_for_scoring(path, item_categories={"Q1": 2, "Q2": 2})
     assert data.ids == ("a", "b")
     np.testing.assert_array_equal(data.responses, [[1.0, 0.0], [0.0, np.nan]])
+
+
+def test_rows_without_a_group_are_listed_with_what_to_do(tmp_path: Path) -> None:
+    # Calibration and scoring both list the rows whose group cell is empty, then say once what to do.
+    path = write(tmp_path, "id,Q1,Q2,site\na,1,0,north\nb,0,1,\nc,1,1,\n")
+    advice = r"2 rows have no group in column 'site': every respondent needs one .* leave those rows out of the file"
+    with pytest.raises(InputError, match=r"row 2 \(line 3\), column 'site': empty group(.|\n)*" + advice):
+        read_responses(path, group_column="site")
+    scoring = ScoringInput(path, item_categories={"Q1": 2, "Q2": 2}, group_column="site")
+    with pytest.raises(InputError, match=r"row 3 \(line 4\), column 'site': empty group(.|\n)*" + advice):
+        list(scoring.batches())
