@@ -117,18 +117,31 @@ def fit_warnings(prepared: PreparedData, fit: MultiGroupFit, em: EMSettings) -> 
 
 
 def reversed_item_warnings(prepared: PreparedData, fit: MultiGroupFit) -> list[str]:
-    """Reference slopes that are not positive: the item reads the scale backwards (reverse-keyed or miskeyed).
+    """Reference slopes that are not positive: items that run against the others, in one warning shown first (the
+    item-rest correlations, alpha and the category checks read such items backwards too).
 
-    Shown first: the item-rest correlations, alpha and the other items' checks read such an item backwards too.
+    One such item is most often reverse-keyed and left unreversed; many point to a test that measures more
+    than one trait, so the warning names both causes when more than one item runs backwards.
     """
     slopes = fit.group_params(0).slopes
-    return [
-        f"item {item!r}: slope {slopes[j]:.3f} is not positive: the item runs against the others (reverse-keyed "
-        "or miskeyed?); if it is reverse-keyed, recode it in the file (its top code minus each code) and calibrate "
-        "again: until then alpha and the item-rest correlations read it backwards"
-        for j, item in enumerate(prepared.item_ids)
-        if slopes[j] <= 0
-    ]
+    backwards = [j for j in range(len(prepared.item_ids)) if slopes[j] <= 0]
+    if not backwards:
+        return []
+    listed = ", ".join(f"{prepared.item_ids[j]} ({slopes[j]:.3f})" for j in backwards)
+    one = len(backwards) == 1
+    note = (
+        f"{'item' if one else f'{len(backwards)} of {len(slopes)} items'} with a slope that is not positive, "
+        f"running against the others: {listed}. A reverse-keyed item left unreversed does this: recode "
+        f"{'it' if one else 'such items'} in the file (the top code minus each code) and calibrate again; until "
+        "then alpha and the item-rest correlations read "
+        f"{'it' if one else 'them'} backwards"
+    )
+    if not one:
+        note += (
+            ". Many such items can also mean the test measures more than one trait (see the dimensionality "
+            "checks): then calibrate each trait's items as a test of its own"
+        )
+    return [note]
 
 
 def review_warnings(prepared: PreparedData, fit: MultiGroupFit, policy: PolicyTable) -> list[str]:

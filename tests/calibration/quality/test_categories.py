@@ -88,4 +88,5 @@ def test_a_reverse_keyed_item_is_checked_in_its_own_direction() -> None:
         source="simulated",
     )
     notes = calibrate_data(data, name="reversed").bundle.quality.warnings
-    assert notes[0].startswith("item 'R5': slope -") and "its top code minus each code" in notes[0]
+    assert notes[0].startswith("item with a slope that is not positive, running against the others: R5 (-")
+    assert "the top code minus each code" in notes[0] and sum("not positive" in n for n in notes) == 1
