@@ -217,16 +217,12 @@ class BundleScorer:
             n_answered[rows], extreme[rows] = result.n_answered, result.extreme
             # sub has passed the scoring call's checks, so the person fit takes it as it is.
             finite = np.isfinite(result.theta)
-            if finite.all():
-                person_fit[rows] = checked_person_fit_lz(
-                    plan.params, sub, result.theta, corrected=True, prior=fit_prior
-                )
-            else:
-                fit = np.full(finite.size, np.nan)
-                fit[finite] = checked_person_fit_lz(
-                    plan.params, sub[finite], result.theta[finite], corrected=True, prior=fit_prior
-                )
-                person_fit[rows] = fit
+            keep = slice(None) if finite.all() else finite  # views while every theta is finite
+            fit = np.full(finite.size, np.nan)
+            fit[keep] = checked_person_fit_lz(
+                plan.params, sub[keep], result.theta[keep], corrected=True, prior=fit_prior
+            )
+            person_fit[rows] = fit
             summed[rows] = sub.sum(axis=1)  # NaN where an answer is missing
         scale_score, scale_se = self.reporting_scale.transform(theta, se)
         marks = (
